@@ -1,0 +1,3 @@
+"""requant: requantize audio to a shorter word length, and prove the result."""
+
+__version__ = "0.1.0"

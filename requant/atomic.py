@@ -1,0 +1,118 @@
+"""Safe outputs: never replace an input, never leave a partial file.
+
+Every output is written to a hidden temporary file in its destination folder
+and renamed over the final name only when the whole job has succeeded
+(``os.replace`` is atomic within one file system). On any failure, including
+Ctrl-C, the temporary files are removed.
+"""
+
+import os
+import secrets
+
+from .errors import OutputError, UsageError
+
+__all__ = ["check_outputs", "AtomicOutputs", "same_file"]
+
+
+def same_file(a, b):
+    """True when two paths reach the same file (symlinks, hard links)."""
+    try:
+        return os.path.samefile(a, b)
+    except OSError:
+        return False
+
+
+def check_outputs(inputs, outputs, *, overwrite=False):
+    """Refuse outputs that would destroy an input or each other.
+
+    Parameters
+    ----------
+    inputs : sequence of path
+    outputs : sequence of path or None
+        None entries are ignored.
+    overwrite : bool
+        Allow replacing an existing output (never an input).
+
+    Raises
+    ------
+    OutputError
+        An output is an input (also through a link), exists without
+        ``overwrite``, repeats another output, or its folder is missing.
+    """
+    outs = [os.fspath(o) for o in outputs if o is not None]
+    for i, out in enumerate(outs):
+        for other in outs[:i]:
+            if os.path.abspath(other) == os.path.abspath(out) or same_file(other, out):
+                raise UsageError(f"{out!r} is named for two outputs; give each output its own name")
+        for src in inputs:
+            if os.path.abspath(os.fspath(src)) == os.path.abspath(out) or same_file(src, out):
+                raise OutputError(
+                    f"{out!r} is the input file {os.fspath(src)!r} (or a link to it); "
+                    "choose another output name: requant never writes onto its input"
+                )
+        folder = os.path.dirname(os.path.abspath(out))
+        if not os.path.isdir(folder):
+            raise OutputError(f"the folder {folder!r} for {out!r} does not exist; create it first")
+        if os.path.isdir(out):
+            raise OutputError(f"{out!r} is a folder; give a file name")
+        if os.path.lexists(out) and not overwrite:
+            raise OutputError(f"{out!r} already exists; pass --overwrite to replace it")
+
+
+class AtomicOutputs:
+    """Context manager handing out temporary paths that become final together.
+
+    Examples
+    --------
+    >>> with AtomicOutputs() as outs:                     # doctest: +SKIP
+    ...     tmp = outs.path_for("take.wav")
+    ...     write(tmp)
+    ... # on success tmp is renamed to take.wav; on error it is removed
+    """
+
+    def __init__(self):
+        self._pairs = []
+
+    def path_for(self, final):
+        """A temporary path in ``final``'s folder, renamed to ``final`` on success."""
+        final = os.fspath(final)
+        folder, name = os.path.split(os.path.abspath(final))
+        tmp = os.path.join(folder, f".{name}.{secrets.token_hex(4)}.requant-part")
+        self._pairs.append((tmp, final))
+        return tmp
+
+    def discard(self):
+        """Remove every temporary file (errors while removing are ignored)."""
+        for tmp, _ in self._pairs:
+            try:
+                os.unlink(tmp)
+            except FileNotFoundError:
+                pass
+            except OSError:
+                pass
+
+    def commit(self):
+        """Flush each temporary file to disk and rename it to its final name."""
+        for tmp, _ in self._pairs:
+            fd = os.open(tmp, os.O_RDONLY)
+            try:
+                os.fsync(fd)
+            finally:
+                os.close(fd)
+        for tmp, final in self._pairs:
+            os.replace(tmp, final)
+        self._pairs = []
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, exc_type, exc, tb):
+        if exc_type is None:
+            try:
+                self.commit()
+            except BaseException:
+                self.discard()
+                raise
+        else:
+            self.discard()
+        return False

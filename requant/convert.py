@@ -1,0 +1,386 @@
+"""Streaming file conversion: read blocks, requantize, write codes, error
+signal and report.
+
+Memory stays flat: one block buffer is reused for the whole file. Outputs
+are written to temporary files and renamed at the end (:mod:`requant.atomic`),
+so a failed or interrupted run leaves nothing partial behind.
+"""
+
+import datetime as _dt
+import errno
+import json
+import os
+import sys
+
+import numpy as np
+
+from . import __version__
+from .atomic import AtomicOutputs, check_outputs
+from .errors import InputError, OutputError, RequantError, UsageError
+from .formats import (RF64_THRESHOLD, container_bits_of, format_for_path, read_dtype_for,
+                      subtype_for)
+from .measure import measured_figures, predicted_figures
+from .quantize import Requantizer, check_settings, new_seed, predicted_error_power_lsb2
+
+__all__ = ["convert_file", "open_input", "resolve_shaping_spec", "DEFAULT_BLOCK_FRAMES",
+           "write_json_atomic"]
+
+DEFAULT_BLOCK_FRAMES = 65536
+
+_ERROR_FORMATS = {".wav": "WAV", ".wave": "WAV", ".aif": "AIFF", ".aiff": "AIFF", ".aifc": "AIFF"}
+_REPORT_KINDS = (".json",)
+
+
+def open_input(path):
+    """Open an audio file for reading; raise :class:`InputError` if it can't be.
+
+    Returns
+    -------
+    soundfile.SoundFile
+    """
+    import soundfile as sf
+
+    p = os.fspath(path)
+    if not os.path.exists(p):
+        raise InputError(f"{p!r}: no such file; check the path")
+    if os.path.isdir(p):
+        raise InputError(f"{p!r} is a folder; give an audio file (use 'requant batch' for folders)")
+    try:
+        return sf.SoundFile(p)
+    except (sf.LibsndfileError, RuntimeError, TypeError) as exc:
+        detail = str(exc).split(":")[-1].strip() or "unreadable"
+        raise InputError(
+            f"{p!r} is not an audio file that can be read ({detail}); check that it is a "
+            "complete WAV, FLAC, AIFF or other PCM file"
+        ) from None
+    except OSError as exc:
+        raise InputError(f"{p!r} cannot be opened ({exc.strerror or exc}); check its permissions") from None
+
+
+def resolve_shaping_spec(spec, sample_rate, *, order=None, limit_db=None):
+    """Turn a shaping spec into (name, coefficients).
+
+    ``spec`` is 'none', 'first-order', 'hearing', a JSON file of coefficients
+    or a comma list. Everything but 'none' is handled by
+    :mod:`requant.shaping` (imported only when needed).
+    """
+    if spec is None or spec == "none":
+        return "none", np.zeros(0)
+    from . import shaping
+
+    kwargs = {}
+    if order is not None:
+        kwargs["order"] = order
+    if limit_db is not None:
+        kwargs["max_gain_db"] = limit_db
+    name, h = shaping.resolve_shaping(spec, sample_rate, **kwargs)
+    return name, np.asarray(h, dtype=np.float64)
+
+
+def _on_grid(f, *, dtype, scale, kmin, kmax, block_frames, subtype):
+    """True when every sample already lies on the target grid, in range.
+
+    An integer container no wider than the target is on the grid without a
+    look. Otherwise the file is scanned, stopping at the first sample off the
+    grid (usually within the first block of real audio).
+    """
+    cbits = container_bits_of(subtype)
+    if cbits is not None and cbits <= round(np.log2(scale)) + 1:
+        return True
+    f.seek(0)
+    try:
+        buf = np.empty((block_frames, f.channels), dtype=np.float64)
+        while True:
+            x = f.read(block_frames, dtype="float64", out=buf)
+            if x.shape[0] == 0:
+                return True
+            v = x * scale
+            if not np.all(np.isfinite(v)):
+                return False
+            if np.any(v != np.floor(v)) or v.min() < kmin or v.max() > kmax:
+                return False
+    finally:
+        f.seek(0)
+
+
+def _first_nonfinite(x, start_frame):
+    bad = np.argwhere(~np.isfinite(x))[0]
+    return start_frame + int(bad[0]), int(bad[1]), ("NaN" if np.isnan(x[tuple(bad)]) else "infinite")
+
+
+def _wrap_write_error(exc, path):
+    code = getattr(exc, "errno", None)
+    text = str(exc)
+    if code == errno.ENOSPC or "No space" in text:
+        return OutputError(f"the disk is full while writing {path!r}; free some space and run again")
+    if code in (errno.EACCES, errno.EPERM, errno.EROFS) or "ermission" in text or "Read-only" in text:
+        return OutputError(f"cannot write in the folder of {path!r} (read-only or no permission); "
+                           "choose a writable destination")
+    if code == errno.EFBIG or "too large" in text:
+        return OutputError(f"the file size limit was reached while writing {path!r}; "
+                           "free space or raise the limit")
+    return OutputError(f"writing {path!r} failed ({text}); check the destination")
+
+
+def write_json_atomic(obj, path):
+    """Write ``obj`` as indented JSON through a temporary file and rename."""
+    with AtomicOutputs() as outs:
+        tmp = outs.path_for(path)
+        with open(tmp, "w", encoding="utf-8") as fh:
+            json.dump(obj, fh, indent=2, allow_nan=False)
+            fh.write("\n")
+
+
+def convert_file(in_path, out_path, *, bits=16, quantizer="round", dither="tpdf", shaping="none",
+                 shaping_order=None, shaping_limit_db=None, seed=None, error_path=None,
+                 report_path=None, overwrite=False, force_dither=False,
+                 block_frames=DEFAULT_BLOCK_FRAMES, out_format=None, progress=None):
+    """Requantize one audio file.
+
+    Parameters
+    ----------
+    in_path : path
+        Any file libsndfile reads: integer or float, any channels and rate.
+    out_path : path
+        The container follows the extension (.wav, .flac, .aiff) unless
+        ``out_format`` is given.
+    bits : int, 1..32, default 16
+        Target word length.
+    quantizer : {'round', 'truncate'}, default 'round'
+    dither : {'none', 'rpdf', 'tpdf', 'tpdf-hp'}, default 'tpdf'
+    shaping : str, default 'none'
+        'none', 'first-order', 'hearing', a JSON file or a comma list of h_k.
+    shaping_order, shaping_limit_db : int, float, optional
+        Order and total-gain limit (dB) of the 'hearing' design.
+    seed : int, optional
+        Without it a fresh seed is drawn; it is recorded in the report.
+    error_path : path, optional
+        Write the error signal (output minus input) as 32-bit float.
+    report_path : path, optional
+        Write the report as JSON.
+    overwrite : bool, default False
+        Replace existing outputs (never the input).
+    force_dither : bool, default False
+        Dither even when the input already lies on the target grid.
+    block_frames : int, default 65536
+        Frames per block; the output does not depend on it.
+    out_format : {'WAV', 'FLAC', 'AIFF'}, optional
+    progress : callable(frames_done, frames_total), optional
+
+    Returns
+    -------
+    dict
+        The report (see README, "The report").
+
+    Raises
+    ------
+    UsageError, InputError, OutputError
+        With a one-sentence message saying what to do.
+    """
+    import soundfile as sf
+
+    check_settings(bits, quantizer, dither)
+    if isinstance(block_frames, bool) or not isinstance(block_frames, int) or block_frames < 1:
+        raise UsageError(f"block_frames={block_frames!r} must be a positive integer")
+    in_path = os.fspath(in_path)
+    out_path = os.fspath(out_path)
+    fmt = out_format or format_for_path(out_path)
+    subtype = subtype_for(fmt, bits)
+    err_fmt = None
+    if error_path is not None:
+        error_path = os.fspath(error_path)
+        ext = os.path.splitext(error_path)[1].lower()
+        if ext not in _ERROR_FORMATS:
+            raise UsageError(f"{error_path!r}: the error signal is 32-bit float; name it .wav or .aiff")
+        err_fmt = _ERROR_FORMATS[ext]
+    if report_path is not None:
+        report_path = os.fspath(report_path)
+        if os.path.splitext(report_path)[1].lower() not in _REPORT_KINDS:
+            raise UsageError(f"{report_path!r}: name the report .json")
+    check_outputs([in_path], [out_path, error_path, report_path], overwrite=overwrite)
+    seed = new_seed() if seed is None else int(seed)
+
+    with open_input(in_path) as f:
+        rate, nch, frames = f.samplerate, f.channels, f.frames
+        in_subtype, in_format = f.subtype, f.format
+        shaping_name, coeffs = resolve_shaping_spec(shaping, rate, order=shaping_order,
+                                                    limit_db=shaping_limit_db)
+        dtype = read_dtype_for(in_subtype)
+        scale = float(2 ** (bits - 1))
+        kmin, kmax = -(2 ** (bits - 1)), 2 ** (bits - 1) - 1
+        passthrough = (not force_dither) and frames > 0 and _on_grid(
+            f, dtype=dtype, scale=scale, kmin=kmin, kmax=kmax,
+            block_frames=min(block_frames, 65536), subtype=in_subtype)
+        eff_dither, eff_coeffs = ("none", np.zeros(0)) if passthrough else (dither, coeffs)
+        cbits = container_bits_of(subtype)
+        rq = Requantizer(nch, bits=bits, quantizer=quantizer, dither=eff_dither, coeffs=eff_coeffs,
+                         seed=seed, container_bits=cbits)
+        out_fmt = fmt
+        if fmt == "WAV" and frames * nch * (cbits // 8) > RF64_THRESHOLD:
+            out_fmt = "RF64"
+        e_fmt = err_fmt
+        if err_fmt == "WAV" and frames * nch * 4 > RF64_THRESHOLD:
+            e_fmt = "RF64"
+
+        buf = np.empty((block_frames, nch), dtype=dtype)
+        codes_buf = np.empty((block_frames, nch), dtype=rq.code_dtype)
+        outs = AtomicOutputs()
+        try:
+            tmp_out = outs.path_for(out_path)
+            tmp_err = outs.path_for(error_path) if error_path else None
+            try:
+                wout = sf.SoundFile(tmp_out, "w", samplerate=rate, channels=nch, subtype=subtype,
+                                    format=out_fmt)
+                werr = (sf.SoundFile(tmp_err, "w", samplerate=rate, channels=nch, subtype="FLOAT",
+                                     format=e_fmt) if tmp_err else None)
+            except (sf.LibsndfileError, RuntimeError, OSError) as exc:
+                raise _wrap_write_error(exc, out_path) from None
+            try:
+                done = 0
+                while True:
+                    x = f.read(block_frames, dtype=dtype, out=buf)
+                    n = x.shape[0]
+                    if n == 0:
+                        break
+                    codes, err = rq.process(x, codes=codes_buf, error=werr is not None)
+                    if rq.acc[:, 6].any():
+                        frame, ch, kind = _first_nonfinite(x, done)
+                        raise InputError(
+                            f"{in_path!r} has a {kind} sample at {frame / rate:.6f} s "
+                            f"(frame {frame}, channel {ch + 1}); repair the source and run again"
+                        )
+                    try:
+                        wout.write(codes)
+                        if werr is not None:
+                            werr.write(err)
+                    except (sf.LibsndfileError, RuntimeError, OSError) as exc:
+                        raise _wrap_write_error(exc, out_path) from None
+                    done += n
+                    if progress is not None:
+                        progress(done, frames)
+            finally:
+                try:
+                    wout.close()
+                    if werr is not None:
+                        werr.close()
+                except (sf.LibsndfileError, RuntimeError, OSError) as exc:
+                    if sys.exc_info()[0] is None:
+                        raise _wrap_write_error(exc, out_path) from None
+            report = _build_report(
+                rq, in_path=in_path, in_format=in_format, in_subtype=in_subtype, rate=rate,
+                frames=done, out_path=out_path, out_format=out_fmt, subtype=subtype, cbits=cbits,
+                error_path=error_path, e_fmt=e_fmt, shaping_name=shaping_name, coeffs=coeffs,
+                dither=dither, passthrough=passthrough, force_dither=force_dither,
+                block_frames=block_frames)
+            if report_path is not None:
+                tmp_rep = outs.path_for(report_path)
+                with open(tmp_rep, "w", encoding="utf-8") as fh:
+                    json.dump(report, fh, indent=2, allow_nan=False)
+                    fh.write("\n")
+            try:
+                outs.commit()
+            except OSError as exc:
+                raise _wrap_write_error(exc, out_path) from None
+        except BaseException:
+            outs.discard()
+            raise
+    return report
+
+
+def _build_report(rq, *, in_path, in_format, in_subtype, rate, frames, out_path, out_format,
+                  subtype, cbits, error_path, e_fmt, shaping_name, coeffs, dither, passthrough,
+                  force_dither, block_frames):
+    t = rq.totals()
+    nch = rq.channels
+    power = predicted_error_power_lsb2(rq.quantizer, rq.dither, rq.coeffs)
+    if passthrough:
+        power = 0.0
+    channels = []
+    for c in range(nch):
+        meas = measured_figures(sum_x2=t["sum_x2"][c], sum_e=t["sum_e"][c], sum_e2=t["sum_e2"][c],
+                                frames=frames, scale=rq.scale, clipped=t["clipped"][c],
+                                max_abs_e=t["max_abs_e"][c])
+        pred = predicted_figures(power_lsb2=power, sum_x2=t["sum_x2"][c], frames=frames,
+                                 scale=rq.scale)
+        channels.append({"channel": c + 1, "measured": meas, "predicted": pred})
+    total = measured_figures(sum_x2=float(t["sum_x2"].sum()), sum_e=float(t["sum_e"].sum()),
+                             sum_e2=float(t["sum_e2"].sum()), frames=frames * nch,
+                             scale=rq.scale, clipped=t["clipped"].sum(),
+                             max_abs_e=float(t["max_abs_e"].max()))
+    total["over_full_scale_samples"] = int(t["over_full_scale"].sum())
+    total["shaping_overloads"] = int(t["overloads"].sum())
+    pred_total = predicted_figures(power_lsb2=power, sum_x2=float(t["sum_x2"].sum()),
+                                   frames=frames * nch, scale=rq.scale)
+    warnings, notes = [], []
+    if passthrough:
+        notes.append(
+            f"The input already lies on the {rq.bits}-bit grid: it was written unchanged, "
+            "without dither (pass --force-dither to dither anyway)."
+        )
+    if total["over_full_scale_samples"]:
+        warnings.append(
+            f"{total['over_full_scale_samples']} input samples lie beyond full scale and were "
+            "clipped; lower the gain before requantizing."
+        )
+    if total["clipped_samples"]:
+        warnings.append(
+            f"{total['clipped_samples']} output samples were clipped at the end of the "
+            f"{rq.bits}-bit range; the measured error includes the clipping, so it exceeds "
+            "the prediction. Leave more headroom."
+        )
+    if total["shaping_overloads"]:
+        warnings.append(
+            f"The noise-shaping loop overloaded {total['shaping_overloads']} times (its fed-back "
+            "error was bounded to keep it stable); use more bits, less shaping or more headroom."
+        )
+    if dither == "none" and not passthrough and rq.bits < 24:
+        notes.append(
+            "Without dither the error follows the signal; the predicted Δ²/12 holds only for "
+            "busy signals, not for quiet passages or fades."
+        )
+    peak_db = total["error_peak_dbfs"]
+    if peak_db is not None and peak_db > -20.0:
+        warnings.append(
+            f"The error signal peaks at {peak_db:.1f} dBFS: it is loud; start playback at a low "
+            "level."
+        )
+    return {
+        "requant_version": __version__,
+        "created": _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
+        "settings": {
+            "bits": rq.bits,
+            "quantizer": rq.quantizer,
+            "dither": dither,
+            "dither_applied": rq.dither,
+            "shaping": shaping_name,
+            "shaping_coeffs": [float(v) for v in coeffs],
+            "seed": rq.seed,
+            "force_dither": bool(force_dither),
+            "block_frames": block_frames,
+        },
+        "input": {
+            "path": in_path,
+            "format": in_format,
+            "sample_rate": rate,
+            "channels": nch,
+            "frames": frames,
+            "duration_s": frames / rate if rate else 0.0,
+            "subtype": in_subtype,
+        },
+        "output": {
+            "path": out_path,
+            "format": out_format,
+            "subtype": subtype,
+            "bits": rq.bits,
+            "container_bits": cbits,
+            "passthrough": bool(passthrough),
+        },
+        "error_signal": None if error_path is None else {"path": error_path, "format": e_fmt,
+                                                         "subtype": "FLOAT"},
+        "lsb": 1.0 / rq.scale,
+        "measured": total,
+        "predicted": pred_total,
+        "channels": channels,
+        "warnings": warnings,
+        "notes": notes,
+    }
