@@ -11,8 +11,10 @@ gives the same bits as processing it whole.
 Units inside the loop are LSBs of the target word length: ``v = x * scale``
 with ``scale = 2**(bits-1)``, so a code ``k`` stands for ``k / scale``.
 
-Dither is made from raw 64-bit generator words (one word per sample and
-channel):
+Dither is made from 64-bit words of one SFC64 generator per channel (Chris
+Doty-Humphrey's Small Fast Chaotic generator, as in numpy.random.SFC64; the
+state ``rng[c] = (a, b, c, counter)`` is passed in and out, and exactly one
+word is drawn per sample and channel while dithering):
 
 * ``rpdf``: the top 53 bits give a uniform ``u`` in [0, 1); dither ``u - 1/2``.
 * ``tpdf``: the two 32-bit halves give two independent uniforms on a 2**-32
@@ -30,6 +32,8 @@ __all__ = [
     "ACC_FIELDS",
     "quantize_block",
     "quantize_block_py",
+    "quantize_block_plain",
+    "sfc64_next_py",
 ]
 
 DITHER_NONE = 0
@@ -43,22 +47,40 @@ ACC_FIELDS = (
     "max_abs_e",
 )
 
+_SH3 = np.uint64(3)
 _SH11 = np.uint64(11)
+_SH24 = np.uint64(24)
 _SH32 = np.uint64(32)
+_SH40 = np.uint64(40)
+_ONE = np.uint64(1)
 _LO32 = np.uint64(0xFFFFFFFF)
 _TWO_M53 = 2.0**-53
 _TWO_M32 = 2.0**-32
 
 
-def quantize_block_py(x, raw, dither_mode, round_offset, h, hist, hp_prev,
+def sfc64_next_py(rng, c):
+    """Advance channel ``c``'s SFC64 state in place and return its next word."""
+    a = rng[c, 0]
+    b = rng[c, 1]
+    cc = rng[c, 2]
+    w = rng[c, 3]
+    tmp = a + b + w
+    rng[c, 3] = w + _ONE
+    rng[c, 0] = b ^ (b >> _SH11)
+    rng[c, 1] = cc + (cc << _SH3)
+    rng[c, 2] = ((cc << _SH24) | (cc >> _SH40)) + tmp
+    return tmp
+
+
+def quantize_block_py(x, rng, dither_mode, round_offset, h, hist, hp_prev,
                       scale, kmin, kmax, e_bound, shift, codes, err, acc):
     """Requantize one block; plain-Python twin of the compiled kernel.
 
     Parameters
     ----------
     x : ndarray, (frames, channels), float32 or float64, full scale 1.0
-    raw : ndarray, (channels, frames), uint64
-        Raw generator words, one per sample (unused when ``dither_mode`` is 0).
+    rng : ndarray, (channels, 4), uint64; updated in place
+        SFC64 state of each channel's dither generator.
     dither_mode : int
         One of ``DITHER_*``.
     round_offset : float
@@ -104,12 +126,12 @@ def quantize_block_py(x, raw, dither_mode, round_offset, h, hist, hp_prev,
             if dither_mode == 0:
                 d = 0.0
             elif dither_mode == 2:
-                w = raw[c, i]
-                d = float(w >> _SH32) * _TWO_M32 - float(w & _LO32) * _TWO_M32
+                w = sfc64_next(rng, c)
+                d = (float(np.int64(w >> _SH32)) - float(np.int64(w & _LO32))) * _TWO_M32
             elif dither_mode == 1:
-                d = float(raw[c, i] >> _SH11) * _TWO_M53 - 0.5
+                d = float(np.int64(sfc64_next(rng, c) >> _SH11)) * _TWO_M53 - 0.5
             else:
-                r = float(raw[c, i] >> _SH11) * _TWO_M53 - 0.5
+                r = float(np.int64(sfc64_next(rng, c) >> _SH11)) * _TWO_M53 - 0.5
                 d = r - hp_prev[c]
                 hp_prev[c] = r
             # error feedback
@@ -146,6 +168,10 @@ def quantize_block_py(x, raw, dither_mode, round_offset, h, hist, hp_prev,
                 err[i, c] = eps * inv_scale
 
 
+# The plain twin calls the plain generator; the compiled kernel gets the
+# compiled one (numba resolves the global at compile time).
+sfc64_next = sfc64_next_py
+
 _compiled = None
 
 
@@ -153,7 +179,30 @@ def quantize_block(*args):
     """Compiled :func:`quantize_block_py` (numba, cached on disk)."""
     global _compiled
     if _compiled is None:
-        import numba
-
-        _compiled = numba.njit(cache=True, nogil=True)(quantize_block_py)
+        _compiled = _compile()
     return _compiled(*args)
+
+
+def _compile():
+    import numba
+
+    global sfc64_next
+    sfc64_next = numba.njit(inline="always", cache=True)(sfc64_next_py)
+    fn = numba.njit(cache=True, nogil=True)(quantize_block_py)
+    return fn
+
+
+def quantize_block_plain(*args):
+    """Run the plain twin with numpy's wrap-around warnings silenced.
+
+    uint64 arithmetic wraps by design (SFC64); numpy scalars warn about it,
+    compiled code does not.
+    """
+    global sfc64_next
+    saved = sfc64_next
+    sfc64_next = sfc64_next_py
+    try:
+        with np.errstate(over="ignore"):
+            return quantize_block_py(*args)
+    finally:
+        sfc64_next = saved

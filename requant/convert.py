@@ -16,6 +16,7 @@ import numpy as np
 
 from . import __version__
 from .atomic import AtomicOutputs, check_outputs
+from .blockio import BlockReader, BlockWriter
 from .errors import InputError, OutputError, RequantError, UsageError
 from .formats import (RF64_THRESHOLD, container_bits_of, format_for_path, read_dtype_for,
                       subtype_for)
@@ -134,7 +135,8 @@ def write_json_atomic(obj, path):
 def convert_file(in_path, out_path, *, bits=16, quantizer="round", dither="tpdf", shaping="none",
                  shaping_order=None, shaping_limit_db=None, seed=None, error_path=None,
                  report_path=None, overwrite=False, force_dither=False,
-                 block_frames=DEFAULT_BLOCK_FRAMES, out_format=None, progress=None):
+                 block_frames=DEFAULT_BLOCK_FRAMES, out_format=None, progress=None, tags=None,
+                 finalize=None):
     """Requantize one audio file.
 
     Parameters
@@ -166,6 +168,13 @@ def convert_file(in_path, out_path, *, bits=16, quantizer="round", dither="tpdf"
         Frames per block; the output does not depend on it.
     out_format : {'WAV', 'FLAC', 'AIFF'}, optional
     progress : callable(frames_done, frames_total), optional
+    tags : dict, optional
+        Text tags to store (soundfile's names: title, artist, comment, ...).
+    finalize : callable(tmp_output_path, output_format) -> dict or None, optional
+        Called on the finished temporary output before it is renamed into
+        place (batch uses it to copy WAV chunks). Its dict goes into
+        ``report['output']['metadata']``. An exception aborts the conversion
+        and leaves nothing behind.
 
     Returns
     -------
@@ -222,8 +231,6 @@ def convert_file(in_path, out_path, *, bits=16, quantizer="round", dither="tpdf"
         if err_fmt == "WAV" and frames * nch * 4 > RF64_THRESHOLD:
             e_fmt = "RF64"
 
-        buf = np.empty((block_frames, nch), dtype=dtype)
-        codes_buf = np.empty((block_frames, nch), dtype=rq.code_dtype)
         outs = AtomicOutputs()
         try:
             tmp_out = outs.path_for(out_path)
@@ -235,30 +242,40 @@ def convert_file(in_path, out_path, *, bits=16, quantizer="round", dither="tpdf"
                                      format=e_fmt) if tmp_err else None)
             except (sf.LibsndfileError, RuntimeError, OSError) as exc:
                 raise _wrap_write_error(exc, out_path) from None
+            for key, value in (tags or {}).items():
+                try:
+                    setattr(wout, key, value)
+                except (sf.LibsndfileError, RuntimeError, AttributeError, TypeError):
+                    pass
+            files = [wout] if werr is None else [wout, werr]
+            layouts = [((block_frames, nch), rq.code_dtype), ((block_frames, nch), np.float32)]
+            writer = BlockWriter(files, layouts[:len(files)])
+            done = 0
             try:
-                done = 0
-                while True:
-                    x = f.read(block_frames, dtype=dtype, out=buf)
+                f.seek(0)
+                for start, x in BlockReader(f, block_frames, dtype):
                     n = x.shape[0]
-                    if n == 0:
-                        break
-                    codes, err = rq.process(x, codes=codes_buf, error=werr is not None)
+                    bufs = writer.buffers()
+                    rq.process(x, codes=bufs[0], error=werr is not None,
+                               err_out=bufs[1] if werr is not None else None)
                     if rq.acc[:, 6].any():
-                        frame, ch, kind = _first_nonfinite(x, done)
+                        frame, ch, kind = _first_nonfinite(x, start)
                         raise InputError(
                             f"{in_path!r} has a {kind} sample at {frame / rate:.6f} s "
                             f"(frame {frame}, channel {ch + 1}); repair the source and run again"
                         )
-                    try:
-                        wout.write(codes)
-                        if werr is not None:
-                            werr.write(err)
-                    except (sf.LibsndfileError, RuntimeError, OSError) as exc:
-                        raise _wrap_write_error(exc, out_path) from None
+                    writer.submit(bufs, n)
                     done += n
                     if progress is not None:
                         progress(done, frames)
+                writer.close()
+            except (sf.LibsndfileError, RuntimeError, OSError) as exc:
+                raise _wrap_write_error(exc, out_path) from None
             finally:
+                try:
+                    writer.close()
+                except BaseException:
+                    pass
                 try:
                     wout.close()
                     if werr is not None:
@@ -272,6 +289,8 @@ def convert_file(in_path, out_path, *, bits=16, quantizer="round", dither="tpdf"
                 error_path=error_path, e_fmt=e_fmt, shaping_name=shaping_name, coeffs=coeffs,
                 dither=dither, passthrough=passthrough, force_dither=force_dither,
                 block_frames=block_frames)
+            if finalize is not None:
+                report["output"]["metadata"] = finalize(tmp_out, out_fmt)
             if report_path is not None:
                 tmp_rep = outs.path_for(report_path)
                 with open(tmp_rep, "w", encoding="utf-8") as fh:

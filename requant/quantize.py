@@ -125,8 +125,9 @@ class Requantizer:
         uses the dither given here inside the loop; use i.i.d. 'tpdf' with
         shaping (Lipshitz, Wannamaker & Vanderkooy, JAES 52(11), 2004).
     seed : int or None
-        Each channel gets its own independent stream, spawned from this seed
-        by :class:`numpy.random.SeedSequence`.
+        Each channel gets its own independent stream: an SFC64 generator
+        (numpy.random.SFC64's algorithm and seeding) spawned from this seed by
+        :class:`numpy.random.SeedSequence`.
     container_bits : int, 8/16/24/32, default: smallest that holds ``bits``
         Codes are left-justified in the container: int16 for 8 and 16,
         int32 for 24 and 32 (the low bits below ``bits`` stay zero).
@@ -159,15 +160,16 @@ class Requantizer:
         self._mode = _DITHER_MODE[dither]
         self._round_offset = 0.5 if quantizer == "round" else 0.0
         seqs = np.random.SeedSequence(self.seed).spawn(self.channels)
-        self._bitgens = [np.random.PCG64(s) for s in seqs]
+        # one SFC64 state per channel, seeded by numpy; the kernel advances it
+        self.rng = np.stack([np.random.SFC64(s).state["state"]["state"] for s in seqs])
+        self.rng = np.ascontiguousarray(self.rng, dtype=np.uint64)
         self.hist = np.zeros((self.channels, self.coeffs.size), dtype=np.float64)
         self.hp_prev = np.zeros(self.channels, dtype=np.float64)
         self.acc = np.zeros((self.channels, len(_kernel.ACC_FIELDS)), dtype=np.float64)
         self.frames = 0
-        self._no_raw = np.zeros((self.channels, 0), dtype=np.uint64)
         self._no_err = np.zeros((0, 0), dtype=np.float32)
 
-    def process(self, x, *, codes=None, error=True, kernel=None):
+    def process(self, x, *, codes=None, error=True, err_out=None, kernel=None):
         """Requantize the next block.
 
         Parameters
@@ -177,6 +179,8 @@ class Requantizer:
             Output buffer of :attr:`code_dtype`, at least ``frames`` long.
         error : bool
             Also return the error signal (float32).
+        err_out : ndarray, optional
+            Buffer for the error signal, float32, at least ``frames`` long.
         kernel : callable, optional
             Replacement for the compiled kernel (tests pass the plain twin).
 
@@ -196,15 +200,14 @@ class Requantizer:
             codes = np.empty((n, self.channels), dtype=self.code_dtype)
         else:
             codes = codes[:n]
-        err = np.empty((n, self.channels), dtype=np.float32) if error else self._no_err
-        if self._mode == _kernel.DITHER_NONE or n == 0:
-            raw = self._no_raw
+        if not error:
+            err = self._no_err
+        elif err_out is not None:
+            err = err_out[:n]
         else:
-            raw = np.empty((self.channels, n), dtype=np.uint64)
-            for c, bg in enumerate(self._bitgens):
-                raw[c] = bg.random_raw(n)
+            err = np.empty((n, self.channels), dtype=np.float32)
         run = _kernel.quantize_block if kernel is None else kernel
-        run(x, raw, self._mode, self._round_offset, self.coeffs, self.hist, self.hp_prev,
+        run(x, self.rng, self._mode, self._round_offset, self.coeffs, self.hist, self.hp_prev,
             self.scale, self.kmin, self.kmax, E_BOUND_LSB, self.shift, codes, err, self.acc)
         self.frames += n
         return codes, (err if error else None)

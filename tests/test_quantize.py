@@ -223,7 +223,7 @@ def test_plain_twin_equals_compiled(rng, dither, quantizer, coeffs):
     kw = dict(bits=6, dither=dither, quantizer=quantizer, coeffs=coeffs, seed=8)
     a, b = Requantizer(3, **kw), Requantizer(3, **kw)
     ca, ea = a.process(x)
-    cb, eb = b.process(x, kernel=_kernel.quantize_block_py)
+    cb, eb = b.process(x, kernel=_kernel.quantize_block_plain)
     assert np.array_equal(ca, cb) and np.array_equal(ea, eb)
     assert np.array_equal(a.acc, b.acc) and np.array_equal(a.hist, b.hist)
 
@@ -270,3 +270,28 @@ def test_bad_settings_raise_clear_errors():
 def test_one_bit_codes():
     y = requantize(np.array([0.7, -0.7, 0.2, -0.2]), bits=1, dither="none")
     assert y.tolist() == [0.0, -1.0, 0.0, 0.0]
+
+
+def test_kernel_generator_is_numpy_sfc64():
+    # The in-kernel generator must be SFC64 exactly as numpy.random.SFC64 (the reference
+    # library) defines it: same words from the same state.
+    seq = np.random.SeedSequence(99)
+    ref = np.random.SFC64(seq)
+    state = np.array([np.random.SFC64(seq).state["state"]["state"]], dtype=np.uint64)
+    words = []
+    with np.errstate(over="ignore"):
+        for _ in range(1000):
+            words.append(int(_kernel.sfc64_next_py(state, 0)))
+    assert words == ref.random_raw(1000).tolist()
+
+
+def test_tpdf_words_split_into_two_uniforms():
+    # the TPDF draw u1 - u2 uses the two 32-bit halves of one word; compare with numpy's
+    # own SFC64 stream: with input 0 at 8 bits, code = floor(d + 1/2).
+    seed = 21
+    rq = Requantizer(1, bits=8, dither="tpdf", seed=seed, container_bits=32)
+    codes, _ = rq.process(np.zeros((5000, 1)))
+    (seq,) = np.random.SeedSequence(seed).spawn(1)
+    w = np.random.SFC64(seq).random_raw(5000)
+    d = ((w >> np.uint64(32)).astype(np.float64) - (w & np.uint64(0xFFFFFFFF)).astype(np.float64)) * 2.0**-32
+    assert np.array_equal(codes[:, 0] >> 24, np.floor(d + 0.5).astype(np.int64))

@@ -1,0 +1,136 @@
+"""Benchmark: requant convert against the plain read-and-write floor.
+
+Every row runs whole processes, alternated within one run (A B A B ...),
+and reports the median wall time of each and their ratio, so machine noise
+hits both sides alike. Usage:
+
+    python benchmarks/bench_convert.py [--minutes 20] [--repeats 3] [--rows tpdf,shaped,flac,rss,help]
+"""
+
+import argparse
+import os
+import statistics
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+HERE = Path(__file__).resolve().parent
+ROOT = HERE.parent
+PY = sys.executable
+
+FLOOR_SCRIPT = r"""
+import sys, numpy as np, soundfile as sf
+src, out, err, subtype, fmt = sys.argv[1:6]
+with sf.SoundFile(src) as f:
+    dt = 'float32' if f.subtype in ('FLOAT', 'PCM_16', 'PCM_24') else 'float64'
+    buf = np.empty((65536, f.channels), dtype=dt)
+    codes = np.zeros((65536, f.channels), dtype=np.int16)
+    with sf.SoundFile(out, 'w', f.samplerate, f.channels, subtype, format=fmt) as w:
+        e = sf.SoundFile(err, 'w', f.samplerate, f.channels, 'FLOAT', format='WAV') if err != '-' else None
+        while True:
+            x = f.read(65536, dtype=dt, out=buf)
+            if len(x) == 0:
+                break
+            w.write(codes[:len(x)])
+            if e is not None:
+                e.write(x.astype(np.float32, copy=False))
+        if e is not None:
+            e.close()
+"""
+
+
+def make_input(path, minutes, subtype, fmt):
+    import numpy as np
+    import soundfile as sf
+
+    if path.exists():
+        return
+    fs = 48000
+    rng = np.random.default_rng(1)
+    block = fs * 10
+    with sf.SoundFile(path, "w", fs, 2, subtype, format=fmt) as f:
+        for i in range(int(minutes * 6)):
+            t = (np.arange(block) + i * block) / fs
+            x = 0.3 * np.sin(2 * np.pi * 997 * t) + 0.05 * rng.standard_normal(block)
+            f.write(np.stack([x, 0.8 * x], 1).astype(np.float32))
+
+
+def timed(cmd):
+    t = time.perf_counter()
+    subprocess.run(cmd, check=True, stdout=subprocess.DEVNULL)
+    return time.perf_counter() - t
+
+
+def peak_rss_mb(cmd):
+    code = ("import resource, subprocess, sys; subprocess.run(sys.argv[1:], check=True, "
+            "stdout=subprocess.DEVNULL); "
+            "print(resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss / 1024)")
+    out = subprocess.run([PY, "-c", code, *cmd], check=True, capture_output=True, text=True)
+    return float(out.stdout.strip())
+
+
+def alternate(cmds, repeats):
+    times = {k: [] for k in cmds}
+    for _ in range(repeats):
+        for k, c in cmds.items():
+            times[k].append(timed(c))
+    return {k: statistics.median(v) for k, v in times.items()}
+
+
+def requant_cmd(*args):
+    return [PY, "-m", "requant", *map(str, args)]
+
+
+def main():
+    ap = argparse.ArgumentParser(description=__doc__)
+    ap.add_argument("--minutes", type=float, default=20.0)
+    ap.add_argument("--repeats", type=int, default=3)
+    ap.add_argument("--rows", default="tpdf,shaped,flac,rss,help")
+    ap.add_argument("--work", default=str(ROOT / "bench_output"))
+    a = ap.parse_args()
+    rows = set(a.rows.split(","))
+    work = Path(a.work)
+    work.mkdir(exist_ok=True)
+    src = work / f"stereo48k_{a.minutes:g}min_float.wav"
+    make_input(src, a.minutes, "FLOAT", "WAV")
+    out, err = work / "out16.wav", work / "err.wav"
+    floor = [PY, "-c", FLOOR_SCRIPT, str(src), str(out), str(err), "PCM_16", "WAV"]
+    # warm the numba cache once
+    subprocess.run(requant_cmd("convert", src, out, "--overwrite", "--shaping", "hearing",
+                               "--error", err), check=True, stdout=subprocess.DEVNULL)
+    print(f"input: {a.minutes:g} min stereo 48 kHz float WAV; medians of {a.repeats} alternated runs")
+    print(f"{'row':48} {'median s':>9} {'floor s':>8} {'ratio':>6} {'target':>7}")
+    base = ["convert", src, out, "--overwrite", "--error", err, "--seed", 1, "--quiet"]
+    if "tpdf" in rows:
+        m = alternate({"floor": floor, "rq": requant_cmd(*base)}, a.repeats)
+        print(f"{'WAV float -> 16-bit WAV + error, TPDF':48} {m['rq']:9.2f} {m['floor']:8.2f} "
+              f"{m['rq'] / m['floor']:6.2f} {'<=1.30':>7}")
+    if "shaped" in rows:
+        m = alternate({"floor": floor, "rq": requant_cmd(*base, "--shaping", "hearing")}, a.repeats)
+        print(f"{'WAV float -> 16-bit WAV + error, hearing 9-tap':48} {m['rq']:9.2f} "
+              f"{m['floor']:8.2f} {m['rq'] / m['floor']:6.2f} {'<=1.50':>7}")
+    if "flac" in rows:
+        fsrc = work / f"stereo48k_{a.minutes:g}min_24.flac"
+        make_input(fsrc, a.minutes, "PCM_24", "FLAC")
+        fout = work / "out16.flac"
+        ffloor = [PY, "-c", FLOOR_SCRIPT, str(fsrc), str(fout), "-", "PCM_16", "FLAC"]
+        m = alternate({"floor": ffloor, "rq": requant_cmd("convert", fsrc, fout, "--overwrite",
+                                                          "--seed", 1, "--quiet")}, a.repeats)
+        print(f"{'FLAC 24 -> FLAC 16, TPDF':48} {m['rq']:9.2f} {m['floor']:8.2f} "
+              f"{m['rq'] / m['floor']:6.2f} {'<=1.20':>7}")
+    if "rss" in rows:
+        short = work / "stereo48k_1min_float.wav"
+        make_input(short, 1, "FLOAT", "WAV")
+        for s, label in ((short, "1 min"), (src, f"{a.minutes:g} min")):
+            rss = peak_rss_mb(requant_cmd("convert", s, out, "--overwrite", "--error", err,
+                                          "--shaping", "hearing", "--quiet"))
+            print(f"{'peak RSS, ' + label + ' (MB)':48} {rss:9.1f} {'':>8} {'':>6} {'<=200':>7}")
+    if "help" in rows:
+        ts = [timed(requant_cmd("--help")) for _ in range(7)]
+        print(f"{'requant --help start-up':48} {statistics.median(ts):9.3f} {'':>8} {'':>6} "
+              f"{'<0.30':>7}")
+
+
+if __name__ == "__main__":
+    main()
