@@ -98,6 +98,9 @@ class BlockWriter:
         One buffer layout per file.
     depth : int
         Blocks that may wait to be written.
+    consumer : callable(buffers, frames), optional
+        Called on the writer thread after each block is written (the
+        report's analysis runs here, beside the encoding).
 
     Examples
     --------
@@ -107,8 +110,9 @@ class BlockWriter:
     >>> w.close()                   # waits, and raises any write error here
     """
 
-    def __init__(self, files, shapes_dtypes, depth=2):
+    def __init__(self, files, shapes_dtypes, depth=2, consumer=None):
         self._files = list(files)
+        self._consumer = consumer
         self._free = queue.Queue()
         self._todo = queue.Queue(maxsize=depth)
         for _ in range(depth + 1):
@@ -127,6 +131,8 @@ class BlockWriter:
                 try:
                     for f, b in zip(self._files, bufs):
                         f.write(b[:n])
+                    if self._consumer is not None:
+                        self._consumer(bufs, n)
                 except BaseException as exc:
                     self._error = exc
             self._free.put(bufs)

@@ -191,6 +191,88 @@ class _progress_printer:
 
 @app.command()
 @friendly
+def inspect(
+    file: Path = typer.Argument(..., help="Audio file to inspect."),
+    json_path: Optional[Path] = typer.Option(None, "--json", help="Also write the findings as JSON."),
+    overwrite: bool = typer.Option(False, "--overwrite", help="Replace an existing JSON file."),
+):
+    """Say what a file really holds: bits in use, peaks, DC, clipping, silence, noise floor."""
+    from .convert import open_input, write_json_atomic
+    from .inspect import format_inspection, inspect_file
+    from .atomic import check_outputs
+
+    if json_path is not None:
+        check_outputs([file], [json_path], overwrite=overwrite)
+    open_input(file).close()  # one clear line for unreadable files
+    rep = inspect_file(file)
+    print(format_inspection(rep))
+    if json_path is not None:
+        write_json_atomic(rep, json_path)
+
+
+shaper_app = typer.Typer(help="Show, design and export noise-shaping filters.",
+                         no_args_is_help=True, rich_markup_mode=None)
+app.add_typer(shaper_app, name="shaper")
+
+
+@shaper_app.command("show")
+@friendly
+def shaper_show(
+    rate: float = typer.Option(..., "--rate", help="Sample rate the filter is for, Hz."),
+    shaping: str = typer.Option("hearing", "--shaping", help="hearing, first-order, a JSON file "
+                                                            "or a comma list h1,h2,..."),
+    order: Optional[int] = typer.Option(None, "--order", min=1, max=64,
+                                        help="Order of the 'hearing' design (default 9)."),
+    limit: Optional[float] = typer.Option(None, "--limit", help="Total noise gain limit of the "
+                                                                "'hearing' design, dB (default 13)."),
+    json_out: Optional[Path] = typer.Option(None, "--json", help="Export the coefficients and "
+                                                                 "figures as JSON."),
+    png_out: Optional[Path] = typer.Option(None, "--png", help="Plot |NTF| beside the weighting "
+                                                               "curves (PNG)."),
+    overwrite: bool = typer.Option(False, "--overwrite", help="Replace existing exports."),
+):
+    """Describe a shaping filter: coefficients, noise gains, Gerzon-Craven figures."""
+    from . import shaping as sh
+    from .atomic import check_outputs
+    from .convert import resolve_shaping_spec
+
+    check_outputs([], [json_out, png_out], overwrite=overwrite)
+    name, h = resolve_shaping_spec(shaping, rate, order=order, limit_db=limit)
+    if name == "none" or len(h) == 0:
+        from .errors import UsageError
+
+        raise UsageError("--shaping none has no filter to show; give hearing, first-order, "
+                         "a JSON file or a comma list")
+    d = sh.describe(h, rate)
+    print(_format_shaper(name, d))
+    if json_out is not None:
+        sh.export_json(h, rate, json_out, name=name)
+        print(f"wrote {json_out}")
+    if png_out is not None:
+        sh.plot_ntf(h, rate, png_out)
+        print(f"wrote {png_out}")
+
+
+def _format_shaper(name, d):
+    lines = [f"shaping filter '{name}' for {d['sample_rate']:g} Hz, order {len(d['coefficients'])}"
+             f"{'' if d['minimum_phase'] else ' (NOT minimum phase)'}"]
+    lines.append("  h_k: " + ", ".join(f"{v:.6f}" for v in d["coefficients"]))
+    lines.append(f"  total noise gain (sum of n_k^2): {d['noise_gain_db']:+.2f} dB against flat TPDF")
+    lines.append(f"  Gerzon-Craven mean of 10*log10|NTF|^2 over 0..fs/2: "
+                 f"{d['gerzon_craven_mean_log_db']:+.4f} dB (0 for a minimum-phase NTF)")
+    lines.append(f"  {'weighting':22} {'gain vs flat TPDF':>18} {'best possible':>14}")
+    labels = {"a": "A (IEC 61672-1)", "itu468": "ITU-R BS.468-4 (RMS)",
+              "threshold": "hearing threshold"}
+    for key, label in labels.items():
+        g = d["weighted_gain_db"][key]
+        b = -d["gerzon_craven_bound_db"][key]
+        lines.append(f"  {label:22} {g:+17.2f} dB {b:+12.2f} dB")
+    lines.append("  (negative is quieter; 'best possible' is the Gerzon-Craven bound)")
+    return "\n".join(lines)
+
+
+@app.command()
+@friendly
 def demo(
     out: Path = typer.Option(Path("demo_output"), "--out", help="Folder for the demo results."),
     source: Optional[Path] = typer.Option(None, "--source",

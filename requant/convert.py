@@ -9,6 +9,7 @@ so a failed or interrupted run leaves nothing partial behind.
 import datetime as _dt
 import errno
 import json
+import math
 import os
 import sys
 
@@ -29,7 +30,7 @@ __all__ = ["convert_file", "open_input", "resolve_shaping_spec", "DEFAULT_BLOCK_
 DEFAULT_BLOCK_FRAMES = 65536
 
 _ERROR_FORMATS = {".wav": "WAV", ".wave": "WAV", ".aif": "AIFF", ".aiff": "AIFF", ".aifc": "AIFF"}
-_REPORT_KINDS = (".json",)
+_REPORT_KINDS = (".json", ".html", ".htm", ".md")
 
 
 def open_input(path):
@@ -136,7 +137,7 @@ def convert_file(in_path, out_path, *, bits=16, quantizer="round", dither="tpdf"
                  shaping_order=None, shaping_limit_db=None, seed=None, error_path=None,
                  report_path=None, overwrite=False, force_dither=False,
                  block_frames=DEFAULT_BLOCK_FRAMES, out_format=None, progress=None, tags=None,
-                 finalize=None):
+                 finalize=None, analyze=None, keep_analyzer=False):
     """Requantize one audio file.
 
     Parameters
@@ -175,6 +176,14 @@ def convert_file(in_path, out_path, *, bits=16, quantizer="round", dither="tpdf"
         place (batch uses it to copy WAV chunks). Its dict goes into
         ``report['output']['metadata']``. An exception aborts the conversion
         and leaves nothing behind.
+    analyze : bool, optional
+        Measure weighted noise, error spectrum, signal-correlated error,
+        the quietest passage and true peak (:mod:`requant.analysis`).
+        Default: when a report is written.
+    keep_analyzer : bool, default False
+        Put the :class:`~requant.analysis.ErrorAnalyzer` (with the arrays the
+        pictures need) in ``report['_analyzer']``; callers remove it before
+        writing JSON.
 
     Returns
     -------
@@ -205,7 +214,7 @@ def convert_file(in_path, out_path, *, bits=16, quantizer="round", dither="tpdf"
     if report_path is not None:
         report_path = os.fspath(report_path)
         if os.path.splitext(report_path)[1].lower() not in _REPORT_KINDS:
-            raise UsageError(f"{report_path!r}: name the report .json")
+            raise UsageError(f"{report_path!r}: name the report .json, .html or .md")
     check_outputs([in_path], [out_path, error_path, report_path], overwrite=overwrite)
     seed = new_seed() if seed is None else int(seed)
 
@@ -248,16 +257,34 @@ def convert_file(in_path, out_path, *, bits=16, quantizer="round", dither="tpdf"
                 except (sf.LibsndfileError, RuntimeError, AttributeError, TypeError):
                     pass
             files = [wout] if werr is None else [wout, werr]
+            if analyze is None:
+                analyze = report_path is not None
+            analyzer = consumer = None
             layouts = [((block_frames, nch), rq.code_dtype), ((block_frames, nch), np.float32)]
-            writer = BlockWriter(files, layouts[:len(files)])
+            if analyze:
+                from .analysis import ErrorAnalyzer
+
+                analyzer = ErrorAnalyzer(nch, rate, bits=bits, quantizer=quantizer,
+                                         dither=eff_dither, coeffs=eff_coeffs,
+                                         total_frames=frames)
+                layouts.append(((block_frames, nch), dtype))
+
+                def consumer(bufs, n):
+                    analyzer.feed(bufs[2][:n], bufs[1][:n])
+            else:
+                layouts = layouts[:len(files)]
+            want_err = werr is not None or analyzer is not None
+            writer = BlockWriter(files, layouts, consumer=consumer)
             done = 0
             try:
                 f.seek(0)
                 for start, x in BlockReader(f, block_frames, dtype):
                     n = x.shape[0]
                     bufs = writer.buffers()
-                    rq.process(x, codes=bufs[0], error=werr is not None,
-                               err_out=bufs[1] if werr is not None else None)
+                    rq.process(x, codes=bufs[0], error=want_err,
+                               err_out=bufs[1] if want_err else None)
+                    if analyzer is not None:
+                        bufs[2][:n] = x
                     if rq.acc[:, 6].any():
                         frame, ch, kind = _first_nonfinite(x, start)
                         raise InputError(
@@ -289,13 +316,16 @@ def convert_file(in_path, out_path, *, bits=16, quantizer="round", dither="tpdf"
                 error_path=error_path, e_fmt=e_fmt, shaping_name=shaping_name, coeffs=coeffs,
                 dither=dither, passthrough=passthrough, force_dither=force_dither,
                 block_frames=block_frames)
+            if analyzer is not None:
+                _merge_analysis(report, analyzer.finish())
+                if keep_analyzer:
+                    report["_analyzer"] = analyzer
             if finalize is not None:
                 report["output"]["metadata"] = finalize(tmp_out, out_fmt)
             if report_path is not None:
-                tmp_rep = outs.path_for(report_path)
-                with open(tmp_rep, "w", encoding="utf-8") as fh:
-                    json.dump(report, fh, indent=2, allow_nan=False)
-                    fh.write("\n")
+                from .report import write_report
+
+                write_report(report, analyzer, report_path, outs)
             try:
                 outs.commit()
             except OSError as exc:
@@ -304,6 +334,65 @@ def convert_file(in_path, out_path, *, bits=16, quantizer="round", dither="tpdf"
             outs.discard()
             raise
     return report
+
+
+def _merge_analysis(report, res):
+    """Fold the analyzer's figures into the report's sections."""
+    from .analysis import correlated_summary
+
+    report["measured"].update(res["measured"])
+    report["predicted"].update(res["predicted"])
+    if "true_peak" in res:
+        report["measured"]["input_true_peak_dbtp"] = res["true_peak"]["input_dbtp"]
+        report["measured"]["output_true_peak_dbtp"] = res["true_peak"]["output_dbtp"]
+    for c, row in enumerate(res["channels"]):
+        ch = report["channels"][c]
+        ch["measured"]["a_weighted_noise_dbfs"] = row["a"]
+        ch["measured"]["itu468_noise_dbfs"] = row["itu468"]
+        ch["measured"]["correlated_error_fraction"] = max(row["tonal_fraction"],
+                                                          row["correlation_fraction"])
+        ch["measured"]["input_dc_offset"] = res["dc_offset"]["input"][c]
+        ch["measured"]["output_dc_offset"] = res["dc_offset"]["output"][c]
+        if "true_peak" in res:
+            ch["measured"]["input_true_peak_dbtp"] = res["true_peak"]["input_dbtp_per_channel"][c]
+            ch["measured"]["output_true_peak_dbtp"] = res["true_peak"]["output_dbtp_per_channel"][c]
+        ch["predicted"]["a_weighted_noise_dbfs"] = res["predicted"]["a_weighted_noise_dbfs"]
+        ch["predicted"]["itu468_noise_dbfs"] = res["predicted"]["itu468_noise_dbfs"]
+    summary = correlated_summary(res)
+    report["measured"]["correlated_error_fraction"] = summary["correlated_error_fraction"]
+    report["measured"]["signal_correlated"] = summary["signal_correlated"]
+    report["warnings"].extend(summary["warnings"])
+    tp = report["measured"].get("output_true_peak_dbtp")
+    if tp is not None and tp > 0.0:
+        report["warnings"].append(
+            f"The output's true peak is {tp:+.2f} dBTP (above 0 dBTP): converters and lossy "
+            "encoders downstream may clip; lower the gain before delivery."
+        )
+    report["analysis"] = {k: res[k] for k in ("method", "spectrum", "quietest_passage",
+                                              "histogram", "true_peak", "dc_offset") if k in res}
+    report["notes"].extend(_difference_notes(report))
+
+
+def _difference_notes(report):
+    """Why measured and predicted figures differ, when they do (> 0.5 dB)."""
+    m, p = report["measured"], report["predicted"]
+    notes = []
+    if m.get("error_power_lsb2") and p.get("error_power_lsb2"):
+        diff = 10 * math.log10(m["error_power_lsb2"] / p["error_power_lsb2"])
+        if abs(diff) > 0.5:
+            why = []
+            if m.get("clipped_samples"):
+                why.append("clipping adds error the model leaves out")
+            if report["settings"]["dither_applied"] == "none":
+                why.append("without dither the error depends on the signal (the Δ²/12 model "
+                           "assumes a busy signal)")
+            if report["analysis"].get("quietest_passage") is None and m.get("signal_rms_dbfs") is None:
+                why.append("the input is digital silence")
+            if not why:
+                why.append("the signal is too short or too quiet for the statistics")
+            notes.append(f"The measured error power is {diff:+.1f} dB from the prediction: "
+                         + "; ".join(why) + ".")
+    return notes
 
 
 def _build_report(rq, *, in_path, in_format, in_subtype, rate, frames, out_path, out_format,
