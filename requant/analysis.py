@@ -62,14 +62,28 @@ MODULATION_WARNING_DB = 3.0
 DITHER_POWER_LSB2 = {"none": 1.0 / 12.0, "rpdf": 1.0 / 6.0, "tpdf": 0.25, "tpdf-hp": 0.25}
 
 
-def segment_frames(sample_rate):
-    """Welch segment length: the power of two at or above fs/8 (min 256)."""
-    return max(256, 1 << int(math.ceil(math.log2(max(sample_rate, 1) / 8.0))))
+#: Fewest Welch segments a file should give (shorter files get shorter segments).
+MIN_SEGMENTS = 16
 
 
-def quiet_window_frames(sample_rate):
+def segment_frames(sample_rate, total_frames=None):
+    """Welch segment length: the power of two at or above fs/8 (min 256).
+
+    For a short file the length shrinks (to a power of two, at least 256) so
+    that it still gives about :data:`MIN_SEGMENTS` segments: the tone
+    detector needs averaged spectra, and the integrated figures do not need
+    fine resolution.
+    """
+    n = max(256, 1 << int(math.ceil(math.log2(max(sample_rate, 1) / 8.0))))
+    if total_frames:
+        fit = 1 << max(0, int(math.floor(math.log2(max(total_frames, 1) * 2 / (MIN_SEGMENTS + 1)))))
+        n = max(256, min(n, fit))
+    return n
+
+
+def quiet_window_frames(sample_rate, total_frames=None):
     """Length of the windows searched for the quietest passage (4 segments)."""
-    return 4 * segment_frames(sample_rate)
+    return 4 * segment_frames(sample_rate, total_frames)
 
 
 def _hann(n):
@@ -164,7 +178,7 @@ class ErrorAnalyzer:
         self.quantizer = quantizer
         self.dither = dither
         self.coeffs = np.asarray(coeffs, dtype=np.float64)
-        self.L = segment_frames(sample_rate)
+        self.L = segment_frames(sample_rate, total_frames)
         self.hop = self.L // 2
         self.win = _hann(self.L).astype(np.float32)
         if total_frames:
@@ -192,7 +206,7 @@ class ErrorAnalyzer:
         self._hist = np.zeros(120)
         self._hist_out = 0
         # quietest passage
-        self.QW = quiet_window_frames(sample_rate)
+        self.QW = quiet_window_frames(sample_rate, total_frames)
         self._qx = np.zeros((self.QW, self.channels), dtype=np.float32)
         self._qe = np.zeros((self.QW, self.channels), dtype=np.float32)
         self._qfill = 0
@@ -345,11 +359,11 @@ class ErrorAnalyzer:
         win = _hann(L)
         starts = np.arange(0, self.QW - L + 1, hop)
         idx = starts[:, None] + np.arange(L)[None, :]
-        fe = np.fft.rfft(e[idx] * win[None, :, None], axis=1)
-        psd = np.sum(np.abs(fe) ** 2, axis=0).T  # (channels, bins), unnormalised
-        tonal = max(tonal_fraction(p) for p in psd)
         xc = x - x.mean(axis=0)
-        ec = e - e.mean(axis=0)
+        ec = e - e.mean(axis=0)  # the truncation bias is no tone of the signal
+        fe = np.fft.rfft(ec[idx] * win[None, :, None], axis=1)
+        psd = np.sum(np.abs(fe) ** 2, axis=0).T  # (channels, bins), unnormalised
+        tonal = max(tonal_fraction(p[2:]) for p in psd)
         rho2 = 0.0
         for c in range(self.channels):
             den = float(np.sum(xc[:, c] ** 2) * np.sum(ec[:, c] ** 2))
@@ -402,7 +416,8 @@ class ErrorAnalyzer:
             df = self.rate / self.L
             for c in range(self.channels):
                 row = {k: _db(float(np.sum(psd_e[c] * v) * df)) for k, v in w.items()}
-                row["tonal_fraction"] = tonal_fraction(psd_e[c][1:])
+                # bins 0 and 1 hold the DC (truncation bias) and its Hann leakage
+                row["tonal_fraction"] = tonal_fraction(psd_e[c][2:])
                 row["correlation_fraction"] = self._correlation2(c)
                 per_channel.append(row)
             for k, v in w.items():

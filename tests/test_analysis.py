@@ -199,3 +199,28 @@ def test_true_peak_and_dc_in_report(tmp_path):
     rep = convert_file(p, tmp_path / "o.wav", bits=24, seed=1, report_path=tmp_path / "r.json")
     assert rep["measured"]["input_true_peak_dbtp"] == pytest.approx(20 * np.log10(1.01), abs=0.06)
     assert rep["channels"][0]["measured"]["input_dc_offset"] == pytest.approx(np.mean(x), abs=1e-9)
+
+
+@pytest.mark.parametrize("frames", [300, 5000, 15435, 40000])
+@pytest.mark.parametrize("shaped", [False, True])
+def test_no_false_alarm_for_tpdf_on_short_files(frames, shaped):
+    # TPDF: error independent of the signal [LWV92]; short files must not look tonal
+    fs = 44100
+    rng = np.random.default_rng(frames)
+    t = np.arange(frames) / fs
+    x = (0.3 * np.sign(np.sin(2 * np.pi * 988 * t)) * np.exp(-t * 9)).reshape(-1, 1)
+    x += 1e-3 * rng.standard_normal(x.shape)
+    h = design_hearing(fs) if shaped else ()
+    y = requantize(x, bits=8, dither="tpdf", coeffs=h, seed=frames)
+    res = analyze_arrays(x, y - x, fs, bits=8, quantizer="round", dither="tpdf", coeffs=h)
+    assert res["signal_correlated"] is False
+    assert res["correlated_error_fraction"] < 0.01
+
+
+def test_truncating_a_fade_is_flagged():
+    # the truncation bias (-Δ/2) is not counted as a tone; the fade's distortion is
+    fs = 48000
+    x = tone(fs, 4.0, -20.0) * np.linspace(1, 10 ** (-70 / 20), 4 * fs)[:, None]
+    y = requantize(x, bits=16, quantizer="truncate", dither="none")
+    res = analyze_arrays(x, y - x, fs, bits=16, quantizer="truncate", dither="none")
+    assert res["signal_correlated"] is True
