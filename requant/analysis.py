@@ -404,6 +404,8 @@ class ErrorAnalyzer:
                 "frequency_resolution_hz": self.rate / self.L,
                 "itu468_detector": "RMS (the standard specifies quasi-peak)",
                 "per_bin": "noise power in each bin of width fs/segment_frames, dBFS",
+                "tone_measure": ("on" if self._nseg >= MIN_SEGMENTS // 2 else
+                                 "off: too short for averaged spectra"),
             },
         }
         pw = self.predicted_weighted()
@@ -416,8 +418,10 @@ class ErrorAnalyzer:
             df = self.rate / self.L
             for c in range(self.channels):
                 row = {k: _db(float(np.sum(psd_e[c] * v) * df)) for k, v in w.items()}
-                # bins 0 and 1 hold the DC (truncation bias) and its Hann leakage
-                row["tonal_fraction"] = tonal_fraction(psd_e[c][2:])
+                # bins 0 and 1 hold the DC (truncation bias) and its Hann leakage;
+                # too few averaged segments make noise look tonal: no verdict then
+                row["tonal_fraction"] = (tonal_fraction(psd_e[c][2:])
+                                         if self._nseg >= MIN_SEGMENTS // 2 else 0.0)
                 row["correlation_fraction"] = self._correlation2(c)
                 per_channel.append(row)
             for k, v in w.items():

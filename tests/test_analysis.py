@@ -220,7 +220,7 @@ def test_no_false_alarm_for_tpdf_on_short_files(frames, shaped):
 def test_truncating_a_fade_is_flagged():
     # the truncation bias (-Δ/2) is not counted as a tone; the fade's distortion is
     fs = 48000
-    x = tone(fs, 4.0, -20.0) * np.linspace(1, 10 ** (-70 / 20), 4 * fs)[:, None]
+    x = tone(fs, 4.0, -20.0) * 10 ** (np.linspace(0, -70, 4 * fs) / 20)[:, None]
     y = requantize(x, bits=16, quantizer="truncate", dither="none")
     res = analyze_arrays(x, y - x, fs, bits=16, quantizer="truncate", dither="none")
     assert res["signal_correlated"] is True
