@@ -139,3 +139,35 @@ def test_version_and_no_args():
 def test_few_bits_prints_caution(tmp_path, src):
     code, _, stderr = run_cli("convert", src, tmp_path / "o.wav", "--bits", 4)
     assert code == 0 and "Caution" in stderr
+
+
+def test_inspect_reports_bits_in_use(tmp_path):
+    # 16-bit codes held in a 24-bit file: 16 bits in use, converting to 16 is lossless
+    p = tmp_path / "in24.wav"
+    codes = (np.arange(-3000, 3000, dtype=np.int32) * 5 << 16).reshape(-1, 1)
+    sf.write(p, codes, 48000, subtype="PCM_24")
+    out = tmp_path / "facts.json"
+    code, stdout, stderr = run_cli("inspect", p, "--json", out)
+    assert code == 0, stderr
+    data = json.loads(out.read_text())
+    assert data["bits_used"] == 16
+    assert "lossless" in stdout
+
+
+def test_shaper_show_prints_figures_and_exports(tmp_path):
+    js, png = tmp_path / "h.json", tmp_path / "h.png"
+    code, stdout, stderr = run_cli("shaper", "show", "--rate", 44100, "--json", js, "--png", png)
+    assert code == 0, stderr
+    assert "Gerzon-Craven" in stdout and "ITU-R BS.468-4" in stdout
+    assert json.loads(js.read_text())["sample_rate"] == 44100
+    assert png.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+    # the exported coefficients drive a conversion
+    code, _, stderr = run_cli("shaper", "show", "--rate", 44100, "--shaping", js)
+    assert code == 0, stderr
+
+
+@pytest.mark.parametrize("args", [["--rate", "100"], ["--rate", "44100", "--shaping", "1,nan"],
+                                  ["--rate", "44100", "--shaping", "none"]])
+def test_shaper_show_bad_values(args):
+    code, _, stderr = run_cli("shaper", "show", *args)
+    assert code == 2 and len(stderr.strip().splitlines()) == 1 and "Traceback" not in stderr
