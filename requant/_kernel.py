@@ -44,7 +44,7 @@ DITHER_TPDF_HP = 3
 #: Columns of the per-channel accumulator array ``acc``.
 ACC_FIELDS = (
     "sum_x2", "sum_e", "sum_e2", "clipped", "overloads", "over_full_scale", "nonfinite",
-    "max_abs_e",
+    "max_abs_e", "sum_x", "sum_xe",
 )
 
 _SH3 = np.uint64(3)
@@ -102,7 +102,7 @@ def quantize_block_py(x, rng, dither_mode, round_offset, h, hist, hp_prev,
     codes : ndarray, (frames, channels), int16 or int32; written
     err : ndarray, (frames, channels), float32, or shape (0, 0); written
         Error signal, output minus input, full scale 1.0.
-    acc : ndarray, (channels, 8), float64; updated in place
+    acc : ndarray, (channels, 10), float64; updated in place
         Running sums, columns as in :data:`ACC_FIELDS`.
     """
     n = x.shape[0]
@@ -159,6 +159,8 @@ def quantize_block_py(x, rng, dither_mode, round_offset, h, hist, hp_prev,
                 hist[c, 0] = e
             eps = q - v
             acc[c, 0] += xs * xs
+            acc[c, 8] += xs
+            acc[c, 9] += xs * eps
             acc[c, 1] += eps
             acc[c, 2] += eps * eps
             if abs(eps) > acc[c, 7]:

@@ -167,10 +167,13 @@ class ErrorAnalyzer:
         When known, segments are spread evenly over the whole file.
     true_peak : bool, default True
         Meter input and output true peak (BS.1770-4 Annex 2).
+    own_sums : bool, default True
+        Keep the time-domain sums (Σx, Σε, Σxε, Σx², Σε²) here; False when
+        the caller supplies them through :meth:`use_sums`.
     """
 
     def __init__(self, channels, sample_rate, *, bits, quantizer, dither, coeffs=(),
-                 total_frames=None, true_peak=True):
+                 total_frames=None, true_peak=True, own_sums=True):
         self.channels = int(channels)
         self.rate = float(sample_rate)
         self.bits = int(bits)
@@ -191,6 +194,8 @@ class ErrorAnalyzer:
         self._sxx = np.zeros((self.channels, nb))
         self._nseg = 0
         self._seg_index = 0
+        self._pos = 0
+        self._own_sums = bool(own_sums)
         self._buf_x = np.zeros((0, self.channels), dtype=np.float32)
         self._buf_e = np.zeros((0, self.channels), dtype=np.float32)
         # time-domain sums (all samples), per channel
@@ -215,9 +220,9 @@ class ErrorAnalyzer:
         # true peak
         self._tp = None
         if true_peak:
-            from .truepeak import TruePeakMeter
+            from .truepeak import DualTruePeakMeter
 
-            self._tp = (TruePeakMeter(self.channels), TruePeakMeter(self.channels))
+            self._tp = DualTruePeakMeter(self.channels)
 
     # -- feeding -------------------------------------------------------------------------------
 
@@ -228,36 +233,56 @@ class ErrorAnalyzer:
             return
         x32 = np.asarray(x, dtype=np.float32)
         e32 = np.asarray(e, dtype=np.float32)
-        x64 = np.asarray(x, dtype=np.float64)
-        e64 = e32.astype(np.float64)
-        self._sx += x64.sum(axis=0)
-        self._se += e64.sum(axis=0)
-        self._sxe += np.einsum("ij,ij->j", x64, e64)
-        self._sx2 += np.einsum("ij,ij->j", x64, x64)
-        self._se2 += np.einsum("ij,ij->j", e64, e64)
+        if self._own_sums:
+            x64 = np.asarray(x, dtype=np.float64)
+            e64 = e32.astype(np.float64)
+            self._sx += x64.sum(axis=0)
+            self._se += e64.sum(axis=0)
+            self._sxe += np.einsum("ij,ij->j", x64, e64)
+            self._sx2 += np.einsum("ij,ij->j", x64, x64)
+            self._se2 += np.einsum("ij,ij->j", e64, e64)
         self._n += n
         if self._tp is not None:
-            self._tp[0].process(x64)
-            self._tp[1].process(x64 + e64)
+            self._tp.process(x, e32)
         self._feed_segments(x32, e32)
         self._feed_quiet(x32, e32)
 
+    def use_sums(self, *, sum_x, sum_e, sum_xe, sum_x2, sum_e2):
+        """Take the time-domain sums (full scale) from elsewhere (the kernel keeps them).
+
+        Call before :meth:`finish`, after telling the analyzer with
+        ``own_sums=False`` not to compute them in :meth:`feed`.
+        """
+        self._sx, self._se, self._sxe = (np.asarray(v, dtype=np.float64) for v in
+                                         (sum_x, sum_e, sum_xe))
+        self._sx2, self._se2 = (np.asarray(v, dtype=np.float64) for v in (sum_x2, sum_e2))
+
     def _feed_segments(self, x, e):
-        bx = np.concatenate((self._buf_x, x)) if self._buf_x.shape[0] else x
-        be = np.concatenate((self._buf_e, e)) if self._buf_e.shape[0] else e
-        m = bx.shape[0]
+        # Segment j starts at global frame j*hop; only every stride-th is analysed.
+        # The last L-1 frames are kept, so a segment can straddle two blocks.
+        tail = self._buf_x.shape[0]
+        base = self._pos - tail  # global frame of the combined buffer's first sample
+        end = self._pos + x.shape[0]
         starts = []
-        pos = 0
-        while pos + self.L <= m:
-            if self._seg_index % self.stride == 0:
-                starts.append(pos)
-            self._seg_index += 1
-            pos += self.hop
+        j = self._seg_index
+        while j * self.hop + self.L <= end:
+            if j % self.stride == 0:
+                starts.append(j * self.hop - base)
+            j += 1
+        self._seg_index = j
         if starts:
+            bx = np.concatenate((self._buf_x, x)) if tail else x
+            be = np.concatenate((self._buf_e, e)) if tail else e
             idx = np.asarray(starts)[:, None] + np.arange(self.L)[None, :]
             self._add_segments(bx[idx], be[idx])
-        self._buf_x = np.array(bx[pos:], dtype=np.float32)
-        self._buf_e = np.array(be[pos:], dtype=np.float32)
+        keep = self.L - 1
+        if x.shape[0] >= keep:
+            self._buf_x = np.array(x[-keep:], dtype=np.float32)
+            self._buf_e = np.array(e[-keep:], dtype=np.float32)
+        else:
+            self._buf_x = np.concatenate((self._buf_x, x))[-keep:]
+            self._buf_e = np.concatenate((self._buf_e, e))[-keep:]
+        self._pos = end
 
     def _add_segments(self, sx, se):
         from scipy import fft
@@ -269,9 +294,12 @@ class ErrorAnalyzer:
         self._see += np.sum(fe.real ** 2 + fe.imag ** 2, axis=0).T
         self._sxx += np.sum(fx.real ** 2 + fx.imag ** 2, axis=0).T
         self._nseg += sx.shape[0]
-        h, _ = np.histogram(se.astype(np.float64) * self.scale, bins=self.hist_edges)
-        self._hist += h
-        self._hist_out += se.size - int(h.sum())
+        lo, hi = self.hist_edges[0], self.hist_edges[-1]
+        nb = self.hist_edges.size - 1
+        k = np.floor((se.astype(np.float64).ravel() * self.scale - lo) * (nb / (hi - lo)))
+        inside = (k >= 0) & (k < nb)
+        self._hist += np.bincount(k[inside].astype(np.int64), minlength=nb)
+        self._hist_out += int(k.size - np.count_nonzero(inside))
 
     def _feed_quiet(self, x, e):
         i = 0
@@ -392,8 +420,7 @@ class ErrorAnalyzer:
     def finish(self):
         """All figures, as a dict (see the module docstring); JSON-ready."""
         if self._tp is not None:
-            for m in self._tp:
-                m.finish()
+            self._tp.finish()
         freqs = np.arange(self.L // 2 + 1) * self.rate / self.L
         out = {
             "method": {
@@ -443,8 +470,7 @@ class ErrorAnalyzer:
         }
         out["channels"] = per_channel
         if self._tp is not None:
-            tin = self._tp[0].true_peak_dbtp
-            tout = self._tp[1].true_peak_dbtp
+            tin, tout = self._tp.true_peak_dbtp
             out["true_peak"] = {
                 "input_dbtp": _finite(np.max(tin)),
                 "output_dbtp": _finite(np.max(tout)),

@@ -99,8 +99,8 @@ class BlockWriter:
     depth : int
         Blocks that may wait to be written.
     consumer : callable(buffers, frames), optional
-        Called on the writer thread after each block is written (the
-        report's analysis runs here, beside the encoding).
+        Called on a third thread, in order, after each block is written (the
+        report's analysis runs there, beside the encoding and the kernel).
 
     Examples
     --------
@@ -117,22 +117,46 @@ class BlockWriter:
         self._todo = queue.Queue(maxsize=depth)
         for _ in range(depth + 1):
             self._free.put(tuple(np.empty(s, dtype=d) for s, d in shapes_dtypes))
+        if consumer is not None:
+            self._free.put(tuple(np.empty(s, dtype=d) for s, d in shapes_dtypes))
         self._error = None
         self._thread = threading.Thread(target=self._run, name="requant-writer", daemon=True)
         self._thread.start()
+        self._athread = None
+        if consumer is not None:
+            self._aq = queue.Queue(maxsize=depth)
+            self._athread = threading.Thread(target=self._analyse, name="requant-analysis",
+                                             daemon=True)
+            self._athread.start()
 
     def _run(self):
         while True:
             item = self._todo.get()
             if item is _END:
+                if self._athread is not None:
+                    self._aq.put(_END)
                 return
             bufs, n = item
             if self._error is None:
                 try:
                     for f, b in zip(self._files, bufs):
                         f.write(b[:n])
-                    if self._consumer is not None:
-                        self._consumer(bufs, n)
+                except BaseException as exc:
+                    self._error = exc
+            if self._athread is not None:
+                self._aq.put(item)
+            else:
+                self._free.put(bufs)
+
+    def _analyse(self):
+        while True:
+            item = self._aq.get()
+            if item is _END:
+                return
+            bufs, n = item
+            if self._error is None:
+                try:
+                    self._consumer(bufs, n)
                 except BaseException as exc:
                     self._error = exc
             self._free.put(bufs)
@@ -156,4 +180,6 @@ class BlockWriter:
         if self._thread.is_alive():
             self._todo.put(_END)
             self._thread.join()
+        if self._athread is not None:
+            self._athread.join()
         self._raise()

@@ -266,7 +266,7 @@ def convert_file(in_path, out_path, *, bits=16, quantizer="round", dither="tpdf"
 
                 analyzer = ErrorAnalyzer(nch, rate, bits=bits, quantizer=quantizer,
                                          dither=eff_dither, coeffs=eff_coeffs,
-                                         total_frames=frames)
+                                         total_frames=frames, own_sums=False)
                 layouts.append(((block_frames, nch), dtype))
 
                 def consumer(bufs, n):
@@ -317,6 +317,10 @@ def convert_file(in_path, out_path, *, bits=16, quantizer="round", dither="tpdf"
                 dither=dither, passthrough=passthrough, force_dither=force_dither,
                 block_frames=block_frames)
             if analyzer is not None:
+                t = rq.totals()
+                analyzer.use_sums(sum_x=t["sum_x"], sum_e=t["sum_e"] / rq.scale,
+                                  sum_xe=t["sum_xe"] / rq.scale, sum_x2=t["sum_x2"],
+                                  sum_e2=t["sum_e2"] / rq.scale**2)
                 _merge_analysis(report, analyzer.finish())
                 if keep_analyzer:
                     report["_analyzer"] = analyzer
