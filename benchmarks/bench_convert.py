@@ -4,7 +4,7 @@ Every row runs whole processes, alternated within one run (A B A B ...),
 and reports the median wall time of each and their ratio, so machine noise
 hits both sides alike. Usage:
 
-    python benchmarks/bench_convert.py [--minutes 20] [--repeats 3] [--rows tpdf,shaped,flac,rss,help]
+    python benchmarks/bench_convert.py [--minutes 20] [--repeats 3] [--rows tpdf,shaped,report,flac,rss,help]
 """
 
 import argparse
@@ -56,6 +56,25 @@ def make_input(path, minutes, subtype, fmt):
             f.write(np.stack([x, 0.8 * x], 1).astype(np.float32))
 
 
+def make_program(path, minutes):
+    """A programme-like input: tones and noise under a slowly varying level (12 dB crest)."""
+    import numpy as np
+    import soundfile as sf
+
+    if path.exists():
+        return
+    fs = 48000
+    rng = np.random.default_rng(2)
+    block = fs * 10
+    with sf.SoundFile(path, "w", fs, 2, "FLOAT", format="WAV") as f:
+        for i in range(int(minutes * 6)):
+            t = (np.arange(block) + i * block) / fs
+            env = 0.05 + 0.45 * np.abs(np.sin(2 * np.pi * 0.13 * t)) ** 3
+            x = env * (0.6 * np.sin(2 * np.pi * 220 * t) + 0.3 * np.sin(2 * np.pi * 331 * t)
+                       + 0.1 * rng.standard_normal(block))
+            f.write(np.stack([x, 0.9 * x], 1).astype(np.float32))
+
+
 def timed(cmd):
     t = time.perf_counter()
     subprocess.run(cmd, check=True, stdout=subprocess.DEVNULL)
@@ -86,7 +105,7 @@ def main():
     ap = argparse.ArgumentParser(description=__doc__)
     ap.add_argument("--minutes", type=float, default=20.0)
     ap.add_argument("--repeats", type=int, default=3)
-    ap.add_argument("--rows", default="tpdf,shaped,flac,rss,help")
+    ap.add_argument("--rows", default="tpdf,shaped,report,flac,rss,help")
     ap.add_argument("--work", default=str(ROOT / "bench_output"))
     a = ap.parse_args()
     rows = set(a.rows.split(","))
@@ -110,6 +129,19 @@ def main():
         m = alternate({"floor": floor, "rq": requant_cmd(*base, "--shaping", "hearing")}, a.repeats)
         print(f"{'WAV float -> 16-bit WAV + error, hearing 9-tap':48} {m['rq']:9.2f} "
               f"{m['floor']:8.2f} {m['rq'] / m['floor']:6.2f} {'<=1.50':>7}")
+    if "report" in rows:
+        rep = work / "report.json"
+        m = alternate({"plain": requant_cmd(*base),
+                       "report": requant_cmd(*base, "--report", rep, "--overwrite")}, a.repeats)
+        print(f"{'the same with the full report (JSON) vs without':48} {m['report']:9.2f} "
+              f"{m['plain']:8.2f} {m['report'] / m['plain']:6.2f} {'<=1.50':>7}")
+        msrc = work / f"program48k_{a.minutes:g}min_float.wav"
+        make_program(msrc, a.minutes)
+        mbase = ["convert", msrc, out, "--overwrite", "--error", err, "--seed", 1, "--quiet"]
+        m = alternate({"plain": requant_cmd(*mbase),
+                       "report": requant_cmd(*mbase, "--report", rep, "--overwrite")}, a.repeats)
+        print(f"{'  same, programme-like input (dynamics)':48} {m['report']:9.2f} "
+              f"{m['plain']:8.2f} {m['report'] / m['plain']:6.2f} {'<=1.50':>7}")
     if "flac" in rows:
         fsrc = work / f"stereo48k_{a.minutes:g}min_24.flac"
         make_input(fsrc, a.minutes, "PCM_24", "FLAC")
