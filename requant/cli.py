@@ -286,6 +286,11 @@ def demo(
     print(CAUTION, file=sys.stderr)
 
 
+from .cli_listen import register as _register_listen  # noqa: E402
+
+_register_listen(app)
+
+
 def main(argv=None):
     """Console entry point: one line per error, documented exit codes."""
     args = sys.argv[1:] if argv is None else list(argv)

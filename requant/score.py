@@ -1,0 +1,167 @@
+"""Scoring blind listening trials: right answers against guessing.
+
+A listener who hears no difference answers each trial right with
+probability 1/2, independently, so the number right of ``n`` trials is
+binomial(n, 1/2). The p-value of a score ``k`` is the chance of doing at
+least as well by guessing::
+
+    p = P(K >= k) = sum_{i=k}^{n} C(n, i) / 2**n
+
+computed exactly here with integers (no approximation, no scipy), then
+rounded once to float. It is one-sided: only scores above chance count as
+evidence of hearing a difference.
+"""
+
+import json
+import math
+import os
+
+from .errors import InputError
+
+__all__ = ["guessing_p_value", "load_results", "score_results", "format_scores",
+           "RESULTS_FORMAT"]
+
+#: Value of the ``format`` key of a results file written by the listening page.
+RESULTS_FORMAT = "requant-listening-results"
+
+
+def guessing_p_value(correct, total):
+    """One-sided binomial p-value of ``correct`` right answers in ``total`` trials.
+
+    Parameters
+    ----------
+    correct : int, 0..total
+        Trials answered right.
+    total : int, >= 0
+        Trials answered.
+
+    Returns
+    -------
+    float, 0..1
+        ``sum(C(total, i) for i >= correct) / 2**total``; 1.0 when ``correct``
+        is 0 (or no trials were answered).
+
+    Raises
+    ------
+    TypeError
+        If either count is not an int.
+    ValueError
+        If ``total < 0`` or ``correct`` is outside ``0..total``.
+
+    Examples
+    --------
+    >>> guessing_p_value(9, 10)  # 11/1024
+    0.0107421875
+    """
+    for name, v in (("correct", correct), ("total", total)):
+        if isinstance(v, bool) or not isinstance(v, int):
+            raise TypeError(f"{name} must be an int, not {type(v).__name__} {v!r}")
+    if total < 0:
+        raise ValueError(f"total={total!r} must be at least 0")
+    if not 0 <= correct <= total:
+        raise ValueError(f"correct={correct!r} must lie between 0 and total={total!r}")
+    if correct == 0:
+        return 1.0
+    # Sum the shorter tail exactly; the complement is exact in integers too.
+    if correct > total // 2:
+        tail = sum(math.comb(total, i) for i in range(correct, total + 1))
+    else:
+        tail = (1 << total) - sum(math.comb(total, i) for i in range(0, correct))
+    return tail / (1 << total)  # int / int: correctly rounded
+
+
+def load_results(path):
+    """Read a results file saved by the listening page.
+
+    Returns
+    -------
+    dict
+
+    Raises
+    ------
+    InputError
+        If the file is missing, not JSON, or not a results file.
+    """
+    p = os.fspath(path)
+    try:
+        with open(p, encoding="utf-8") as fh:
+            data = json.load(fh)
+    except FileNotFoundError:
+        raise InputError(f"{p!r}: no such file; give the JSON saved by the listening "
+                         "page") from None
+    except IsADirectoryError:
+        raise InputError(f"{p!r} is a folder; give the JSON file saved by the listening "
+                         "page") from None
+    except (UnicodeDecodeError, json.JSONDecodeError) as exc:
+        raise InputError(f"{p!r} is not valid JSON ({exc}); give the file saved by the "
+                         "listening page") from None
+    except OSError as exc:
+        raise InputError(f"{p!r} cannot be read ({exc.strerror or exc})") from None
+    if not isinstance(data, dict) or data.get("format") != RESULTS_FORMAT:
+        raise InputError(f"{p!r} is not a listening-results file (its \"format\" is not "
+                         f"{RESULTS_FORMAT!r}); give the file saved by the listening page")
+    if not isinstance(data.get("trials"), list):
+        raise InputError(f"{p!r} has no list of \"trials\"; give the file saved by the "
+                         "listening page")
+    return data
+
+
+def score_results(results):
+    """Count right answers per comparison and attach the p-value.
+
+    A trial is right when its ``answer`` equals its ``x`` (both ``"A"`` or
+    ``"B"``); the stored ``correct`` flag is checked against that.
+
+    Parameters
+    ----------
+    results : dict
+        As returned by :func:`load_results`.
+
+    Returns
+    -------
+    list of dict
+        One per comparison, in order of first trial: ``comparison`` (id),
+        ``label``, ``correct``, ``total``, ``p_value``.
+
+    Raises
+    ------
+    InputError
+        For a trial that is malformed or inconsistent.
+    """
+    labels = results.get("comparisons") or {}
+    rows = {}
+    for i, t in enumerate(results["trials"], 1):
+        if not isinstance(t, dict):
+            raise InputError(f"trial {i} is not an object; the results file is damaged")
+        cid, x, ans = t.get("comparison"), t.get("x"), t.get("answer")
+        if not isinstance(cid, str) or x not in ("A", "B") or ans not in ("A", "B"):
+            raise InputError(f"trial {i} lacks a comparison, or its x/answer are not 'A' or 'B' "
+                             f"(x={x!r}, answer={ans!r}); the results file is damaged")
+        right = x == ans
+        if "correct" in t and t["correct"] is not right:
+            raise InputError(f"trial {i} says correct={t['correct']!r} but x={x!r} and "
+                             f"answer={ans!r}; the results file was altered or damaged")
+        if cid not in rows:
+            info = labels.get(cid) if isinstance(labels, dict) else None
+            label = info.get("label") if isinstance(info, dict) else None
+            rows[cid] = {"comparison": cid, "label": str(label) if label else cid,
+                         "correct": 0, "total": 0}
+        rows[cid]["total"] += 1
+        rows[cid]["correct"] += int(right)
+    out = list(rows.values())
+    for r in out:
+        r["p_value"] = guessing_p_value(r["correct"], r["total"])
+    return out
+
+
+def format_scores(rows):
+    """Lines for the terminal: ``label: k/n right, p = ...`` per comparison."""
+    if not rows:
+        return "no trials were answered; nothing to score"
+    lines = []
+    for r in rows:
+        lines.append(f"{r['label']}: {r['correct']}/{r['total']} correct, "
+                     f"p = {r['p_value']:.4g}")
+    lines.append("p: the chance of scoring at least this well by guessing "
+                 "(one-sided binomial, 1/2 per trial).")
+    return "\n".join(lines)

@@ -1,0 +1,582 @@
+"""Listening kit and scoring: renders, level matching, the -6 dBFS cap, fades,
+the quiet-passage finder, method parsing, the page's escaping, and the
+binomial p-value against scipy.stats.binomtest."""
+
+import html.parser
+import json
+import math
+import os
+import subprocess
+import sys
+
+import numpy as np
+import pytest
+import soundfile as sf
+
+from requant.errors import InputError, OutputError, UsageError
+from requant.listen import (
+    CAP_DBFS,
+    ERROR_TARGET_DBFS,
+    find_quiet_passage,
+    level_match,
+    make_listening_kit,
+    parse_method,
+    parse_methods,
+)
+from requant.score import guessing_p_value, score_results
+
+FS = 48000
+ALL_METHODS = ["truncate", "round", "rpdf", "tpdf", "tpdf-hp", "tpdf+hearing", "tpdf+first-order"]
+
+# Textbook error power per sample, LSB² (REFERENCES.md §1-§3: Bennett 1948, Widrow & Kollár
+# 2008, Lipshitz, Wannamaker & Vanderkooy 1992): round Δ²/12, truncate Δ²/3, RPDF Δ²/6,
+# TPDF Δ²/4, times Σ n_k² when shaped (Zölzer ch. 2.3).
+TEXTBOOK_POWER = {("round", "none"): 1 / 12, ("truncate", "none"): 1 / 3,
+                  ("round", "rpdf"): 1 / 6, ("round", "tpdf"): 1 / 4, ("round", "tpdf-hp"): 1 / 4}
+
+
+def _cli_base():
+    """How to run the CLI: ``python -m requant`` once cli.py registers the commands;
+    until then a one-line shim that registers them the same way."""
+    from requant.cli import app
+    from requant.cli_listen import _command_names
+
+    if {"listen", "score"} <= _command_names(app):
+        return [sys.executable, "-m", "requant"]
+    shim = ("import sys; from requant.cli import app, main; "
+            "from requant.cli_listen import register; register(app); sys.exit(main(sys.argv[1:]))")
+    return [sys.executable, "-c", shim]
+
+
+def run_cli(*args):
+    proc = subprocess.run([*_cli_base(), *map(str, args)], capture_output=True, text=True,
+                          timeout=180)
+    return proc.returncode, proc.stdout, proc.stderr
+
+
+def tones(seconds, *, level_db=-12.0, channels=2, seed=1):
+    """A few seeded sines at ``level_db`` dBFS peak-ish, stereo."""
+    rng = np.random.default_rng(seed)
+    t = np.arange(int(round(seconds * FS))) / FS
+    x = np.zeros((t.size, channels))
+    for c in range(channels):
+        for f in (221.0, 997.0, 3150.0):
+            x[:, c] += np.sin(2 * np.pi * f * t + rng.uniform(0, 2 * np.pi))
+    return x / np.max(np.abs(x)) * 10 ** (level_db / 20)
+
+
+def fade_source(*, steady=1.0, fade=1.0, silence=0.3, top_db=-12.0, bottom_db=-150.0,
+                freq=997.0):
+    """A sine held at ``top_db`` dBFS, faded linearly in dB to ``bottom_db``, then digital
+    silence. Returns (signal (frames, 1), function level_db(t))."""
+    n = int(round((steady + fade + silence) * FS))
+    t = np.arange(n) / FS
+    level = np.where(t < steady, top_db,
+                     top_db + (bottom_db - top_db) * (t - steady) / fade)
+    amp = 10 ** (level / 20)
+    x = amp * np.sin(2 * np.pi * freq * t)
+    x[t >= steady + fade] = 0.0
+
+    def level_at(tt):
+        return top_db + (bottom_db - top_db) * (tt - steady) / fade
+
+    return x[:, None], level_at
+
+
+def sin2_fade(frames, fade_frames):
+    """Raised-cosine fade written out independently: sin²(π(n+½)/(2L)) in, mirrored out."""
+    w = np.ones(frames)
+    n = np.arange(fade_frames)
+    ramp = np.sin(np.pi * (n + 0.5) / (2 * fade_frames)) ** 2
+    w[:fade_frames] = ramp
+    w[frames - fade_frames:] = ramp[::-1]
+    return w
+
+
+def read(path):
+    return sf.read(path, dtype="float64", always_2d=True)[0]
+
+
+def peak_dbfs(x):
+    p = float(np.max(np.abs(x)))
+    return -math.inf if p == 0 else 20 * math.log10(p)
+
+
+@pytest.fixture(scope="module")
+def kit16(tmp_path_factory):
+    """Every listed method at 16 bits, with a quiet passage, on tones that fade out."""
+    d = tmp_path_factory.mktemp("kit16")
+    steady = tones(1.0)
+    fade, _ = fade_source(steady=0.0, fade=1.2, silence=0.3, top_db=-12.0)
+    src = d / "source.wav"
+    sf.write(src, np.concatenate([steady, np.repeat(fade, 2, axis=1)]), FS, subtype="FLOAT")
+    out = d / "kit"
+    kit = make_listening_kit(src, out, bits=16, methods=ALL_METHODS, quiet_passage=True,
+                             quiet_seconds=0.5, seed=11)
+    return src, out, kit
+
+
+# ---------------------------------------------------------------------------
+# renders
+
+
+def test_renders_exist_for_every_method(kit16):
+    src, out, kit = kit16
+    assert [m["method"] for m in kit["methods"]] == ALL_METHODS
+    assert json.loads((out / "figures.json").read_text()) == kit
+    frames = kit["excerpt"]["frames"]
+    assert frames == sf.info(src).frames  # shorter than the default excerpt: all of it
+    for m in kit["methods"]:
+        prog, err, quiet = (sf.info(out / m["file"]), sf.info(out / m["error_file"]),
+                            sf.info(out / m["quiet"]["file"]))
+        assert prog.subtype == "PCM_16" and err.subtype == "FLOAT" and quiet.subtype == "FLOAT"
+        assert prog.samplerate == err.samplerate == FS
+        assert prog.frames == err.frames == frames and prog.channels == 2
+        for key in ("snr_db", "a_weighted_noise_dbfs", "itu468_noise_dbfs",
+                    "correlated_error_fraction", "signal_correlated", "warnings"):
+            assert key in m["figures"]
+    assert (out / "index.html").is_file() and (out / "original.wav").is_file()
+    assert not [p for p in os.listdir(out) if p.endswith(".requant-part")]
+
+
+def test_program_renders_hold_exactly_the_requantized_codes(kit16):
+    from requant.quantize import requantize
+
+    _, out, kit = kit16
+    x = read(out / "original.wav")
+    for m in kit["methods"]:
+        y = read(out / m["file"])
+        k = y * 2.0**15
+        assert np.array_equal(k, np.round(k))  # on the 16-bit grid
+        again = requantize(x, bits=16, quantizer=m["quantizer"], dither=m["dither"],
+                           coeffs=m["coefficients"], seed=kit["seed"])
+        assert np.array_equal(y, again)
+
+
+def test_level_matching_holds(kit16):
+    _, out, kit = kit16
+    x = read(out / "original.wav")
+    delta = 2.0**-15
+    assert kit["level_match"]["held"] is True
+    for m in kit["methods"]:
+        y = read(out / m["file"])
+        n = np.concatenate(([1.0], -np.asarray(m["coefficients"])))
+        power = TEXTBOOK_POWER[(m["quantizer"], m["dither"])]
+        if n.size > 1:  # shaped: TPDF power times the NTF's sum of squares (Zölzer ch. 2.3)
+            power *= float(np.sum(n * n))
+        # y = x + ε with no gain: by Minkowski |RMS(y) - RMS(x)| <= RMS(ε) ≈ √power·Δ
+        diff = abs(math.sqrt(np.mean(y**2)) - math.sqrt(np.mean(x**2)))
+        assert diff <= 2 * math.sqrt(power) * delta, m["method"]
+        assert m["level"]["matched"] is True
+        assert abs(m["level"]["difference_db"]) <= m["level"]["tolerance_db"]
+
+
+@pytest.mark.parametrize("gain_db", [0.1, -0.1, 0.01])
+def test_level_match_catches_a_gain_change(gain_db):
+    x = tones(0.5)
+    y = np.round(x * 10 ** (gain_db / 20) * 2**15) / 2**15
+    res = level_match(x, y, bits=16, predicted_power_lsb2=0.25)
+    assert res["matched"] is False
+    assert res["difference_db"] == pytest.approx(gain_db, abs=1e-3)
+
+
+def test_error_renders_raised_by_stated_gain_and_faded(kit16):
+    _, out, kit = kit16
+    # Plain rounding noise at N bits: 6.0206·N + 1.7609 dB below a full-scale sine
+    # (REFERENCES.md §1, 98.09 dB at 16 bits); the gain puts it at ERROR_TARGET_DBFS.
+    expected_gain_db = ERROR_TARGET_DBFS + (6.0206 * 16 + 1.7609)
+    assert kit["error_gain"]["gain_db"] == pytest.approx(expected_gain_db, abs=0.01)
+    g = 10 ** (kit["error_gain"]["gain_db"] / 20)
+    x = read(out / "original.wav")
+    L = kit["excerpt"]["fade_frames"]
+    w = sin2_fade(x.shape[0], L)[:, None]
+    for m in kit["methods"]:
+        e = read(out / m["error_file"])
+        want = (read(out / m["file"]) - x) * w * g
+        free = np.abs(want) < 10 ** (CAP_DBFS / 20)
+        np.testing.assert_allclose(e[free], want[free], rtol=2e-7, atol=1e-12)
+        assert peak_dbfs(e) <= CAP_DBFS
+
+
+@pytest.mark.parametrize("bits", [1, 2])
+@pytest.mark.parametrize("method", ["truncate", "round", "tpdf", "tpdf+hearing"])
+def test_no_error_render_exceeds_cap_at_few_bits(tmp_path, bits, method):
+    t = np.arange(int(0.6 * FS)) / FS
+    loud = 0.999 * np.sign(np.sin(2 * np.pi * 110 * t)) * np.abs(np.sin(2 * np.pi * 55 * t)) ** 0.1
+    src = tmp_path / "loud.wav"
+    sf.write(src, loud, FS, subtype="FLOAT")
+    kit = make_listening_kit(src, tmp_path / "k", bits=bits, methods=[method], seed=3,
+                             quiet_passage=True, quiet_seconds=0.5)
+    m = kit["methods"][0]
+    for name in (m["error_file"], m["quiet"]["file"], "original_quiet.wav"):
+        e = read(tmp_path / "k" / name)
+        # the numbers on disk, not the figures: peak <= -6 dBFS
+        assert peak_dbfs(e) <= CAP_DBFS, name
+    assert m["error_render"]["peak_dbfs"] <= CAP_DBFS
+
+
+@pytest.mark.parametrize("bits", [1, 8, 16])
+def test_cap_engages_on_clipped_source(tmp_path, bits):
+    # A float source 3.5 dB over full scale: the requantizer clips, the error holds the
+    # clipped-off peaks, and raised by the stated gain they would exceed the cap at 8 and
+    # 16 bits. The limiter must act, and say so; at 1 bit the gain is negative (-32 dB).
+    t = np.arange(int(0.6 * FS)) / FS
+    src = tmp_path / "loud.wav"
+    sf.write(src, 1.5 * np.sin(2 * np.pi * 440 * t), FS, subtype="FLOAT")
+    kit = make_listening_kit(src, tmp_path / "k", bits=bits, methods=["tpdf"], seed=4)
+    m = kit["methods"][0]
+    e = read(tmp_path / "k" / m["error_file"])
+    assert peak_dbfs(e) <= CAP_DBFS
+    if bits == 1:
+        assert m["error_render"]["limited_samples"] == 0 and kit["error_gain"]["gain_db"] < 0
+        return
+    assert m["level"]["matched"] is False  # clipping: the error is far above its prediction
+    assert m["error_render"]["limited_samples"] > 0
+    assert peak_dbfs(e) == pytest.approx(CAP_DBFS, abs=1e-6) and peak_dbfs(e) <= CAP_DBFS
+
+
+def test_fades_identical_across_renders(kit16):
+    src, out, kit = kit16
+    raw = read(src)[: kit["excerpt"]["frames"]]
+    L = kit["excerpt"]["fade_frames"]
+    assert L == round(0.05 * FS)
+    w = sin2_fade(raw.shape[0], L)[:, None]
+    x = read(out / "original.wav")
+    assert np.array_equal(x, (raw * w).astype(np.float32).astype(np.float64))
+    delta = 2.0**-15
+    for m in kit["methods"]:
+        y = read(out / m["file"])
+        n = np.concatenate(([1.0], -np.asarray(m["coefficients"])))
+        # |ε| <= Σ|n_k| · 2 LSB (error feedback of errors bounded by 2 LSB, truncate+TPDF)
+        bound = float(np.sum(np.abs(n))) * 2 * delta
+        for part in (slice(0, L), slice(-L, None), slice(None)):
+            assert np.max(np.abs(y[part] - x[part])) <= bound, (m["method"], part)
+
+
+# ---------------------------------------------------------------------------
+# quiet passage
+
+
+@pytest.mark.parametrize("floor_dbfs", [-118.09, -70.0, -40.0])
+def test_quiet_passage_finder_finds_the_fade_tail(floor_dbfs):
+    x, level_at = fade_source(steady=1.0, fade=6.0, silence=1.0)
+    found = find_quiet_passage(x, FS, seconds=1.0, floor_dbfs=floor_dbfs)
+    assert found is not None
+    start, frames = found
+    # the fade crosses the floor where top + (bottom - top)(t - 1)/6 = floor
+    t_cross = 1.0 + 6.0 * (-12.0 - floor_dbfs) / (150.0 - 12.0)
+    end = (start + frames) / FS
+    assert abs(end - t_cross) <= 0.15
+    assert frames == FS  # one second
+    assert level_at(start / FS) < -12.0  # inside the fade, not the steady part
+
+
+def test_quiet_passage_prefers_a_quiet_interlude():
+    loud = tones(1.0, level_db=-6.0, channels=1)
+    quiet = tones(1.0, level_db=-60.0, channels=1, seed=2)
+    x = np.concatenate([loud, quiet, loud])
+    start, frames = find_quiet_passage(x, FS, seconds=0.8, floor_dbfs=-100.0)
+    assert FS <= start and start + frames <= 2 * FS
+
+
+def test_quiet_passage_none_for_silence():
+    assert find_quiet_passage(np.zeros((FS, 2)), FS, seconds=0.5, floor_dbfs=-100.0) is None
+
+
+def test_quiet_passage_in_kit_is_raised_after_requantization(tmp_path):
+    x, level_at = fade_source(steady=1.0, fade=2.0, silence=0.5, top_db=-20.0)
+    src = tmp_path / "fade.wav"
+    sf.write(src, x, FS, subtype="FLOAT")
+    kit = make_listening_kit(src, tmp_path / "k", bits=12, methods=["truncate", "tpdf"],
+                             quiet_passage=True, quiet_seconds=0.5, seed=8)
+    q = kit["quiet_passage"]
+    assert q["found"]
+    # the silence floor sits 20 dB below 12-bit rounding noise: 6.0206·12 + 1.7609 dB below
+    # full scale (REFERENCES.md §1), and the stretch ends where the fade reaches it
+    floor = -(6.0206 * 12 + 1.7609) - 20
+    assert q["silence_floor_dbfs"] == pytest.approx(floor, abs=0.01)
+    t_cross = 1.0 + 2.0 * (-20.0 - floor) / (150.0 - 20.0)
+    assert abs(q["start_s"] + q["duration_s"] - t_cross) <= 0.15
+    g = 10 ** (q["gain_db"] / 20)
+    assert 0 < q["gain_db"] <= kit["error_gain"]["gain_db"]
+    s0, n = q["start_frame"], q["frames"]
+    L = kit["excerpt"]["fade_frames"]
+    w = sin2_fade(n, L)[:, None]
+    faded = (x[s0:s0 + n] * w).astype(np.float32).astype(np.float64)
+    orig_q = read(tmp_path / "k" / "original_quiet.wav")
+    np.testing.assert_allclose(orig_q, np.clip(faded * g, -0.5, 0.5), rtol=2e-7, atol=1e-12)
+    for m in kit["methods"]:
+        qr = read(tmp_path / "k" / m["quiet"]["file"])
+        k = qr / g * 2.0**11  # raised after requantizing: the 12-bit grid times the gain
+        assert np.max(np.abs(k - np.round(k))) < 1e-3
+        assert peak_dbfs(qr) <= CAP_DBFS
+
+
+# ---------------------------------------------------------------------------
+# methods
+
+
+@pytest.mark.parametrize("text, expected", [
+    ("truncate", ("truncate", "none", "none")),
+    ("round", ("round", "none", "none")),
+    ("rpdf", ("round", "rpdf", "none")),
+    ("tpdf", ("round", "tpdf", "none")),
+    ("tpdf-hp", ("round", "tpdf-hp", "none")),
+    ("tpdf+hearing", ("round", "tpdf", "hearing")),
+    ("tpdf+first-order", ("round", "tpdf", "first-order")),
+    ("round+first-order", ("round", "none", "first-order")),
+    (" TPDF+Hearing ", ("round", "tpdf", "hearing")),
+])
+def test_method_parsing(text, expected):
+    m = parse_method(text)
+    assert (m.quantizer, m.dither, m.shaping) == expected
+    assert "+" not in m.slug and "/" not in m.slug
+
+
+@pytest.mark.parametrize("text", ["", "gauss", "tpdf+", "+hearing", "round+tpdf",
+                                  "tpdf+wannamaker", "tpdf++hearing", "tpdf hearing",
+                                  "none", "tpdf+hearing+first-order"])
+def test_method_parsing_errors_list_allowed_forms(text):
+    with pytest.raises(UsageError, match=r"unknown method .*truncate, round, rpdf, tpdf or "
+                                         r"tpdf-hp, optionally followed by \+first-order or "
+                                         r"\+hearing"):
+        parse_method(text)
+
+
+def test_methods_repeated_or_empty():
+    with pytest.raises(UsageError, match="given twice"):
+        parse_methods(["tpdf", "TPDF"])
+    with pytest.raises(UsageError, match="no method given"):
+        parse_methods([])
+    with pytest.raises(TypeError, match="must be a str"):
+        parse_method(3)
+
+
+def test_cli_bad_method_is_one_line(tmp_path):
+    src = tmp_path / "in.wav"
+    sf.write(src, tones(0.6), FS, subtype="FLOAT")
+    code, out, err = run_cli("listen", src, tmp_path / "kit", "--method", "gauss")
+    lines = [ln for ln in err.splitlines() if ln.strip()]
+    assert code == 2 and len(lines) == 1 and "unknown method 'gauss'" in lines[0]
+    assert "Traceback" not in err and not (tmp_path / "kit").exists()
+
+
+# ---------------------------------------------------------------------------
+# excerpt, outputs, CLI
+
+
+def test_excerpt_start_and_duration(tmp_path):
+    x = tones(2.0)
+    src = tmp_path / "in.wav"
+    sf.write(src, x, FS, subtype="FLOAT")
+    kit = make_listening_kit(src, tmp_path / "k", bits=8, methods=["tpdf"], start_s=0.5,
+                             duration_s=0.75, seed=1)
+    assert kit["excerpt"]["start_frame"] == 24000 and kit["excerpt"]["frames"] == 36000
+    got = read(tmp_path / "k" / "original.wav")
+    w = sin2_fade(36000, kit["excerpt"]["fade_frames"])[:, None]
+    x = read(src)  # as stored (float32)
+    assert np.array_equal(got, (x[24000:60000] * w).astype(np.float32).astype(np.float64))
+    with pytest.raises(UsageError, match="past the end"):
+        make_listening_kit(src, tmp_path / "k2", methods=["tpdf"], start_s=5.0)
+    with pytest.raises(UsageError, match="at least 0.5 s"):
+        make_listening_kit(src, tmp_path / "k3", methods=["tpdf"], start_s=1.8)
+    with pytest.raises(UsageError, match="duration=0.1"):
+        make_listening_kit(src, tmp_path / "k4", methods=["tpdf"], duration_s=0.1)
+
+
+def test_existing_kit_needs_overwrite_and_input_is_never_replaced(tmp_path):
+    src = tmp_path / "in.wav"
+    sf.write(src, tones(0.6), FS, subtype="FLOAT")
+    make_listening_kit(src, tmp_path / "k", methods=["tpdf"], seed=1)
+    with pytest.raises(OutputError, match="--overwrite"):
+        make_listening_kit(src, tmp_path / "k", methods=["tpdf"], seed=1)
+    make_listening_kit(src, tmp_path / "k", methods=["tpdf"], seed=1, overwrite=True)
+    own = tmp_path / "k" / "original.wav"  # a source that sits where the kit writes
+    with pytest.raises(OutputError, match="is the input"):
+        make_listening_kit(own, tmp_path / "k", methods=["tpdf"], overwrite=True)
+    with pytest.raises(InputError, match="no such file"):
+        make_listening_kit(tmp_path / "missing.wav", tmp_path / "k5", methods=["tpdf"])
+    assert not (tmp_path / "k5").exists()
+
+
+def test_cli_listen_writes_kit_and_prints_caution(tmp_path):
+    x, _ = fade_source(steady=0.6, fade=1.0, silence=0.2)
+    src = tmp_path / "in.wav"
+    sf.write(src, x, FS, subtype="FLOAT")
+    code, out, err = run_cli("listen", src, tmp_path / "kit", "--bits", 12, "-m", "truncate",
+                             "-m", "tpdf+hearing", "--quiet-passage", "--quiet-seconds", 0.5,
+                             "--seed", 5)
+    assert code == 0, err
+    kit = json.loads((tmp_path / "kit" / "figures.json").read_text())
+    assert kit["seed"] == 5 and kit["bits"] == 12 and len(kit["methods"]) == 2
+    assert "hard-limited at -6 dBFS" in out and "index.html" in out
+    assert "Start playback at a low level" in err
+
+
+def test_cli_defaults_match_library():
+    import inspect
+
+    import typer
+
+    from requant.cli_listen import DEFAULT_METHODS, register
+
+    app = typer.Typer()
+    register(app)
+    register(app)  # a second call adds nothing
+    assert len(app.registered_commands) == 2
+    cmd = next(c for c in app.registered_commands if c.name == "listen")
+    cli = {k: v.default.default for k, v in inspect.signature(cmd.callback).parameters.items()
+           if hasattr(v.default, "default")}
+    lib = inspect.signature(make_listening_kit).parameters
+    assert cli["bits"] == lib["bits"].default
+    assert cli["quiet_seconds"] == lib["quiet_seconds"].default
+    assert cli["start"] == lib["start_s"].default
+    assert tuple(DEFAULT_METHODS) == tuple(lib["methods"].default)
+
+
+# ---------------------------------------------------------------------------
+# the page
+
+
+class _Page(html.parser.HTMLParser):
+    """Collects tags, attributes and the text of elements by id (stdlib parser)."""
+
+    def __init__(self):
+        super().__init__()
+        self.tags, self.attrs, self.text, self._open = [], [], {}, []
+
+    def handle_starttag(self, tag, attrs):
+        self.tags.append(tag)
+        self.attrs.append((tag, dict(attrs)))
+        self._open.append(dict(attrs).get("id"))
+
+    def handle_endtag(self, tag):
+        if self._open:
+            self._open.pop()
+
+    def handle_data(self, data):
+        for i in self._open:
+            if i:
+                self.text[i] = self.text.get(i, "") + data
+
+
+HOSTILE = "<b>take&1 \"quoted\" 'single'.wav"
+
+
+def test_hostile_file_name_is_escaped(tmp_path):
+    src = tmp_path / HOSTILE
+    sf.write(src, tones(0.6), FS, subtype="FLOAT")
+    kit = make_listening_kit(src, tmp_path / "k", methods=["tpdf"], seed=1)
+    page = (tmp_path / "k" / "index.html").read_text(encoding="utf-8")
+    assert "<b>" not in page and "\"quoted\"" not in page
+    assert "&lt;b&gt;take&amp;1" in page
+    p = _Page()
+    p.feed(page)
+    assert "b" not in p.tags
+    assert p.text["source-name"].strip() == HOSTILE
+    data = next(a["data-kit"] for t, a in p.attrs if "data-kit" in a)
+    assert json.loads(data)["source"]["name"] == HOSTILE == kit["source"]["name"]
+
+
+def test_page_is_self_contained(kit16):
+    _, out, kit = kit16
+    page = (out / "index.html").read_text(encoding="utf-8")
+    p = _Page()
+    p.feed(page)
+    assert "http://" not in page and "https://" not in page
+    for tag, a in p.attrs:
+        assert not (tag == "script" and "src" in a)
+        assert not (tag == "link" and a.get("rel") == "stylesheet")
+        for key in ("src", "href"):
+            if key in a and a[key] not in ("#", "data:,"):
+                assert not a[key].startswith("//") and ":" not in a[key]
+                assert (out / a[key]).is_file(), a[key]
+    assert "Start playback at a low volume" in p.text["caution"]
+    n_audio = sum(1 for t, a in p.attrs if t == "audio" and "src" in a)
+    assert n_audio == 1 + 3 * len(ALL_METHODS) + 1  # original, 3 per method, quiet original
+
+
+# ---------------------------------------------------------------------------
+# scoring
+
+
+@pytest.mark.parametrize("n", list(range(1, 41)) + [57, 100, 250, 1000])
+def test_p_value_against_scipy(n):
+    from scipy.stats import binomtest
+
+    ks = range(0, n + 1) if n <= 100 else sorted({0, 1, n // 3, n // 2, n // 2 + 1,
+                                                  (2 * n) // 3, n - 1, n})
+    for k in ks:
+        # scipy.stats.binomtest (reference library), one-sided, p = 1/2 per trial
+        ref = binomtest(k, n, 0.5, alternative="greater").pvalue
+        assert guessing_p_value(k, n) == pytest.approx(ref, rel=1e-9, abs=1e-300), (k, n)
+
+
+@pytest.mark.parametrize("k, n, exact", [(9, 10, 11 / 1024), (10, 10, 1 / 1024),
+                                         (0, 5, 1.0), (0, 0, 1.0), (3, 4, 5 / 16)])
+def test_p_value_hand_computed(k, n, exact):
+    # Σ_{i>=k} C(n, i) / 2^n by hand: 9/10 -> (10 + 1)/1024, 3/4 -> (4 + 1)/16
+    assert guessing_p_value(k, n) == exact
+
+
+@pytest.mark.parametrize("k, n, exc", [(5, 4, ValueError), (-1, 4, ValueError),
+                                       (1, -1, ValueError), (1.0, 4, TypeError),
+                                       (True, 4, TypeError)])
+def test_p_value_rejects_bad_counts(k, n, exc):
+    with pytest.raises(exc):
+        guessing_p_value(k, n)
+
+
+def _results(trials):
+    return {"format": "requant-listening-results", "version": 1,
+            "comparisons": {"m1": {"label": "original vs truncate"},
+                            "m2": {"label": "original vs tpdf"}},
+            "trials": trials}
+
+
+def _trials(cid, right, wrong, seed):
+    rng = np.random.default_rng(seed)
+    out = []
+    for ok in [True] * right + [False] * wrong:
+        x = "A" if rng.integers(2) else "B"
+        ans = x if ok else ("B" if x == "A" else "A")
+        out.append({"comparison": cid, "x": x, "answer": ans, "correct": ok})
+    return out
+
+
+def test_score_cli_prints_counts_and_p(tmp_path):
+    from scipy.stats import binomtest
+
+    res = _results(_trials("m1", 7, 3, 1) + _trials("m2", 3, 1, 2))
+    path = tmp_path / "results.json"
+    path.write_text(json.dumps(res))
+    code, out, err = run_cli("score", path)
+    assert code == 0, err
+    lines = out.splitlines()
+    for label, k, n in (("original vs truncate", 7, 10), ("original vs tpdf", 3, 4)):
+        line = next(ln for ln in lines if ln.startswith(label + ":"))
+        assert f"{k}/{n} correct" in line
+        p = float(line.split("p = ")[1])
+        assert p == pytest.approx(binomtest(k, n, 0.5, alternative="greater").pvalue, rel=1e-3)
+
+
+@pytest.mark.parametrize("content, message", [
+    ("{not json", "not valid JSON"),
+    ('{"format": "something-else", "trials": []}', "not a listening-results file"),
+    (json.dumps(_results([{"comparison": "m1", "x": "A", "answer": "B", "correct": True}])),
+     "altered or damaged"),
+    (json.dumps(_results([{"comparison": "m1", "x": "C", "answer": "B"}])), "not 'A' or 'B'"),
+])
+def test_score_cli_bad_files_one_line(tmp_path, content, message):
+    path = tmp_path / "r.json"
+    path.write_text(content)
+    code, out, err = run_cli("score", path)
+    lines = [ln for ln in err.splitlines() if ln.strip()]
+    assert code == 2 and len(lines) == 1 and message in lines[0] and "Traceback" not in err
+
+
+def test_score_results_groups_in_order():
+    rows = score_results(_results(_trials("m2", 2, 0, 3) + _trials("m1", 1, 1, 4)))
+    assert [(r["comparison"], r["correct"], r["total"]) for r in rows] == [("m2", 2, 2),
+                                                                         ("m1", 1, 2)]
+    assert rows[0]["label"] == "original vs tpdf"
