@@ -114,7 +114,9 @@ def convert(
                                                          "same bits. Default: fresh, reported."),
     error: Optional[Path] = typer.Option(None, "--error", help="Write the error signal (output "
                                                                "minus input), 32-bit float."),
-    report: Optional[Path] = typer.Option(None, "--report", help="Write the report (.json)."),
+    report: Optional[Path] = typer.Option(None, "--report", help="Write the report: .json, .html "
+                                                                 "(one self-contained page) or .md "
+                                                                 "(pictures beside it)."),
     overwrite: bool = typer.Option(False, "--overwrite", help="Replace existing outputs."),
     force_dither: bool = typer.Option(False, "--force-dither",
                                       help="Dither even if the input is already on the grid."),

@@ -215,7 +215,12 @@ def convert_file(in_path, out_path, *, bits=16, quantizer="round", dither="tpdf"
         report_path = os.fspath(report_path)
         if os.path.splitext(report_path)[1].lower() not in _REPORT_KINDS:
             raise UsageError(f"{report_path!r}: name the report .json, .html or .md")
-    check_outputs([in_path], [out_path, error_path, report_path], overwrite=overwrite)
+    extra = []
+    if report_path is not None and report_path.lower().endswith(".md"):
+        from .report_render import picture_paths
+
+        extra = list(picture_paths(report_path).values())
+    check_outputs([in_path], [out_path, error_path, report_path, *extra], overwrite=overwrite)
     seed = new_seed() if seed is None else int(seed)
 
     with open_input(in_path) as f:
@@ -362,7 +367,15 @@ def _merge_analysis(report, res):
             ch["measured"]["output_true_peak_dbtp"] = res["true_peak"]["output_dbtp_per_channel"][c]
         ch["predicted"]["a_weighted_noise_dbfs"] = res["predicted"]["a_weighted_noise_dbfs"]
         ch["predicted"]["itu468_noise_dbfs"] = res["predicted"]["itu468_noise_dbfs"]
-    summary = correlated_summary(res)
+    if report["output"]["passthrough"]:
+        # written unchanged: no error, nothing to predict, nothing to warn about
+        for key in ("a_weighted_noise_dbfs", "itu468_noise_dbfs"):
+            report["predicted"][key] = None
+            for ch in report["channels"]:
+                ch["predicted"][key] = None
+        summary = {"correlated_error_fraction": 0.0, "signal_correlated": False, "warnings": []}
+    else:
+        summary = correlated_summary(res)
     report["measured"]["correlated_error_fraction"] = summary["correlated_error_fraction"]
     report["measured"]["signal_correlated"] = summary["signal_correlated"]
     report["warnings"].extend(summary["warnings"])

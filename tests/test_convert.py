@@ -274,3 +274,21 @@ def test_memory_stays_flat_in_file_length(tmp_path):
         peaks.append(tracemalloc.get_traced_memory()[1])
         tracemalloc.stop()
     assert peaks[1] < 1.5 * peaks[0] + 1_000_000
+
+
+def test_passthrough_report_has_no_error_and_no_warning(tmp_path):
+    codes = (np.arange(-2000, 2000, dtype=np.int32) * 9 << 16).reshape(-1, 1)
+    src = tmp_path / "in24.wav"
+    sf.write(src, np.concatenate([codes] * 30), 48000, subtype="PCM_24")
+    rep = convert_file(src, tmp_path / "o.wav", bits=16, report_path=tmp_path / "r.json")
+    assert rep["output"]["passthrough"] is True
+    assert rep["warnings"] == []
+    assert rep["predicted"]["a_weighted_noise_dbfs"] is None
+
+
+def test_markdown_pictures_are_not_overwritten_silently(tmp_path, float_wav):
+    (tmp_path / "r_error_spectrum.png").write_bytes(b"mine")
+    with pytest.raises(OutputError, match="already exists"):
+        convert_file(float_wav, tmp_path / "o.wav", report_path=tmp_path / "r.md")
+    assert (tmp_path / "r_error_spectrum.png").read_bytes() == b"mine"
+    assert not (tmp_path / "o.wav").exists()
