@@ -296,6 +296,12 @@ _register_listen(app)
 def main(argv=None):
     """Console entry point: one line per error, documented exit codes."""
     args = sys.argv[1:] if argv is None else list(argv)
+    import signal
+
+    if hasattr(signal, "SIGXFSZ"):
+        # a file-size limit then fails the write (EFBIG) instead of killing the process,
+        # so the temporary files are removed and the user gets one clear line
+        signal.signal(signal.SIGXFSZ, signal.SIG_IGN)
     try:
         rc = app(args=args, prog_name="requant", standalone_mode=False)
     except typer.Exit as exc:

@@ -315,12 +315,19 @@ def convert_file(in_path, out_path, *, bits=16, quantizer="round", dither="tpdf"
                 except (sf.LibsndfileError, RuntimeError, OSError) as exc:
                     if sys.exc_info()[0] is None:
                         raise _wrap_write_error(exc, out_path) from None
+            if done != frames:
+                short_note = (f"{in_path!r} holds {done} frames although its header declares "
+                              f"{frames}; the frames that are there were converted.")
+            else:
+                short_note = None
             report = _build_report(
                 rq, in_path=in_path, in_format=in_format, in_subtype=in_subtype, rate=rate,
                 frames=done, out_path=out_path, out_format=out_fmt, subtype=subtype, cbits=cbits,
                 error_path=error_path, e_fmt=e_fmt, shaping_name=shaping_name, coeffs=coeffs,
                 dither=dither, passthrough=passthrough, force_dither=force_dither,
                 block_frames=block_frames)
+            if short_note:
+                report["warnings"].append(short_note)
             if analyzer is not None:
                 t = rq.totals()
                 analyzer.use_sums(sum_x=t["sum_x"], sum_e=t["sum_e"] / rq.scale,
