@@ -110,18 +110,52 @@ def _first_nonfinite(x, start_frame):
     return start_frame + int(bad[0]), int(bad[1]), ("NaN" if np.isnan(x[tuple(bad)]) else "infinite")
 
 
+def _write_limits_hit(folder):
+    """Name what most likely refused a write ('read-only', 'size limit', 'disk full', None).
+
+    libsndfile reports refused writes as a bare "System error."; look at the
+    destination's mount and permissions, the process's file-size limit and the
+    destination's free space.
+    """
+    try:
+        st = os.statvfs(folder)
+        if st.f_flag & os.ST_RDONLY or not os.access(folder, os.W_OK):
+            return "read-only"
+    except OSError:
+        pass
+    try:
+        import resource
+
+        soft, _ = resource.getrlimit(resource.RLIMIT_FSIZE)
+        if soft != resource.RLIM_INFINITY:
+            return "size limit"
+    except (ImportError, OSError, ValueError):
+        pass
+    try:
+        st = os.statvfs(folder)
+        if st.f_bavail * st.f_frsize < (4 << 20):
+            return "disk full"
+    except OSError:
+        pass
+    return None
+
+
 def _wrap_write_error(exc, path):
     code = getattr(exc, "errno", None)
     text = str(exc)
-    if code == errno.ENOSPC or "No space" in text:
-        return OutputError(f"the disk is full while writing {path!r}; free some space and run again")
-    if code in (errno.EACCES, errno.EPERM, errno.EROFS) or "ermission" in text or "Read-only" in text:
+    folder = os.path.dirname(os.path.abspath(path))
+    limit = _write_limits_hit(folder) if code is None else None
+    if (code in (errno.EACCES, errno.EPERM, errno.EROFS) or "ermission" in text
+            or "Read-only" in text or limit == "read-only"):
         return OutputError(f"cannot write in the folder of {path!r} (read-only or no permission); "
                            "choose a writable destination")
-    if code == errno.EFBIG or "too large" in text:
+    if code == errno.ENOSPC or "No space" in text or limit == "disk full":
+        return OutputError(f"the disk is full while writing {path!r}; free some space and run again")
+    if code == errno.EFBIG or "too large" in text or limit == "size limit":
         return OutputError(f"the file size limit was reached while writing {path!r}; "
-                           "free space or raise the limit")
-    return OutputError(f"writing {path!r} failed ({text}); check the destination")
+                           "free space or raise the limit (ulimit -f)")
+    return OutputError(f"writing {path!r} failed ({text.strip() or type(exc).__name__}); "
+                       "check the destination")
 
 
 def write_json_atomic(obj, path):
