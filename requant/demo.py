@@ -212,12 +212,19 @@ def run_demo(out, *, source=None, seed=2026):
         )
     out = Path(out)
     out.mkdir(parents=True, exist_ok=True)
+    from .atomic import AtomicOutputs
+    from .report import write_report
+
     rows = []
     for i, (name, out_name, settings) in enumerate(_JOBS):
         stem = os.path.splitext(out_name)[0]
         rep = convert_file(src / name, out / out_name, seed=seed + i, overwrite=True,
                            error_path=out / f"{stem}_error.wav",
-                           report_path=out / f"{stem}_report.json", **settings)
+                           report_path=out / f"{stem}_report.json", keep_analyzer=True,
+                           **settings)
+        # the same figures as a page with pictures
+        with AtomicOutputs() as outs:
+            write_report(rep, rep.pop("_analyzer"), out / f"{stem}_report.html", outs)
         rows.append((out_name, settings["bits"], _method(settings), rep))
     head = (f"{'output':36} {'bits':>4} {'method':21} {'SNR dB':>6} {'pred':>6} "
             f"{'err LSB²':>8} {'pred':>6} {'A-wtd dBFS':>10} {'pred':>7}  follows signal")
@@ -235,5 +242,6 @@ def run_demo(out, *, source=None, seed=2026):
     lines.append("SNR in dB; error power per sample in LSB² of the target word length; A-wtd: "
                  "A-weighted noise (IEC 61672-1). 'follows signal': signal-correlated error "
                  "found (undithered quiet passages).")
-    lines.append("Reports (JSON) and error signals are beside each output.")
+    lines.append("Reports (JSON, and HTML with pictures) and error signals are beside each "
+                 "output; open tidewater_16bit_tpdf_hearing_report.html to start.")
     return "\n".join(lines)
