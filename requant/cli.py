@@ -288,8 +288,10 @@ def demo(
     print(CAUTION, file=sys.stderr)
 
 
+from .cli_batch import register as _register_batch  # noqa: E402  (imports typer only)
 from .cli_listen import register as _register_listen  # noqa: E402
 
+_register_batch(app)
 _register_listen(app)
 
 

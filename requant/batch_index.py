@@ -1,0 +1,159 @@
+"""The HTML index of a batch: one row per file, problem files first, sortable.
+
+The page is self-contained (inline style and a small inline script, no
+network) and rendered with jinja2 with autoescaping on, so file names and
+messages cannot inject markup.
+"""
+
+import datetime as _dt
+import os
+from urllib.parse import quote
+
+__all__ = ["index_rows", "render_index", "write_index"]
+
+_TEMPLATE = "batch_index.html.j2"
+
+
+def _rank(ev):
+    if ev["status"] == "failed":
+        return 0
+    if ev.get("warnings"):
+        return 1
+    if ev.get("output") is None:
+        return 3
+    return 2
+
+
+def _num(v, spec):
+    return "" if v is None else format(v, spec)
+
+
+def index_rows(events):
+    """Table rows for events, problem files first.
+
+    Parameters
+    ----------
+    events : list of dict
+        Manifest events of one run (see :func:`requant.batch.convert_task`).
+
+    Returns
+    -------
+    list of dict
+        Ordered failed, with warnings, fine, not audio; by source within
+        each group. Each row holds display strings and a sort key per cell.
+    """
+    rows = []
+    for ev in sorted(events, key=lambda e: (_rank(e), e["source"])):
+        fig = ev.get("figures") or {}
+        status = ev["status"]
+        if status == "skipped" and ev.get("output") is not None:
+            label = ev.get("reason") or "skipped"
+        elif status == "skipped":
+            label = "not audio"
+        else:
+            label = status
+        problem = ev.get("error") or "; ".join(ev.get("warnings") or [])
+        if not problem and status == "skipped":
+            problem = ev.get("reason") if ev.get("output") is None else ""
+        out = ev.get("output")
+        meta = ev.get("metadata") or {}
+        kept = (meta.get("copied") or []) + (meta.get("rewritten") or [])
+        rows.append({
+            "rank": _rank(ev),
+            "status": label,
+            "status_class": {0: "failed", 1: "warn", 2: "ok", 3: "other"}[_rank(ev)],
+            "source": ev["source"],
+            "output": out,
+            "href": quote(os.fsencode(out)) if out else None,
+            "duration": _num(ev.get("duration_s"), ".3f"),
+            "rate": _num(fig.get("sample_rate"), "d"),
+            "channels": _num(fig.get("channels"), "d"),
+            "formats": (f"{fig['input_subtype']} → {fig['output_subtype']} "
+                        f"{fig['output_format']}") if fig else "",
+            "snr": _num(ev.get("snr_db"), ".2f"),
+            "snr_pred": _num(fig.get("snr_predicted_db"), ".2f"),
+            "err": _num(fig.get("error_power_lsb2"), ".4f"),
+            "err_pred": _num(fig.get("error_power_predicted_lsb2"), ".4f"),
+            "method": (f"{fig.get('dither_applied')}, {fig.get('shaping')}") if fig else "",
+            "kinds": ", ".join(ev.get("warning_kinds") or []),
+            "chunks": " ".join(c.strip() for c in kept),
+            "dropped": " ".join(c.strip() for c in meta.get("dropped") or []),
+            "problem": problem,
+            "seconds": _num(ev.get("seconds"), ".3f"),
+            "sha": (ev.get("output_sha256") or "")[:12],
+        })
+    return rows
+
+
+def _env():
+    import jinja2
+
+    folder = os.path.join(os.path.dirname(os.path.abspath(__file__)), "templates")
+    return jinja2.Environment(loader=jinja2.FileSystemLoader(folder), autoescape=True,
+                              trim_blocks=True, lstrip_blocks=True,
+                              undefined=jinja2.StrictUndefined)
+
+
+def render_index(events, summary):
+    """The index page as a string.
+
+    Parameters
+    ----------
+    events : list of dict
+        Manifest events of the run.
+    summary : dict
+        The run summary (:func:`requant.batch.run_batch`).
+
+    Returns
+    -------
+    str
+        HTML5.
+    """
+    c = summary["counts"]
+    t = summary["throughput"]
+
+    def fmt(v, spec):
+        return "n/a" if v is None else format(v, spec)
+
+    facts = [
+        ("converted", str(c.get("converted", 0))),
+        ("up to date", str(c.get("up_to_date", 0))),
+        ("failed", str(c.get("failed", 0))),
+        ("not audio", str(c.get("not_audio", 0))),
+        ("with warnings", str(len(summary["warnings"]))),
+        ("audio converted", _clock(summary["converted_duration_s"])),
+        ("wall time", f"{summary['wall_s']:.1f} s"),
+        ("throughput", f"{fmt(t['files_per_s'], '.1f')} files/s, "
+                       f"{fmt(t['audio_s_per_s'], '.0f')} audio s/s"),
+        ("workers", f"{summary['jobs']} ({summary['executor']})"),
+        ("run seed", str(summary["run_seed"])),
+        ("settings id", summary["settings_id"][:16]),
+    ]
+    s = summary["settings"]
+    settings_line = (f"{s['bits']} bits, {s['quantizer']}, dither {s['dither']}, shaping "
+                     f"{s['shaping']}, format {s['format']}")
+    return _env().get_template(_TEMPLATE).render(
+        title=f"requant batch: {os.path.basename(summary['dst'].rstrip(os.sep)) or summary['dst']}",
+        summary=summary, facts=facts, settings_line=settings_line, rows=index_rows(events),
+        generated=_dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
+    )
+
+
+def _clock(seconds):
+    seconds = float(seconds or 0.0)
+    if seconds < 60:
+        return f"{seconds:.1f} s"
+    h, rem = divmod(int(round(seconds)), 3600)
+    m, sec = divmod(rem, 60)
+    return f"{h}:{m:02d}:{sec:02d}" if h else f"{m}:{sec:02d}"
+
+
+def write_index(path, events, summary):
+    """Render the index and write it atomically (temporary file, then rename)."""
+    from .atomic import AtomicOutputs
+
+    html = render_index(events, summary)
+    with AtomicOutputs() as outs:
+        tmp = outs.path_for(path)
+        with open(tmp, "w", encoding="utf-8", errors="replace") as fh:
+            fh.write(html)

@@ -1,0 +1,312 @@
+"""The ``batch`` command: parsing and printing only.
+
+``register(app)`` adds the command to requant's typer app; the lead calls it
+from :mod:`requant.cli`. The domain work is :func:`requant.batch.run_batch`,
+imported inside the command so that ``requant --help`` stays fast.
+
+Options default to None here so that the command can tell which ones were
+given: explicit options override a ``--profile``, which overrides the
+library defaults.
+"""
+
+import sys
+import time
+from enum import Enum
+from pathlib import Path
+from typing import List, Optional
+
+import typer
+
+__all__ = ["register", "OutFormat", "ConsoleReporter"]
+
+_LIST_LIMIT = 10
+
+
+class OutFormat(str, Enum):
+    same = "same"
+    wav = "wav"
+    flac = "flac"
+    aiff = "aiff"
+
+
+def _clock(seconds):
+    if float(seconds or 0.0) < 60:
+        return f"{float(seconds or 0.0):.1f} s"
+    seconds = int(round(float(seconds or 0.0)))
+    h, rem = divmod(seconds, 3600)
+    m, s = divmod(rem, 60)
+    return f"{h}:{m:02d}:{s:02d}" if h else f"{m}:{s:02d}"
+
+
+def _show(name):
+    """A file name on one line: as it is when printable, else with escapes."""
+    return name if name.isprintable() else repr(name)
+
+
+def _fmt(v, spec):
+    return "n/a" if v is None else format(v, spec)
+
+
+class ConsoleReporter:
+    """Progress for people: a rich bar on a terminal, a few plain lines otherwise.
+
+    Parameters
+    ----------
+    quiet : bool
+        Print only warnings and errors (failures are always printed).
+    stream : file, default sys.stderr
+        Where progress and problems go; the final summary goes to stdout.
+    tty : bool, optional
+        Force the bar on or off (default: ``stream.isatty()``).
+    """
+
+    def __init__(self, quiet=False, stream=None, tty=None):
+        self.quiet = quiet
+        self.stream = stream or sys.stderr
+        self.tty = self.stream.isatty() if tty is None else tty
+        self._bar = None
+        self._task = None
+        self._next_line = 0
+        self._last_line_t = 0.0
+        self._t0 = time.monotonic()
+
+    def _print(self, text, err=True):
+        if self._bar is not None:
+            self._bar.console.print(text, markup=False, highlight=False)
+        else:
+            print(text, file=self.stream if err else sys.stdout, flush=True)
+
+    def started(self, info):
+        self._t0 = time.monotonic()
+        self._files = info["files"]
+        if self.quiet:
+            return
+        print(f"requant batch: {info['files']} files ({info['audio_files']} to check or convert) "
+              f"into {info['dst']}; {info['executor']}; run seed {info['run_seed']} "
+              f"({info['seed_origin']})", flush=True)
+        if self.tty and info["files"]:
+            from rich.console import Console
+            from rich.progress import (BarColumn, Progress, TextColumn, TimeElapsedColumn,
+                                       TimeRemainingColumn)
+
+            self._bar = Progress(
+                TextColumn("converting"), BarColumn(),
+                TextColumn("{task.fields[files]} files"),
+                TextColumn("{task.fields[audio]} of audio"),
+                TimeElapsedColumn(), TextColumn("ETA"), TimeRemainingColumn(),
+                console=Console(file=self.stream), transient=True,
+                # no refresh thread while worker processes are forked (fork safety):
+                # file_done and tick refresh the bar instead
+                auto_refresh=info.get("threads_ok", True))
+            self._bar.start()
+            self._task = self._bar.add_task("batch", total=max(1, info["bytes"]),
+                                            files=f"0/{info['files']}", audio=_clock(0))
+        else:
+            self._step = max(1, info["files"] // 10)
+            self._next_line = self._step
+
+    def tick(self):
+        if self._bar is not None:
+            self._bar.refresh()
+
+    def message(self, kind, text):
+        if kind == "warning" or not self.quiet:
+            self._print(f"{kind}: {text}")
+
+    def file_done(self, event, progress):
+        if event["status"] == "failed":
+            self._print(f"failed: {_show(event['source'])}: {event['error']}")
+        if self.quiet:
+            return
+        if self._bar is not None:
+            self._bar.update(self._task, completed=progress["bytes_done"],
+                             files=f"{progress['files_done']}/{progress['files_total']}",
+                             audio=_clock(progress["audio_s_done"]))
+            now = time.monotonic()
+            if now - self._last_line_t > 0.1:
+                self._last_line_t = now
+                self._bar.refresh()
+            return
+        now = time.monotonic()
+        done = progress["files_done"]
+        if done >= self._next_line or (now - self._last_line_t > 30 and done < self._files):
+            self._last_line_t = now
+            while self._next_line <= done:
+                self._next_line += self._step
+            self._print(f"  {done}/{progress['files_total']} files, "
+                        f"{_clock(progress['audio_s_done'])} of audio, "
+                        f"{now - self._t0:.1f} s")
+
+    def close(self):
+        if self._bar is not None:
+            self._bar.stop()
+            self._bar = None
+
+    def finished(self, summary):
+        self.close()
+
+
+def _print_list(title, rows, stream):
+    if not rows:
+        return
+    print(f"{title} ({len(rows)}):", file=stream)
+    for line in rows[:_LIST_LIMIT]:
+        print(f"  {line}", file=stream)
+    if len(rows) > _LIST_LIMIT:
+        print(f"  ... and {len(rows) - _LIST_LIMIT} more (see the summary file)", file=stream)
+
+
+def _print_summary(summary, quiet):
+    import os
+
+    c, t = summary["counts"], summary["throughput"]
+    dst = summary["dst"]
+    if not quiet:
+        line = (f"converted {c['converted']}, up to date {c['up_to_date']}, failed {c['failed']}, "
+                f"not audio {c['not_audio']}")
+        if c.get("excluded"):
+            line += f", excluded by patterns {c['excluded']}"
+        if c.get("not_started"):
+            line += f", not started {c['not_started']}"
+        print(f"{line} in {summary['wall_s']:.1f} s ({_fmt(t['files_per_s'], '.1f')} files/s, "
+              f"{_clock(summary['converted_duration_s'])} of audio converted, "
+              f"{_fmt(t['audio_s_per_s'], '.0f')} audio seconds per second)")
+        for note in summary["notes"]:
+            print(f"note: {note}")
+    _print_list("failed", [f"{_show(f['source'])}: {f['error']}" for f in summary["failures"]],
+                sys.stderr)
+    warn = [f"{_show(w['source'])}: {', '.join(w['kinds']) or 'warning'}"
+            + (" (from an earlier run)" if w.get("earlier_run") else "")
+            for w in summary["warnings"]]
+    _print_list("files with warnings", warn, sys.stderr)
+    if not quiet:
+        _print_list("not audio, skipped", [f"{_show(n['source'])} ({n['reason']})"
+                                           for n in summary["not_audio"]], sys.stdout)
+        print(f"manifest {os.path.join(dst, summary['manifest'])}; summary "
+              f"{os.path.join(dst, 'requant-summary.json')}; index "
+              f"{os.path.join(dst, summary['index'])}")
+
+
+def _print_dry_run(result, quiet):
+    if not quiet:
+        for it in result["items"]:
+            target = (f" -> {_show(it['output'])}" if it["output"] and it["output"] != it["source"]
+                      else "")
+            print(f"{'would ' + it['action']:14} {_show(it['source'])}{target}  ({it['reason']})")
+    c = result["counts"]
+    seed = (f"run seed {result['run_seed']} ({result['seed_origin']})"
+            if result["run_seed"] is not None else "a fresh run seed would be drawn")
+    print(f"dry run: would convert {c['convert']}, skip {c['skip']}, fail {c['fail']}"
+          + (f", {result['excluded']} excluded by patterns" if result["excluded"] else "")
+          + f"; {seed}; nothing was written")
+
+
+def register(app):
+    """Add the ``batch`` command to a typer app (requant's own, in requant/cli.py)."""
+    from .cli import CAUTION, Dither, Quantizer, _err, friendly
+
+    @app.command(name="batch")
+    @friendly
+    def batch(
+        src: Path = typer.Argument(..., help="Folder of audio files (walked recursively; links "
+                                             "to folders are not followed)."),
+        dst: Path = typer.Argument(..., help="Destination folder: mirrors SRC's tree and holds "
+                                             "the manifest, summary and index."),
+        bits: Optional[int] = typer.Option(None, "--bits", "-b", min=1, max=32,
+                                           help="Target word length [default: 16]."),
+        quantizer: Optional[Quantizer] = typer.Option(
+            None, help="round: nearest, ties up; truncate: toward minus infinity "
+                       "[default: round]."),
+        dither: Optional[Dither] = typer.Option(None, help="Dither added before quantizing "
+                                                           "[default: tpdf]."),
+        shaping: Optional[str] = typer.Option(None, help="Noise shaping: none, first-order, "
+                                                         "hearing, a JSON file of coefficients, "
+                                                         "or a comma list [default: none]."),
+        shaping_order: Optional[int] = typer.Option(None, min=1, max=64,
+                                                    help="Order of the 'hearing' design."),
+        shaping_limit: Optional[float] = typer.Option(None, help="Limit on the total noise gain "
+                                                                 "of the 'hearing' design, dB."),
+        seed: Optional[int] = typer.Option(None, min=0, max=2**63 - 1,
+                                           help="Run seed; each file's seed derives from it and "
+                                                "the file's path. Default: the previous run's "
+                                                "seed in DST, else a fresh one."),
+        force_dither: Optional[bool] = typer.Option(
+            None, "--force-dither/--no-force-dither",
+            help="Dither even files already on the target grid [default: no]."),
+        analyze: Optional[bool] = typer.Option(
+            None, "--analyze/--no-analyze",
+            help="Measure each file's weighted noise, signal-correlated error and true peak "
+                 "(about 5x slower on short files) [default: no]."),
+        format: Optional[OutFormat] = typer.Option(
+            None, "--format", help="Output format; 'same' keeps WAV, FLAC and AIFF and writes "
+                                   "other sources as WAV [default: same]."),
+        include: Optional[List[str]] = typer.Option(
+            None, "--include", help="Only files whose relative path (or name) matches this glob; "
+                                    "repeatable."),
+        exclude: Optional[List[str]] = typer.Option(
+            None, "--exclude", help="Leave out files whose relative path (or name) matches this "
+                                    "glob; repeatable."),
+        profile: Optional[Path] = typer.Option(None, "--profile",
+                                               help="Saved delivery settings (TOML); options "
+                                                    "given here override it."),
+        jobs: Optional[int] = typer.Option(None, "--jobs", "-j", min=1,
+                                           help="Worker processes [default: all cores]."),
+        overwrite: bool = typer.Option(False, "--overwrite",
+                                       help="Replace outputs in DST that requant batch did not "
+                                            "write."),
+        dry_run: bool = typer.Option(False, "--dry-run",
+                                     help="Say what would be done; write nothing."),
+        block_frames: Optional[int] = typer.Option(None, min=1,
+                                                   help="Frames per block (the output is the same "
+                                                        "for any value) [default: 65536]."),
+        quiet: bool = typer.Option(False, "--quiet", "-q",
+                                   help="Print only warnings and errors."),
+    ):
+        """Convert a folder tree (a sound library) into a mirrored tree, with a manifest.
+
+        Reruns skip files already converted with the same settings; a broken
+        file is recorded and the batch goes on. Exit code 0 when nothing
+        failed, 1 when some file failed, 2 for bad options, 130 when
+        interrupted (rerun the same command to resume).
+        """
+        from .batch import resolve_settings, run_batch
+
+        prof = None
+        if profile is not None:
+            from .profile import load_profile
+
+            prof = load_profile(profile)
+        options = {
+            "bits": bits, "quantizer": quantizer.value if quantizer else None,
+            "dither": dither.value if dither else None, "shaping": shaping,
+            "shaping_order": shaping_order, "shaping_limit_db": shaping_limit,
+            "force_dither": force_dither, "format": format.value if format else None,
+            "include": include or None, "exclude": exclude or None, "seed": seed,
+            "block_frames": block_frames, "analyze": analyze,
+        }
+        settings = resolve_settings(options, prof)
+        reporter = ConsoleReporter(quiet=quiet)
+        try:
+            result = run_batch(src, dst, settings, jobs=jobs, overwrite=overwrite,
+                               dry_run=dry_run, reporter=reporter,
+                               profile_path=str(profile) if profile else None)
+        finally:
+            reporter.close()
+        if dry_run:
+            _print_dry_run(result, quiet)
+            return
+        if result["interrupted"]:
+            import os
+
+            c = result["counts"]
+            _err(f"interrupted after {c['converted']} converted and {c['failed']} failed "
+                 f"(summary in {os.path.join(result['dst'], 'requant-summary.json')}); no "
+                 "partial output was left behind; run the same command again to resume")
+            raise typer.Exit(code=130)
+        _print_summary(result, quiet)
+        if settings["bits"] <= 8 and not quiet and result["counts"]["converted"]:
+            print(CAUTION, file=sys.stderr)
+        if result["counts"]["failed"]:
+            raise typer.Exit(code=1)
+
+    return batch
