@@ -12,7 +12,7 @@ import threading
 
 import numpy as np
 
-__all__ = ["BlockReader", "BlockWriter"]
+__all__ = ["BlockReader", "BlockWriter", "SyncWriter", "read_blocks"]
 
 _END = object()
 
@@ -183,3 +183,39 @@ class BlockWriter:
         if self._athread is not None:
             self._athread.join()
         self._raise()
+
+
+def read_blocks(f, block_frames, dtype):
+    """Plain, same-thread counterpart of :class:`BlockReader` (for short files)."""
+    buf = np.empty((block_frames, f.channels), dtype=dtype)
+    start = 0
+    while True:
+        x = f.read(block_frames, dtype=dtype, out=buf)
+        if x.shape[0] == 0:
+            return
+        yield start, x
+        start += x.shape[0]
+
+
+class SyncWriter:
+    """Same-thread counterpart of :class:`BlockWriter` (for short files).
+
+    Starting threads costs more than a file of one block takes to write.
+    """
+
+    def __init__(self, files, shapes_dtypes, consumer=None):
+        self._files = list(files)
+        self._consumer = consumer
+        self._bufs = tuple(np.empty(s, dtype=d) for s, d in shapes_dtypes)
+
+    def buffers(self):
+        return self._bufs
+
+    def submit(self, bufs, frames):
+        for f, b in zip(self._files, bufs):
+            f.write(b[:frames])
+        if self._consumer is not None:
+            self._consumer(bufs, frames)
+
+    def close(self):
+        pass

@@ -17,7 +17,7 @@ import numpy as np
 
 from . import __version__
 from .atomic import AtomicOutputs, check_outputs
-from .blockio import BlockReader, BlockWriter
+from .blockio import BlockReader, BlockWriter, SyncWriter, read_blocks
 from .errors import InputError, OutputError, RequantError, UsageError
 from .formats import (RF64_THRESHOLD, container_bits_of, format_for_path, read_dtype_for,
                       subtype_for)
@@ -91,9 +91,11 @@ def _on_grid(f, *, dtype, scale, kmin, kmax, block_frames, subtype):
         return True
     f.seek(0)
     try:
-        buf = np.empty((block_frames, f.channels), dtype=np.float64)
+        # a small first look settles almost every real file (the first off-grid sample)
+        n = min(block_frames, 4096)
         while True:
-            x = f.read(block_frames, dtype="float64", out=buf)
+            x = f.read(n, dtype="float64")
+            n = block_frames
             if x.shape[0] == 0:
                 return True
             v = x * scale
@@ -205,7 +207,7 @@ def convert_file(in_path, out_path, *, bits=16, quantizer="round", dither="tpdf"
     progress : callable(frames_done, frames_total), optional
     tags : dict, optional
         Text tags to store (soundfile's names: title, artist, comment, ...).
-    finalize : callable(tmp_output_path, output_format) -> dict or None, optional
+    finalize : callable(tmp_output_path, output_format, report) -> dict or None, optional
         Called on the finished temporary output before it is renamed into
         place (batch uses it to copy WAV chunks). Its dict goes into
         ``report['output']['metadata']``. An exception aborts the conversion
@@ -313,11 +315,17 @@ def convert_file(in_path, out_path, *, bits=16, quantizer="round", dither="tpdf"
             else:
                 layouts = layouts[:len(files)]
             want_err = werr is not None or analyzer is not None
-            writer = BlockWriter(files, layouts, consumer=consumer)
+            short = frames <= block_frames
+            if short:  # one block: threads would cost more than they save
+                writer = SyncWriter(files, layouts, consumer=consumer)
+                blocks = read_blocks(f, block_frames, dtype)
+            else:
+                writer = BlockWriter(files, layouts, consumer=consumer)
+                blocks = None
             done = 0
             try:
                 f.seek(0)
-                for start, x in BlockReader(f, block_frames, dtype):
+                for start, x in blocks or BlockReader(f, block_frames, dtype):
                     n = x.shape[0]
                     bufs = writer.buffers()
                     rq.process(x, codes=bufs[0], error=want_err,
@@ -371,7 +379,7 @@ def convert_file(in_path, out_path, *, bits=16, quantizer="round", dither="tpdf"
                 if keep_analyzer:
                     report["_analyzer"] = analyzer
             if finalize is not None:
-                report["output"]["metadata"] = finalize(tmp_out, out_fmt)
+                report["output"]["metadata"] = finalize(tmp_out, out_fmt, report)
             if report_path is not None:
                 from .report import write_report
 
