@@ -415,3 +415,107 @@ def test_sigint_during_convert_leaves_nothing(tmp_path):
     assert len(lines) == 1 and "interrupted" in lines[0] and "Traceback" not in stderr
     assert tree_state(tmp_path) == before
     assert part_files(tmp_path) == []
+
+
+# --- batch ---------------------------------------------------------------------------------
+
+
+def library(tmp):
+    """A small tree with good files, broken ones, a non-audio file and a symlink loop."""
+    src = tmp / "lib"
+    (src / "sub" / "deeper").mkdir(parents=True)
+    tone(src / "good.wav", frames=2400)
+    tone(src / "sub" / "good.flac", frames=2400, subtype="PCM_24")
+    tone(src / "sub" / "deeper" / "good.aiff", frames=2400, subtype="PCM_16", rate=44100)
+    (src / "empty.wav").write_bytes(b"")
+    (src / "garbage.wav").write_bytes(np.random.default_rng(1).bytes(3000))
+    tone(src / "whole.wav", frames=2400, subtype="PCM_24")
+    (src / "sub" / "cut.wav").write_bytes((src / "whole.wav").read_bytes()[:40])
+    (src / "notes.txt").write_text("session notes\n")
+    os.symlink("..", src / "sub" / "loop")  # a symlink loop
+    return src
+
+
+BATCH_CASES = [
+    # name, extra args, profile text or None, exit code, message regex
+    ("broken files in a tree", [], None, 1, None),
+    ("bad profile: unknown key", ["--profile", "p.toml"], "bitz = 16\n", 2, r"bitz"),
+    ("bad profile: wrong type", ["--profile", "p.toml"], 'bits = "sixteen"\n', 2, r"bits"),
+    ("bad profile: out of range", ["--profile", "p.toml"], "bits = 99\n", 2, r"bits"),
+    ("bad profile: unknown dither", ["--profile", "p.toml"], 'dither = "tpfd"\n', 2, r"tpdf"),
+    ("bad profile: syntax", ["--profile", "p.toml"], "bits = = 3\n", 2, r"p\.toml"),
+    ("missing profile", ["--profile", "nope.toml"], None, 2, r"nope\.toml"),
+    ("batch: bits out of range", ["--bits", "0"], None, 2, r"--bits"),
+    ("batch: unknown format", ["--format", "mp3"], None, 2, r"--format"),
+]
+
+
+@pytest.mark.parametrize("name, extra, profile, code, message", BATCH_CASES,
+                         ids=[c[0] for c in BATCH_CASES])
+def test_batch_fault_case(tmp_path, name, extra, profile, code, message):
+    src = library(tmp_path)
+    if profile is not None:
+        (tmp_path / "p.toml").write_text(profile)
+    before = tree_state(tmp_path)
+    rc, stdout, stderr = run(["batch", "lib", "out", "--jobs", "2", *extra], cwd=tmp_path)
+    assert rc == code, (stdout, stderr)
+    assert "Traceback" not in stderr + stdout
+    after = tree_state(tmp_path)
+    for rel, digest in before.items():
+        assert after.get(rel) == digest, rel
+    assert part_files(tmp_path) == []
+    if code == 2:
+        lines = [ln for ln in stderr.splitlines() if ln.strip()]
+        assert len(lines) == 1 and lines[0].startswith("requant: error: "), stderr
+        assert __import__("re").search(message, lines[0]), lines[0]
+        assert not (tmp_path / "out").exists() or not any((tmp_path / "out").rglob("*.wav"))
+        return
+    # the batch went on past the bad files: the good ones are there, the bad ones recorded
+    out = tmp_path / "out"
+    for rel in ("good.wav", "sub/good.flac", "sub/deeper/good.aiff", "whole.wav"):
+        assert (out / rel).exists(), rel
+    import json
+
+    events = [json.loads(ln) for ln in (out / "requant-manifest.jsonl").read_text().splitlines()]
+    failed = {e["source"]: e["error"] for e in events if e["status"] == "failed"}
+    assert set(failed) == {"empty.wav", "garbage.wav", "sub/cut.wav"}
+    assert all(msg and "\n" not in msg for msg in failed.values())
+    summary = json.loads((out / "requant-summary.json").read_text())
+    assert "requant-summary" not in stderr and summary  # written
+    assert "notes.txt" in json.dumps(summary)
+
+
+def test_batch_missing_source_and_same_folder(tmp_path):
+    rc, _, stderr = run(["batch", "nowhere", "out"], cwd=tmp_path)
+    assert rc == 2 and len(stderr.strip().splitlines()) == 1 and "Traceback" not in stderr
+    src = library(tmp_path)
+    before = tree_state(tmp_path)
+    rc, _, stderr = run(["batch", "lib", "lib"], cwd=tmp_path)
+    assert rc == 2 and len(stderr.strip().splitlines()) == 1
+    assert tree_state(tmp_path) == before
+
+
+def test_sigint_during_batch_leaves_nothing_partial(tmp_path):
+    src = tmp_path / "lib"
+    src.mkdir()
+    block = np.random.default_rng(0).uniform(-0.5, 0.5, (48000, 2)).astype(np.float32)
+    for i in range(120):
+        sf.write(src / f"clip{i:03d}.wav", block, 48000, subtype="FLOAT")
+    before = tree_state(src)
+    env = dict(os.environ, PYTHONPATH=str(Path(__file__).resolve().parents[1]))
+    proc = subprocess.Popen([PY, "-m", "requant", "batch", "lib", "out", "--jobs", "2"],
+                            cwd=tmp_path, stdout=subprocess.PIPE, stderr=subprocess.PIPE,
+                            text=True, env=env, start_new_session=True)
+    manifest = tmp_path / "out" / "requant-manifest.jsonl"
+    assert wait_for(lambda: manifest.exists() and len(manifest.read_text().splitlines()) >= 5)
+    os.killpg(proc.pid, signal.SIGINT)  # as a terminal's Ctrl-C: the whole group
+    stdout, stderr = proc.communicate(timeout=60)
+    assert proc.returncode == 130, stderr
+    errors = [ln for ln in stderr.splitlines() if ln.startswith("requant: error: ")]
+    assert len(errors) == 1 and "interrupted" in errors[0] and "Traceback" not in stderr
+    assert tree_state(src) == before
+    assert part_files(tmp_path) == []
+    # rerun resumes and completes
+    rc, _, stderr = run(["batch", "lib", "out", "--jobs", "2"], cwd=tmp_path)
+    assert rc == 0, stderr
+    assert len(list((tmp_path / "out").glob("clip*.wav"))) == 120
