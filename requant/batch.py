@@ -1289,9 +1289,12 @@ def _plan(src, dst, settings, *, prune, run_seed, sid, overwrite, events):
                 "error": f"{out_path!r} already exists and was not written by requant batch; "
                          "move it away or pass --overwrite to replace it"})
             continue
+        # Every task may replace its output: the output is claimed for this run (STATE_NAME)
+        # before any work starts, and a task run again after its worker died (a local pool's
+        # retry, a cluster's rescheduling) finds what the lost worker renamed into place.
         tasks.append({"source": e["source"], "output": rel_out, "source_path": src_path,
                       "output_path": out_path, "seed": seed, "settings": task_settings,
-                      "overwrite": bool(exists and mine), "expect_sha256": expect,
+                      "overwrite": True, "expect_sha256": expect,
                       "reason": reason, "note": e["note"], "size": e["size"],
                       "previous": prev if expect else None})
     info = {"entries": len(entries), "excluded": excluded, "claims": claims}
