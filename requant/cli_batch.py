@@ -251,6 +251,11 @@ def register(app):
                                                     "given here override it."),
         jobs: Optional[int] = typer.Option(None, "--jobs", "-j", min=1,
                                            help="Worker processes [default: all cores]."),
+        cluster: Optional[str] = typer.Option(
+            None, "--cluster", metavar="tcp://HOST:PORT",
+            help="Convert on the workers of an existing dask.distributed scheduler (needs "
+                 "requant[cluster]); SRC and DST must be shared storage at the same paths on "
+                 "every worker."),
         overwrite: bool = typer.Option(False, "--overwrite",
                                        help="Replace outputs in DST that requant batch did not "
                                             "write."),
@@ -285,13 +290,27 @@ def register(app):
             "block_frames": block_frames, "analyze": analyze,
         }
         settings = resolve_settings(options, prof)
+        executor = None
+        if cluster is not None:
+            from .cluster import DaskExecutor
+            from .errors import UsageError
+
+            if jobs is not None:
+                raise UsageError("--jobs sets local worker processes and does not combine with "
+                                 "--cluster (the dask workers' --nworkers and --nthreads decide); "
+                                 "leave out --jobs")
+            executor = DaskExecutor(cluster)
         reporter = ConsoleReporter(quiet=quiet)
         try:
+            if executor is not None and not dry_run:
+                executor.start()  # unreachable scheduler: one line, before anything is written
             result = run_batch(src, dst, settings, jobs=jobs, overwrite=overwrite,
-                               dry_run=dry_run, reporter=reporter,
+                               dry_run=dry_run, reporter=reporter, executor=executor,
                                profile_path=str(profile) if profile else None)
         finally:
             reporter.close()
+            if executor is not None:
+                executor.close()
         if dry_run:
             _print_dry_run(result, quiet)
             return
