@@ -171,3 +171,14 @@ def test_shaper_show_prints_figures_and_exports(tmp_path):
 def test_shaper_show_bad_values(args):
     code, _, stderr = run_cli("shaper", "show", *args)
     assert code == 2 and len(stderr.strip().splitlines()) == 1 and "Traceback" not in stderr
+
+
+def test_package_reexports_lazily():
+    import requant
+
+    for name in requant.__all__:
+        assert getattr(requant, name) is not None, name
+    code = ("import sys, requant; print([m for m in ('numpy', 'soundfile', 'numba') "
+            "if m in sys.modules])")
+    proc = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True)
+    assert proc.stdout.strip() == "[]"
