@@ -152,6 +152,12 @@ class Requantizer:
         self.dither = dither
         self.seed = new_seed() if seed is None else int(seed)
         self.coeffs = np.ascontiguousarray(coeffs, dtype=np.float64).reshape(-1)
+        if self.coeffs.size and dither == "tpdf-hp":
+            # the loop needs dither independent from sample to sample (Lipshitz, Wannamaker
+            # & Vanderkooy, "Dithered noise shapers and recursive digital filters", 2004)
+            raise UsageError("high-passed TPDF is not independent from sample to sample, so it "
+                             "does not belong inside a noise-shaping loop; use --dither tpdf "
+                             "with --shaping")
         self.scale = float(2 ** (bits - 1))
         self.kmin = -(2 ** (bits - 1))
         self.kmax = 2 ** (bits - 1) - 1

@@ -201,8 +201,13 @@ def run_blocks(x, sizes, **kw):
     return np.concatenate(codes), np.concatenate(errs), rq.acc
 
 
-@pytest.mark.parametrize("dither", ["none", "rpdf", "tpdf", "tpdf-hp"])
-@pytest.mark.parametrize("coeffs", SHAPERS, ids=["flat", "first", "second", "ninth"])
+# every dither unshaped; inside a shaping loop only the dithers allowed there
+DITHER_SHAPER = [(d, c) for d in ("none", "rpdf", "tpdf", "tpdf-hp") for c in SHAPERS
+                 if not (d == "tpdf-hp" and c)]
+DITHER_SHAPER_IDS = [f"{d}-{len(c)}taps" for d, c in DITHER_SHAPER]
+
+
+@pytest.mark.parametrize("dither, coeffs", DITHER_SHAPER, ids=DITHER_SHAPER_IDS)
 @pytest.mark.parametrize("sizes", [[1], [7], [4096], [3, 1000, 17, 1, 250]], ids=str)
 def test_blocks_equal_whole(rng, dither, coeffs, sizes):
     # split-equals-whole, bit for bit (the scipy.signal.max_len_seq test pattern)
@@ -215,9 +220,8 @@ def test_blocks_equal_whole(rng, dither, coeffs, sizes):
     assert np.allclose(whole_acc, acc, rtol=1e-12, atol=1e-9)
 
 
-@pytest.mark.parametrize("dither", ["none", "rpdf", "tpdf", "tpdf-hp"])
+@pytest.mark.parametrize("dither, coeffs", [p for p in DITHER_SHAPER if len(p[1]) < 9])
 @pytest.mark.parametrize("quantizer", ["round", "truncate"])
-@pytest.mark.parametrize("coeffs", SHAPERS[:3])
 def test_plain_twin_equals_compiled(rng, dither, quantizer, coeffs):
     x = rng.uniform(-1.2, 1.2, (800, 3))
     kw = dict(bits=6, dither=dither, quantizer=quantizer, coeffs=coeffs, seed=8)
@@ -295,3 +299,11 @@ def test_tpdf_words_split_into_two_uniforms():
     w = np.random.SFC64(seq).random_raw(5000)
     d = ((w >> np.uint64(32)).astype(np.float64) - (w & np.uint64(0xFFFFFFFF)).astype(np.float64)) * 2.0**-32
     assert np.array_equal(codes[:, 0] >> 24, np.floor(d + 0.5).astype(np.int64))
+
+
+def test_high_passed_tpdf_refused_inside_a_shaping_loop():
+    # only i.i.d. TPDF belongs inside a noise-shaping loop: Lipshitz, Wannamaker & Vanderkooy,
+    # "Dithered noise shapers and recursive digital filters", JAES 52(11), 2004
+    with pytest.raises(UsageError, match="--dither tpdf"):
+        Requantizer(1, bits=16, dither="tpdf-hp", coeffs=(1.0,))
+    Requantizer(1, bits=16, dither="tpdf-hp")  # fine without shaping
