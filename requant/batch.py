@@ -915,6 +915,23 @@ def _run_chunk(fn, items):
     return out
 
 
+def chunk_items(items, *, per, chunk_bytes):
+    """Yield lists of up to ``per`` items, or fewer once their ``size`` reaches ``chunk_bytes``.
+
+    Executors send small files in chunks, so the per-task cost of a process
+    pool or a cluster is paid once per chunk; a big file travels alone.
+    """
+    chunk, size = [], 0
+    for it in items:
+        chunk.append(it)
+        size += it.get("size", 0) if isinstance(it, dict) else 0
+        if len(chunk) >= per or size >= chunk_bytes:
+            yield chunk
+            chunk, size = [], 0
+    if chunk:
+        yield chunk
+
+
 class ProcessExecutor:
     """Run tasks in local worker processes, started once and reused.
 
@@ -1011,15 +1028,7 @@ class ProcessExecutor:
         """Group items into chunks: small files travel together, big ones alone."""
         items = list(items)
         per = max(1, min(self.max_chunk, len(items) // (self.workers * 8)))
-        chunk, size = [], 0
-        for it in items:
-            chunk.append(it)
-            size += it.get("size", 0) if isinstance(it, dict) else 0
-            if len(chunk) >= per or size >= self.chunk_bytes:
-                yield chunk
-                chunk, size = [], 0
-        if chunk:
-            yield chunk
+        return chunk_items(items, per=per, chunk_bytes=self.chunk_bytes)
 
     @staticmethod
     def _pairs(chunk, fut):

@@ -440,16 +440,10 @@ class DaskExecutor:
 
     def _chunks(self, items):
         """Group items: small files travel together, big ones alone."""
+        from .batch import chunk_items
+
         per = max(1, min(self.max_chunk, len(items) // (max(1, self._threads) * 8)))
-        chunk, size = [], 0
-        for it in items:
-            chunk.append(it)
-            size += it.get("size", 0) if isinstance(it, dict) else 0
-            if len(chunk) >= per or size >= self.chunk_bytes:
-                yield chunk
-                chunk, size = [], 0
-        if chunk:
-            yield chunk
+        return chunk_items(items, per=per, chunk_bytes=self.chunk_bytes)
 
     def _context(self, items):
         """Shared-path check: write a token into DST, check every worker now."""
