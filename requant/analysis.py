@@ -271,10 +271,20 @@ class ErrorAnalyzer:
             j += 1
         self._seg_index = j
         if starts:
-            bx = np.concatenate((self._buf_x, x)) if tail else x
-            be = np.concatenate((self._buf_e, e)) if tail else e
-            idx = np.asarray(starts)[:, None] + np.arange(self.L)[None, :]
-            self._add_segments(bx[idx], be[idx])
+            # gather only the analysed segments; a segment may begin in the kept tail
+            sx = np.empty((len(starts), self.L, x.shape[1]), dtype=np.float32)
+            se = np.empty_like(sx)
+            for k, s0 in enumerate(starts):
+                if s0 >= tail:
+                    sx[k] = x[s0 - tail:s0 - tail + self.L]
+                    se[k] = e[s0 - tail:s0 - tail + self.L]
+                else:
+                    head = tail - s0
+                    sx[k, :head] = self._buf_x[s0:]
+                    se[k, :head] = self._buf_e[s0:]
+                    sx[k, head:] = x[:self.L - head]
+                    se[k, head:] = e[:self.L - head]
+            self._add_segments(sx, se)
         keep = self.L - 1
         if x.shape[0] >= keep:
             self._buf_x = np.array(x[-keep:], dtype=np.float32)
@@ -320,9 +330,11 @@ class ErrorAnalyzer:
         nonzero = np.count_nonzero(x)
         if nonzero < 0.5 * x.size:
             return  # (mostly) digital silence: not a passage
-        ms = float(np.mean(x.astype(np.float64) ** 2))
-        if ms <= 0.0:
+        flat = x.reshape(-1)
+        ms_fast = float(np.dot(flat, flat)) / flat.size  # float32 sum: to rank windows
+        if ms_fast <= 0.0 or (self._quiet is not None and ms_fast > 1.01 * self._quiet["ms"]):
             return
+        ms = float(np.mean(x.astype(np.float64) ** 2))  # exact, for the candidates
         if self._quiet is None or ms < self._quiet["ms"]:
             self._quiet = {"ms": ms, "start": self._qstart, "x": x.copy(), "e": self._qe.copy()}
 

@@ -381,7 +381,7 @@ def true_peak_dbtp(x, *, flush=True):
 PHASE_GAIN = float(np.max(np.sum(np.abs(PHASES), axis=1)))
 
 #: Frames per sub-block of :func:`dual_peak_kernel_py`'s skip test.
-SUB_FRAMES = 1024
+SUB_FRAMES = 64
 
 
 def _interp_peak(row, err, use_err, phases, s0, s1):
@@ -393,9 +393,9 @@ def _interp_peak(row, err, use_err, phases, s0, s1):
         a2 = 0.0
         a3 = 0.0
         for j in range(12):
-            v = row[n - j]
+            v = float(row[n - j])
             if use_err:
-                v += err[n - j]
+                v += float(err[n - j])
             a0 += phases[0, j] * v
             a1 += phases[1, j] * v
             a2 += phases[2, j] * v
@@ -409,8 +409,9 @@ def dual_peak_kernel_py(xs, es, phases, gain, sub, peak_in, peak_out):
 
     Parameters
     ----------
-    xs, es : ndarray, float64, (channels, 11 + frames)
-        Input and error, each with 11 samples of history first.
+    xs, es : ndarray, float32 or float64, (11 + frames, channels)
+        Input and error, each with 11 samples of history first (sums are
+        formed in float64 whatever the storage).
     phases : ndarray, (4, 12)
     gain : float
         :data:`PHASE_GAIN`.
@@ -426,18 +427,18 @@ def dual_peak_kernel_py(xs, es, phases, gain, sub, peak_in, peak_out):
     sample. For the output ``x + e`` the bound is also the input's own
     sub-block peak plus ``gain * max|e|``, which skips almost everything.
     """
-    n_ch, m = xs.shape
+    m, n_ch = xs.shape
     for c in range(n_ch):
-        row = xs[c]
-        err = es[c]
+        row = xs[:, c]
+        err = es[:, c]
         s0 = 11
         while s0 < m:
             s1 = min(s0 + sub, m)
             xmax = 0.0
             emax = 0.0
             for n in range(s0 - 11, s1):
-                xmax = max(xmax, abs(row[n]))
-                emax = max(emax, abs(err[n]))
+                xmax = max(xmax, abs(float(row[n])))
+                emax = max(emax, abs(float(err[n])))
             bound_in = gain * xmax
             if bound_in > peak_in[c]:
                 pin = _interp_peak(row, err, False, phases, s0, s1)
@@ -478,8 +479,9 @@ class DualTruePeakMeter:
 
     def __init__(self, channels):
         self.channels = int(channels)
-        self._hx = np.zeros((self.channels, HISTORY_FRAMES))
-        self._he = np.zeros((self.channels, HISTORY_FRAMES))
+        # history keeps the blocks' own dtype (float32 input stays float32: exact)
+        self._hx = np.zeros((HISTORY_FRAMES, self.channels), dtype=np.float32)
+        self._he = np.zeros((HISTORY_FRAMES, self.channels), dtype=np.float32)
         self.peak_in = np.zeros(self.channels)
         self.peak_out = np.zeros(self.channels)
         self.finished = False
@@ -489,16 +491,16 @@ class DualTruePeakMeter:
         n = x.shape[0]
         if n == 0:
             return
-        xs = np.empty((self.channels, HISTORY_FRAMES + n))
-        es = np.empty((self.channels, HISTORY_FRAMES + n))
-        xs[:, :HISTORY_FRAMES] = self._hx
-        es[:, :HISTORY_FRAMES] = self._he
-        xs[:, HISTORY_FRAMES:] = x.T
-        es[:, HISTORY_FRAMES:] = e.T
+        xs = np.empty((HISTORY_FRAMES + n, self.channels), dtype=np.result_type(x, self._hx))
+        es = np.empty((HISTORY_FRAMES + n, self.channels), dtype=np.result_type(e, self._he))
+        xs[:HISTORY_FRAMES] = self._hx
+        es[:HISTORY_FRAMES] = self._he
+        xs[HISTORY_FRAMES:] = x
+        es[HISTORY_FRAMES:] = e
         run = _dual_kernel() if kernel is None else kernel
         run(xs, es, PHASES, PHASE_GAIN, SUB_FRAMES, self.peak_in, self.peak_out)
-        self._hx = np.ascontiguousarray(xs[:, -HISTORY_FRAMES:])
-        self._he = np.ascontiguousarray(es[:, -HISTORY_FRAMES:])
+        self._hx = xs[-HISTORY_FRAMES:].copy()
+        self._he = es[-HISTORY_FRAMES:].copy()
 
     def finish(self):
         """Flush both filters with 11 zeros (idempotent)."""
