@@ -114,7 +114,7 @@ def quantize_block_py(x, rng, dither_mode, round_offset, h, hist, hp_prev,
     fkmax = float(kmax)
     for i in range(n):
         for c in range(nch):
-            xs = float(x[i, c])
+            xs = np.float64(x[i, c])  # float() would keep float32 under numba
             if xs - xs != 0.0:
                 # NaN or infinity: counted; the caller stops with an error
                 acc[c, 6] += 1.0

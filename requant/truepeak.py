@@ -393,9 +393,9 @@ def _interp_peak(row, err, use_err, phases, s0, s1):
         a2 = 0.0
         a3 = 0.0
         for j in range(12):
-            v = float(row[n - j])
+            v = np.float64(row[n - j])
             if use_err:
-                v += float(err[n - j])
+                v += np.float64(err[n - j])
             a0 += phases[0, j] * v
             a1 += phases[1, j] * v
             a2 += phases[2, j] * v
@@ -437,8 +437,8 @@ def dual_peak_kernel_py(xs, es, phases, gain, sub, peak_in, peak_out):
             xmax = 0.0
             emax = 0.0
             for n in range(s0 - 11, s1):
-                xmax = max(xmax, abs(float(row[n])))
-                emax = max(emax, abs(float(err[n])))
+                xmax = max(xmax, abs(np.float64(row[n])))
+                emax = max(emax, abs(np.float64(err[n])))
             bound_in = gain * xmax
             if bound_in > peak_in[c]:
                 pin = _interp_peak(row, err, False, phases, s0, s1)

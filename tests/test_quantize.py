@@ -307,3 +307,12 @@ def test_high_passed_tpdf_refused_inside_a_shaping_loop():
     with pytest.raises(UsageError, match="--dither tpdf"):
         Requantizer(1, bits=16, dither="tpdf-hp", coeffs=(1.0,))
     Requantizer(1, bits=16, dither="tpdf-hp")  # fine without shaping
+
+
+def test_float32_input_sums_are_exact_float64():
+    # numba's float() keeps float32; the kernel must square in float64 like the plain twin
+    x = np.random.default_rng(4).uniform(-1, 1, (5000, 2)).astype(np.float32)
+    a, b = Requantizer(2, bits=16, seed=1), Requantizer(2, bits=16, seed=1)
+    a.process(x)
+    b.process(x, kernel=_kernel.quantize_block_plain)
+    assert np.array_equal(a.acc, b.acc)
