@@ -1,4 +1,9 @@
-"""File conversion: containers, integer codes, error signal, report, streaming, safety."""
+"""File conversion: containers, integer codes, error signal, report, streaming, safety.
+
+Sources: [LWV92] Lipshitz, Wannamaker & Vanderkooy, "Quantization and Dither: A Theoretical
+Survey", JAES 40(5), 1992; AES17 for dBFS (a full-scale sine reads 0 dBFS); RIFF/WAVE (IBM &
+Microsoft 1991) for unsigned 8-bit WAV.
+"""
 
 import json
 import os
