@@ -35,6 +35,9 @@ import math
 
 import numpy as np
 
+# the dither powers (LWV 1992) and the prediction live in one place: requant.quantize
+from .quantize import DITHER_POWER_LSB2, predicted_error_power_lsb2
+
 __all__ = [
     "ErrorAnalyzer",
     "analyze_arrays",
@@ -58,8 +61,6 @@ CORRELATED_WARNING_FRACTION = 0.02
 #: Warn when the quietest passage's error power is this far (dB) from the model.
 MODULATION_WARNING_DB = 3.0
 
-#: Rounding-error power of each dither with a busy signal, LSB² (LWV 1992).
-DITHER_POWER_LSB2 = {"none": 1.0 / 12.0, "rpdf": 1.0 / 6.0, "tpdf": 0.25, "tpdf-hp": 0.25}
 
 
 #: Fewest Welch segments a file should give (shorter files get shorter segments).
@@ -410,10 +411,7 @@ class ErrorAnalyzer:
             if den > 0.0:
                 rho2 = max(rho2, float(np.sum(xc[:, c] * ec[:, c]) ** 2 / den))
         ep = float(np.mean(e**2))
-        n = np.concatenate(([1.0], -self.coeffs))
-        model = DITHER_POWER_LSB2[self.dither] * float(np.sum(n * n))
-        if self.quantizer == "truncate":
-            model += (0.5 * float(np.sum(n))) ** 2
+        model = predicted_error_power_lsb2(self.quantizer, self.dither, self.coeffs)
         ep_lsb2 = ep * self.scale**2
         return {
             "start_s": q["start"] / self.rate,

@@ -32,6 +32,7 @@ __all__ = [
     "Requantizer",
     "requantize",
     "predicted_error_power_lsb2",
+    "DITHER_POWER_LSB2",
     "new_seed",
     "lsb",
 ]
@@ -49,7 +50,7 @@ _DITHER_MODE = {
 #: Mean-square error of each dither with an ideal rounding quantizer, in LSB².
 #: Lipshitz, Wannamaker & Vanderkooy (1992), JAES 40(5): none 1/12 (busy
 #: signal), RPDF 1/6 (averaged over input), TPDF 1/4 (for every input).
-_DITHER_POWER_LSB2 = {"none": 1.0 / 12.0, "rpdf": 1.0 / 6.0, "tpdf": 0.25, "tpdf-hp": 0.25}
+DITHER_POWER_LSB2 = {"none": 1.0 / 12.0, "rpdf": 1.0 / 6.0, "tpdf": 0.25, "tpdf-hp": 0.25}
 
 #: Bound on the fed-back error in the shaping loop, in LSB. In normal
 #: operation |e| <= 1.5 (round + TPDF) or 2 (truncate + TPDF); anything larger
@@ -105,7 +106,7 @@ def predicted_error_power_lsb2(quantizer, dither, coeffs=()):
     ``sum(n_k)``. The "none" figure holds only for busy signals.
     """
     n = np.concatenate(([1.0], -np.asarray(coeffs, dtype=np.float64)))
-    power = _DITHER_POWER_LSB2[dither] * float(np.sum(n * n))
+    power = DITHER_POWER_LSB2[dither] * float(np.sum(n * n))
     if quantizer == "truncate":
         power += (0.5 * float(np.sum(n))) ** 2
     return power
