@@ -2,11 +2,17 @@
 the integer cast, fused, for one block of frames.
 
 This module holds no I/O, no validation and no argument handling. Callers
-(:mod:`requant.quantize`) validate, allocate and carry the state. Everything
-that passes from one sample to the next (error-feedback history, the
-previous uniform draw of high-passed TPDF, the running sums) lives in arrays
-that are passed in and updated in place, so that processing a file in blocks
-gives the same bits as processing it whole.
+(:mod:`requant.quantize`, through :mod:`requant._jit`) validate, allocate and
+carry the state. Everything that passes from one sample to the next (the
+generator states, the feedback partial sums, the previous uniform draw of
+high-passed TPDF, the running sums) lives in arrays that are passed in and
+updated in place, so that processing a file in blocks gives the same bits as
+processing it whole.
+
+All buffers are flat: frame ``i`` of channel ``c`` is element ``i*nch + c``.
+The same source therefore compiles for raw pointers (the machine code that
+:mod:`requant._jit` caches and loads without numba) and for 1-D arrays (the
+plain-Python twin the tests run, and the numba fallback).
 
 Units inside the loop are LSBs of the target word length: ``v = x * scale``
 with ``scale = 2**(bits-1)``, so a code ``k`` stands for ``k / scale``.
@@ -20,6 +26,19 @@ word is drawn per sample and channel while dithering):
 * ``tpdf``: the two 32-bit halves give two independent uniforms on a 2**-32
   grid; dither ``u1 - u2`` (triangular, 2 LSB peak to peak).
 * ``tpdf-hp``: ``r[n] - r[n-1]`` with ``r = u - 1/2`` from the top 53 bits.
+
+Arithmetic, in this order (it defines the output bits)::
+
+    q   = floor((v + (d + offset)) - fb)      offset 1/2 rounds, 0 truncates
+    e   = q - (v - fb)                        loop error, clamped to +-e_bound
+    eps = q - v                               the error signal, in LSB
+    fb' = sum_k h[k] e[n-k], oldest term first (transposed form)
+
+Speed: the error feedback is a chain from one sample to the next, so its
+latency, not its arithmetic, sets the pace. The newest error enters the
+feedback last (one multiply and one add on the chain), the running sums and
+generator states stay in registers for the whole block, and channels go two
+at a time so that two independent chains overlap in the core.
 """
 
 import numpy as np
@@ -30,8 +49,7 @@ __all__ = [
     "DITHER_TPDF",
     "DITHER_TPDF_HP",
     "ACC_FIELDS",
-    "quantize_block",
-    "quantize_block_py",
+    "build",
     "quantize_block_plain",
     "sfc64_next_py",
 ]
@@ -46,6 +64,7 @@ ACC_FIELDS = (
     "sum_x2", "sum_e", "sum_e2", "clipped", "overloads", "over_full_scale", "nonfinite",
     "max_abs_e", "sum_x", "sum_xe",
 )
+_NACC = len(ACC_FIELDS)
 
 _SH3 = np.uint64(3)
 _SH11 = np.uint64(11)
@@ -58,153 +77,187 @@ _TWO_M53 = 2.0**-53
 _TWO_M32 = 2.0**-32
 
 
-def sfc64_next_py(rng, c):
-    """Advance channel ``c``'s SFC64 state in place and return its next word."""
-    a = rng[c, 0]
-    b = rng[c, 1]
-    cc = rng[c, 2]
-    w = rng[c, 3]
+def sfc64_next_py(a, b, c, w):
+    """One SFC64 step: return ``(word, a, b, c, w)`` with the advanced state."""
     tmp = a + b + w
-    rng[c, 3] = w + _ONE
-    rng[c, 0] = b ^ (b >> _SH11)
-    rng[c, 1] = cc + (cc << _SH3)
-    rng[c, 2] = ((cc << _SH24) | (cc >> _SH40)) + tmp
-    return tmp
+    return (tmp, b ^ (b >> _SH11), c + (c << _SH3), ((c << _SH24) | (c >> _SH40)) + tmp,
+            w + _ONE)
 
 
-def quantize_block_py(x, rng, dither_mode, round_offset, h, hist, hp_prev,
-                      scale, kmin, kmax, e_bound, shift, codes, err, acc):
-    """Requantize one block; plain-Python twin of the compiled kernel.
+def build(jit=None):
+    """Return the block kernel, its helpers compiled by ``jit``.
 
     Parameters
     ----------
-    x : ndarray, (frames, channels), float32 or float64, full scale 1.0
-    rng : ndarray, (channels, 4), uint64; updated in place
-        SFC64 state of each channel's dither generator.
-    dither_mode : int
-        One of ``DITHER_*``.
-    round_offset : float
-        0.5 for rounding (half up, mid-tread), 0.0 for truncation.
-    h : ndarray, (K,), float64
-        Error-feedback coefficients; NTF(z) = 1 - sum h_k z^-k. K may be 0.
-    hist : ndarray, (channels, K), float64, LSB; updated in place
-        Past loop errors, ``hist[c, 0]`` the most recent.
-    hp_prev : ndarray, (channels,), float64; updated in place
-        Previous uniform draw of high-passed TPDF.
-    scale : float
-        2**(bits-1).
-    kmin, kmax : int
-        Code range of the target word length.
-    e_bound : float, LSB
-        Bound on the fed-back error; larger errors (overload) are clamped.
-    shift : int
-        Left shift that places a code in its container.
-    codes : ndarray, (frames, channels), int16 or int32; written
-    err : ndarray, (frames, channels), float32, or shape (0, 0); written
-        Error signal, output minus input, full scale 1.0.
-    acc : ndarray, (channels, 10), float64; updated in place
-        Running sums, columns as in :data:`ACC_FIELDS`.
+    jit : callable, optional
+        Decorator applied to the per-sample helpers (numba's
+        ``njit(inline="always")``); ``None`` gives the plain-Python twin.
+
+    Returns
+    -------
+    callable
+        ``quantize_block(x, n, nch, rng, mode, offset, h, taps, fbs, hp_prev,
+        scale, inv_scale, kmin, kmax, e_bound, shift, codes, err, want_err,
+        acc)``, all buffers flat:
+
+        x : float32 or float64 [n*nch], full scale 1.0
+        rng : uint64 [nch*4], SFC64 states; updated
+        mode : int, one of ``DITHER_*``
+        offset : float, 0.5 to round (half up), 0.0 to truncate
+        h : float64 [taps], NTF(z) = 1 - sum h[k] z^-(k+1)
+        fbs : float64 [nch*taps], LSB; updated. Slot 0 holds the feedback for
+            the next sample, slot j >= 1 the partial sum of the terms of
+            later feedback already known.
+        hp_prev : float64 [nch]; updated
+        scale, inv_scale : float, 2**(bits-1) and its inverse
+        kmin, kmax : int, code range
+        e_bound : float, LSB, bound on the fed-back error
+        shift : int, left shift into the container
+        codes : int16 or int32 [n*nch]; written
+        err : float32 [n*nch] when ``want_err``; written, output minus input
+        acc : float64 [nch*10], columns as :data:`ACC_FIELDS`; updated
     """
-    n = x.shape[0]
-    nch = x.shape[1]
-    taps = h.shape[0]
-    want_err = err.shape[0] == n
-    inv_scale = 1.0 / scale
-    fkmin = float(kmin)
-    fkmax = float(kmax)
-    for i in range(n):
-        for c in range(nch):
-            xs = np.float64(x[i, c])  # float() would keep float32 under numba
+    wrap = (lambda f: f) if jit is None else jit
+    sfc64 = wrap(sfc64_next_py)
+
+    def sample(xs, st, mode, offset, h, taps, fbs, fo, scale, fkmin, fkmax, e_bound, acc, ao):
+        # one sample of one channel; st = (a, b, c, w, hp, fb, sx2, se, se2, me, sx, sxe)
+        a, b, c, w, hp, fb, sx2, se, se2, me, sx, sxe = st
+        if not abs(xs) <= 1.0:  # one test on the common path
             if xs - xs != 0.0:
                 # NaN or infinity: counted; the caller stops with an error
-                acc[c, 6] += 1.0
+                acc[ao + 6] += 1.0
                 xs = 0.0
-            v = xs * scale
-            if xs > 1.0 or xs < -1.0:
-                acc[c, 5] += 1.0
-            # dither, in LSB
-            if dither_mode == 0:
-                d = 0.0
-            elif dither_mode == 2:
-                w = sfc64_next(rng, c)
-                d = (float(np.int64(w >> _SH32)) - float(np.int64(w & _LO32))) * _TWO_M32
-            elif dither_mode == 1:
-                d = float(np.int64(sfc64_next(rng, c) >> _SH11)) * _TWO_M53 - 0.5
             else:
-                r = float(np.int64(sfc64_next(rng, c) >> _SH11)) * _TWO_M53 - 0.5
-                d = r - hp_prev[c]
-                hp_prev[c] = r
-            # error feedback
-            fb = 0.0
-            for k in range(taps):
-                fb += h[k] * hist[c, k]
-            u = v - fb
-            q = np.floor(u + d + round_offset)
-            if q > fkmax:
-                q = fkmax
-                acc[c, 3] += 1.0
-            elif q < fkmin:
-                q = fkmin
-                acc[c, 3] += 1.0
-            if taps > 0:
-                e = q - u
-                if e > e_bound:
-                    e = e_bound
-                    acc[c, 4] += 1.0
-                elif e < -e_bound:
-                    e = -e_bound
-                    acc[c, 4] += 1.0
-                for k in range(taps - 1, 0, -1):
-                    hist[c, k] = hist[c, k - 1]
-                hist[c, 0] = e
-            eps = q - v
-            acc[c, 0] += xs * xs
-            acc[c, 8] += xs
-            acc[c, 9] += xs * eps
-            acc[c, 1] += eps
-            acc[c, 2] += eps * eps
-            if abs(eps) > acc[c, 7]:
-                acc[c, 7] = abs(eps)
-            codes[i, c] = int(q) << shift
-            if want_err:
-                err[i, c] = eps * inv_scale
+                acc[ao + 5] += 1.0
+        v = xs * scale
+        if mode == 0:
+            d = 0.0
+        else:
+            word, a, b, c, w = sfc64(a, b, c, w)
+            if mode == 2:
+                d = (float(np.int64(word >> _SH32)) - float(np.int64(word & _LO32))) * _TWO_M32
+            elif mode == 1:
+                d = float(np.int64(word >> _SH11)) * _TWO_M53 - 0.5
+            else:
+                r = float(np.int64(word >> _SH11)) * _TWO_M53 - 0.5
+                d = r - hp
+                hp = r
+        q = np.floor((v + (d + offset)) - fb)
+        if q > fkmax:
+            q = fkmax
+            acc[ao + 3] += 1.0
+        elif q < fkmin:
+            q = fkmin
+            acc[ao + 3] += 1.0
+        if taps > 0:
+            e = q - (v - fb)
+            if e > e_bound:
+                e = e_bound
+                acc[ao + 4] += 1.0
+            elif e < -e_bound:
+                e = -e_bound
+                acc[ao + 4] += 1.0
+            if taps > 1:
+                fb = fbs[fo + 1] + h[0] * e
+                for k in range(1, taps - 1):
+                    fbs[fo + k] = fbs[fo + k + 1] + h[k] * e
+                fbs[fo + taps - 1] = h[taps - 1] * e
+            else:
+                fb = h[0] * e
+        eps = q - v
+        sx2 += xs * xs
+        sx += xs
+        sxe += xs * eps
+        se += eps
+        se2 += eps * eps
+        ae = abs(eps)
+        if ae > me:
+            me = ae
+        return q, eps, (a, b, c, w, hp, fb, sx2, se, se2, me, sx, sxe)
+
+    sample = wrap(sample)
+
+    def load(c, rng, hp_prev, fbs, taps, acc):
+        ao = c * _NACC
+        fb = fbs[c * taps] if taps > 0 else 0.0
+        return (rng[4 * c], rng[4 * c + 1], rng[4 * c + 2], rng[4 * c + 3], hp_prev[c], fb,
+                acc[ao], acc[ao + 1], acc[ao + 2], acc[ao + 7], acc[ao + 8], acc[ao + 9])
+
+    load = wrap(load)
+
+    def store(st, c, rng, hp_prev, fbs, taps, acc):
+        a, b, cc, w, hp, fb, sx2, se, se2, me, sx, sxe = st
+        rng[4 * c] = a
+        rng[4 * c + 1] = b
+        rng[4 * c + 2] = cc
+        rng[4 * c + 3] = w
+        hp_prev[c] = hp
+        if taps > 0:
+            fbs[c * taps] = fb
+        ao = c * _NACC
+        acc[ao] = sx2
+        acc[ao + 1] = se
+        acc[ao + 2] = se2
+        acc[ao + 7] = me
+        acc[ao + 8] = sx
+        acc[ao + 9] = sxe
+
+    store = wrap(store)
+
+    def quantize_block(x, n, nch, rng, mode, offset, h, taps, fbs, hp_prev, scale, inv_scale,
+                       kmin, kmax, e_bound, shift, codes, err, want_err, acc):
+        fkmin = float(kmin)
+        fkmax = float(kmax)
+        c = 0
+        while c < nch:
+            s0 = load(c, rng, hp_prev, fbs, taps, acc)
+            fo0 = c * taps
+            ao0 = c * _NACC
+            if c + 1 < nch:
+                # two channels at once: their feedback chains overlap
+                s1 = load(c + 1, rng, hp_prev, fbs, taps, acc)
+                fo1 = fo0 + taps
+                ao1 = ao0 + _NACC
+                for i in range(n):
+                    j = i * nch + c
+                    q0, e0, s0 = sample(np.float64(x[j]), s0, mode, offset, h, taps, fbs, fo0,
+                                        scale, fkmin, fkmax, e_bound, acc, ao0)
+                    q1, e1, s1 = sample(np.float64(x[j + 1]), s1, mode, offset, h, taps, fbs,
+                                        fo1, scale, fkmin, fkmax, e_bound, acc, ao1)
+                    codes[j] = int(q0) << shift
+                    codes[j + 1] = int(q1) << shift
+                    if want_err:
+                        err[j] = e0 * inv_scale
+                        err[j + 1] = e1 * inv_scale
+                store(s1, c + 1, rng, hp_prev, fbs, taps, acc)
+                step = 2
+            else:
+                for i in range(n):
+                    j = i * nch + c
+                    q0, e0, s0 = sample(np.float64(x[j]), s0, mode, offset, h, taps, fbs, fo0,
+                                        scale, fkmin, fkmax, e_bound, acc, ao0)
+                    codes[j] = int(q0) << shift
+                    if want_err:
+                        err[j] = e0 * inv_scale
+                step = 1
+            store(s0, c, rng, hp_prev, fbs, taps, acc)
+            c += step
+
+    return quantize_block
 
 
-# The plain twin calls the plain generator; the compiled kernel gets the
-# compiled one (numba resolves the global at compile time).
-sfc64_next = sfc64_next_py
-
-_compiled = None
-
-
-def quantize_block(*args):
-    """Compiled :func:`quantize_block_py` (numba, cached on disk)."""
-    global _compiled
-    if _compiled is None:
-        _compiled = _compile()
-    return _compiled(*args)
-
-
-def _compile():
-    import numba
-
-    global sfc64_next
-    sfc64_next = numba.njit(inline="always", cache=True)(sfc64_next_py)
-    fn = numba.njit(cache=True, nogil=True)(quantize_block_py)
-    return fn
+_plain = None
 
 
 def quantize_block_plain(*args):
-    """Run the plain twin with numpy's wrap-around warnings silenced.
+    """The plain-Python twin of the compiled kernel, for tests (small inputs).
 
     uint64 arithmetic wraps by design (SFC64); numpy scalars warn about it,
-    compiled code does not.
+    compiled code does not, so the warnings are silenced here.
     """
-    global sfc64_next
-    saved = sfc64_next
-    sfc64_next = sfc64_next_py
-    try:
-        with np.errstate(over="ignore"):
-            return quantize_block_py(*args)
-    finally:
-        sfc64_next = saved
+    global _plain
+    if _plain is None:
+        _plain = build()
+    with np.errstate(over="ignore", invalid="ignore"):  # inf - inf is how NaN/inf are found
+        return _plain(*args)

@@ -20,10 +20,11 @@ run from ``-2**(bits-1)`` to ``2**(bits-1) - 1``.
 """
 
 import secrets
+from pathlib import Path
 
 import numpy as np
 
-from . import _kernel
+from . import _jit, _kernel
 from .errors import UsageError
 
 __all__ = [
@@ -56,6 +57,22 @@ DITHER_POWER_LSB2 = {"none": 1.0 / 12.0, "rpdf": 1.0 / 6.0, "tpdf": 0.25, "tpdf-
 #: operation |e| <= 1.5 (round + TPDF) or 2 (truncate + TPDF); anything larger
 #: comes from a clipped code and would make the loop run away.
 E_BOUND_LSB = 2.0
+
+
+_CODES = {np.dtype(np.float32): "f32", np.dtype(np.float64): "f64",
+          np.dtype(np.int16): "i16", np.dtype(np.int32): "i32"}
+_kernel_text = None
+
+
+def compiled_kernel(x_dtype, code_dtype):
+    """The compiled block kernel for float32/float64 input and int16/int32 codes."""
+    global _kernel_text
+    if _kernel_text is None:
+        _kernel_text = Path(_kernel.__file__).read_text()
+    xc, cc = _CODES[np.dtype(x_dtype)], _CODES[np.dtype(code_dtype)]
+    args = [f"{xc}*", "i64", "i64", "u64*", "i64", "f64", "f64*", "i64", "f64*", "f64*", "f64",
+            "f64", "i64", "i64", "f64", "i64", f"{cc}*", "f32*", "i64", "f64*"]
+    return _jit.load(f"quantize-{xc}-{cc}", _kernel.build, _kernel_text, args)
 
 
 def lsb(bits):
@@ -170,11 +187,13 @@ class Requantizer:
         # one SFC64 state per channel, seeded by numpy; the kernel advances it
         self.rng = np.stack([np.random.SFC64(s).state["state"]["state"] for s in seqs])
         self.rng = np.ascontiguousarray(self.rng, dtype=np.uint64)
-        self.hist = np.zeros((self.channels, self.coeffs.size), dtype=np.float64)
+        # feedback state: slot 0 the next feedback, then partial sums (see _kernel)
+        self.fbs = np.zeros((self.channels, max(self.coeffs.size, 1)), dtype=np.float64)
         self.hp_prev = np.zeros(self.channels, dtype=np.float64)
         self.acc = np.zeros((self.channels, len(_kernel.ACC_FIELDS)), dtype=np.float64)
         self.frames = 0
-        self._no_err = np.zeros((0, 0), dtype=np.float32)
+        self._no_err = np.zeros(1, dtype=np.float32)
+        self._h = self.coeffs if self.coeffs.size else np.zeros(1)
 
     def process(self, x, *, codes=None, error=True, err_out=None, kernel=None):
         """Requantize the next block.
@@ -213,9 +232,15 @@ class Requantizer:
             err = err_out[:n]
         else:
             err = np.empty((n, self.channels), dtype=np.float32)
-        run = _kernel.quantize_block if kernel is None else kernel
-        run(x, self.rng, self._mode, self._round_offset, self.coeffs, self.hist, self.hp_prev,
-            self.scale, self.kmin, self.kmax, E_BOUND_LSB, self.shift, codes, err, self.acc)
+        run = compiled_kernel(x.dtype, codes.dtype) if kernel is None else kernel
+        if not (codes.dtype == self.code_dtype and codes.flags.c_contiguous):
+            raise UsageError(f"codes buffer must be C-contiguous {np.dtype(self.code_dtype)}")
+        if error and not (err.dtype == np.float32 and err.flags.c_contiguous):
+            raise UsageError("error buffer must be C-contiguous float32")
+        run(x.reshape(-1), n, self.channels, self.rng.reshape(-1), self._mode,
+            self._round_offset, self._h, self.coeffs.size, self.fbs.reshape(-1), self.hp_prev,
+            self.scale, 1.0 / self.scale, self.kmin, self.kmax, E_BOUND_LSB, self.shift,
+            codes.reshape(-1), err.reshape(-1), int(error), self.acc.reshape(-1))
         self.frames += n
         return codes, (err if error else None)
 
