@@ -23,6 +23,7 @@ from .formats import (RF64_THRESHOLD, container_bits_of, format_for_path, read_d
                       subtype_for)
 from .measure import measured_figures, predicted_figures
 from .quantize import Requantizer, check_settings, new_seed, predicted_error_power_lsb2
+from .wavwrite import RAW_SUBTYPES, WavWriter
 
 __all__ = ["convert_file", "open_input", "resolve_shaping_spec", "DEFAULT_BLOCK_FRAMES",
            "write_json_atomic"]
@@ -160,6 +161,17 @@ def _wrap_write_error(exc, path):
                        "check the destination")
 
 
+def _open_output(path, rate, nch, subtype, fmt, *, plain):
+    """An audio output: our own WAV writer where it can (``plain``: no tags
+    to write), else libsndfile."""
+    if plain and fmt == "WAV" and subtype in RAW_SUBTYPES:
+        return WavWriter(path, samplerate=rate, channels=nch, subtype=subtype,
+                         background_sync=True)
+    import soundfile as sf
+
+    return sf.SoundFile(path, "w", samplerate=rate, channels=nch, subtype=subtype, format=fmt)
+
+
 def write_json_atomic(obj, path):
     """Write ``obj`` as indented JSON through a temporary file and rename."""
     with AtomicOutputs() as outs:
@@ -286,10 +298,9 @@ def convert_file(in_path, out_path, *, bits=16, quantizer="round", dither="tpdf"
             tmp_out = outs.path_for(out_path)
             tmp_err = outs.path_for(error_path) if error_path else None
             try:
-                wout = sf.SoundFile(tmp_out, "w", samplerate=rate, channels=nch, subtype=subtype,
-                                    format=out_fmt)
-                werr = (sf.SoundFile(tmp_err, "w", samplerate=rate, channels=nch, subtype="FLOAT",
-                                     format=e_fmt) if tmp_err else None)
+                wout = _open_output(tmp_out, rate, nch, subtype, out_fmt, plain=not tags)
+                werr = (_open_output(tmp_err, rate, nch, "FLOAT", e_fmt, plain=True)
+                        if tmp_err else None)
             except (sf.LibsndfileError, RuntimeError, OSError) as exc:
                 raise _wrap_write_error(exc, out_path) from None
             for key, value in (tags or {}).items():
