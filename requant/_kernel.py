@@ -32,13 +32,16 @@ Arithmetic, in this order (it defines the output bits)::
     q   = floor((v + (d + offset)) - fb)      offset 1/2 rounds, 0 truncates
     e   = q - (v - fb)                        loop error, clamped to +-e_bound
     eps = q - v                               the error signal, in LSB
-    fb' = sum_k h[k] e[n-k], oldest term first (transposed form)
+    fb' = sum_k h[k] e[n-k], oldest term first, h[0]*e[n] added last
 
 Speed: the error feedback is a chain from one sample to the next, so its
 latency, not its arithmetic, sets the pace. The newest error enters the
-feedback last (one multiply and one add on the chain), the running sums and
-generator states stay in registers for the whole block, and channels go two
-at a time so that two independent chains overlap in the core.
+feedback last (one multiply and one add on the chain); the older terms are
+summed while the chain runs. The running sums and generator states stay in
+registers for the whole block, past errors sit in a doubled ring (no
+wrap-around test, two stores per sample), channels go two at a time so that
+two independent chains overlap in the core, and callers build one kernel per
+tap count so that the compiler unrolls the sum.
 """
 
 import numpy as np
@@ -84,7 +87,7 @@ def sfc64_next_py(a, b, c, w):
             w + _ONE)
 
 
-def build(jit=None):
+def build(jit=None, taps=None):
     """Return the block kernel, its helpers compiled by ``jit``.
 
     Parameters
@@ -92,6 +95,10 @@ def build(jit=None):
     jit : callable, optional
         Decorator applied to the per-sample helpers (numba's
         ``njit(inline="always")``); ``None`` gives the plain-Python twin.
+    taps : int, optional
+        Build for this many feedback taps only: the compiler then unrolls the
+        feedback sum (about a fifth faster for 9 taps). The kernel's own
+        ``taps`` argument must then equal it. ``None`` takes any number.
 
     Returns
     -------
@@ -105,9 +112,9 @@ def build(jit=None):
         mode : int, one of ``DITHER_*``
         offset : float, 0.5 to round (half up), 0.0 to truncate
         h : float64 [taps], NTF(z) = 1 - sum h[k] z^-(k+1)
-        fbs : float64 [nch*taps], LSB; updated. Slot 0 holds the feedback for
-            the next sample, slot j >= 1 the partial sum of the terms of
-            later feedback already known.
+        fbs : float64 [nch*(2*taps+1)], LSB; updated. Per channel: the
+            feedback for the next sample, then the last ``taps`` loop errors,
+            newest first, twice over (a ring read without wrapping)
         hp_prev : float64 [nch]; updated
         scale, inv_scale : float, 2**(bits-1) and its inverse
         kmin, kmax : int, code range
@@ -119,10 +126,11 @@ def build(jit=None):
     """
     wrap = (lambda f: f) if jit is None else jit
     sfc64 = wrap(sfc64_next_py)
+    fixed_taps = -1 if taps is None else int(taps)  # a constant to the compiler
 
     def sample(xs, st, mode, offset, h, taps, fbs, fo, scale, fkmin, fkmax, e_bound, acc, ao):
         # one sample of one channel; st = (a, b, c, w, hp, fb, sx2, se, se2, me, sx, sxe)
-        a, b, c, w, hp, fb, sx2, se, se2, me, sx, sxe = st
+        a, b, c, w, hp, fb, pos, sx2, se, se2, me, sx, sxe = st
         if not abs(xs) <= 1.0:  # one test on the common path
             if xs - xs != 0.0:
                 # NaN or infinity: counted; the caller stops with an error
@@ -158,13 +166,20 @@ def build(jit=None):
             elif e < -e_bound:
                 e = -e_bound
                 acc[ao + 4] += 1.0
+            # ring[pos + k] = e[n-1-k]; the next feedback sums the older terms, oldest
+            # first, and adds the newest, h[0]*e, last
             if taps > 1:
-                fb = fbs[fo + 1] + h[0] * e
-                for k in range(1, taps - 1):
-                    fbs[fo + k] = fbs[fo + k + 1] + h[k] * e
-                fbs[fo + taps - 1] = h[taps - 1] * e
+                r = h[taps - 1] * fbs[fo + pos + taps - 2]
+                for k in range(taps - 2, 0, -1):
+                    r += h[k] * fbs[fo + pos + k - 1]
+                fb = r + h[0] * e
             else:
                 fb = h[0] * e
+            pos -= 1
+            if pos < 0:
+                pos += taps
+            fbs[fo + pos] = e
+            fbs[fo + pos + taps] = e
         eps = q - v
         sx2 += xs * xs
         sx += xs
@@ -174,27 +189,33 @@ def build(jit=None):
         ae = abs(eps)
         if ae > me:
             me = ae
-        return q, eps, (a, b, c, w, hp, fb, sx2, se, se2, me, sx, sxe)
+        return q, eps, (a, b, c, w, hp, fb, pos, sx2, se, se2, me, sx, sxe)
 
     sample = wrap(sample)
 
     def load(c, rng, hp_prev, fbs, taps, acc):
         ao = c * _NACC
-        fb = fbs[c * taps] if taps > 0 else 0.0
-        return (rng[4 * c], rng[4 * c + 1], rng[4 * c + 2], rng[4 * c + 3], hp_prev[c], fb,
+        fb = fbs[c * (2 * taps + 1)] if taps > 0 else 0.0
+        return (rng[4 * c], rng[4 * c + 1], rng[4 * c + 2], rng[4 * c + 3], hp_prev[c], fb, 0,
                 acc[ao], acc[ao + 1], acc[ao + 2], acc[ao + 7], acc[ao + 8], acc[ao + 9])
 
     load = wrap(load)
 
     def store(st, c, rng, hp_prev, fbs, taps, acc):
-        a, b, cc, w, hp, fb, sx2, se, se2, me, sx, sxe = st
+        a, b, cc, w, hp, fb, pos, sx2, se, se2, me, sx, sxe = st
         rng[4 * c] = a
         rng[4 * c + 1] = b
         rng[4 * c + 2] = cc
         rng[4 * c + 3] = w
         hp_prev[c] = hp
         if taps > 0:
-            fbs[c * taps] = fb
+            base = c * (2 * taps + 1)
+            fbs[base] = fb
+            # turn the ring back to position 0 for the next block
+            for k in range(taps):
+                fbs[base + 1 + k] = fbs[base + 1 + pos + k]
+            for k in range(taps):
+                fbs[base + 1 + taps + k] = fbs[base + 1 + k]
         ao = c * _NACC
         acc[ao] = sx2
         acc[ao + 1] = se
@@ -205,19 +226,20 @@ def build(jit=None):
 
     store = wrap(store)
 
-    def quantize_block(x, n, nch, rng, mode, offset, h, taps, fbs, hp_prev, scale, inv_scale,
+    def quantize_block(x, n, nch, rng, mode, offset, h, ntaps, fbs, hp_prev, scale, inv_scale,
                        kmin, kmax, e_bound, shift, codes, err, want_err, acc):
+        taps = ntaps if fixed_taps < 0 else fixed_taps
         fkmin = float(kmin)
         fkmax = float(kmax)
         c = 0
         while c < nch:
             s0 = load(c, rng, hp_prev, fbs, taps, acc)
-            fo0 = c * taps
+            fo0 = c * (2 * taps + 1) + 1
             ao0 = c * _NACC
             if c + 1 < nch:
                 # two channels at once: their feedback chains overlap
                 s1 = load(c + 1, rng, hp_prev, fbs, taps, acc)
-                fo1 = fo0 + taps
+                fo1 = fo0 + 2 * taps + 1
                 ao1 = ao0 + _NACC
                 for i in range(n):
                     j = i * nch + c

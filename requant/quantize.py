@@ -19,6 +19,7 @@ run from ``-2**(bits-1)`` to ``2**(bits-1) - 1``.
   low bits of a two's-complement word does.
 """
 
+import functools
 import secrets
 from pathlib import Path
 
@@ -64,15 +65,18 @@ _CODES = {np.dtype(np.float32): "f32", np.dtype(np.float64): "f64",
 _kernel_text = None
 
 
-def compiled_kernel(x_dtype, code_dtype):
-    """The compiled block kernel for float32/float64 input and int16/int32 codes."""
+def compiled_kernel(x_dtype, code_dtype, taps):
+    """The compiled block kernel for float32/float64 input, int16/int32 codes and
+    ``taps`` feedback taps (one machine-code kernel per combination, built on
+    first use and cached; see :mod:`requant._jit`)."""
     global _kernel_text
     if _kernel_text is None:
         _kernel_text = Path(_kernel.__file__).read_text()
     xc, cc = _CODES[np.dtype(x_dtype)], _CODES[np.dtype(code_dtype)]
     args = [f"{xc}*", "i64", "i64", "u64*", "i64", "f64", "f64*", "i64", "f64*", "f64*", "f64",
             "f64", "i64", "i64", "f64", "i64", f"{cc}*", "f32*", "i64", "f64*"]
-    return _jit.load(f"quantize-{xc}-{cc}", _kernel.build, _kernel_text, args)
+    return _jit.load(f"quantize-{xc}-{cc}-t{taps}", functools.partial(_kernel.build, taps=taps),
+                     _kernel_text, args)
 
 
 def lsb(bits):
@@ -187,8 +191,8 @@ class Requantizer:
         # one SFC64 state per channel, seeded by numpy; the kernel advances it
         self.rng = np.stack([np.random.SFC64(s).state["state"]["state"] for s in seqs])
         self.rng = np.ascontiguousarray(self.rng, dtype=np.uint64)
-        # feedback state: slot 0 the next feedback, then partial sums (see _kernel)
-        self.fbs = np.zeros((self.channels, max(self.coeffs.size, 1)), dtype=np.float64)
+        # feedback state: the next feedback, then a doubled ring of past errors (see _kernel)
+        self.fbs = np.zeros((self.channels, 2 * self.coeffs.size + 1), dtype=np.float64)
         self.hp_prev = np.zeros(self.channels, dtype=np.float64)
         self.acc = np.zeros((self.channels, len(_kernel.ACC_FIELDS)), dtype=np.float64)
         self.frames = 0
@@ -232,7 +236,7 @@ class Requantizer:
             err = err_out[:n]
         else:
             err = np.empty((n, self.channels), dtype=np.float32)
-        run = compiled_kernel(x.dtype, codes.dtype) if kernel is None else kernel
+        run = compiled_kernel(x.dtype, codes.dtype, self.coeffs.size) if kernel is None else kernel
         if not (codes.dtype == self.code_dtype and codes.flags.c_contiguous):
             raise UsageError(f"codes buffer must be C-contiguous {np.dtype(self.code_dtype)}")
         if error and not (err.dtype == np.float32 and err.flags.c_contiguous):

@@ -24,7 +24,7 @@ SHAPER9 = (2.412, -3.370, 3.937, -4.174, 3.353, -2.205, 1.281, -0.569, 0.0847)
 def _state(nch, taps, seed=3):
     rs = np.random.default_rng(seed)
     return dict(rng=rs.integers(0, 2**63, nch * 4, dtype=np.uint64),
-                fbs=np.zeros(nch * max(taps, 1)), hp=np.zeros(nch), acc=np.zeros(nch * 10))
+                fbs=np.zeros(nch * (2 * taps + 1)), hp=np.zeros(nch), acc=np.zeros(nch * 10))
 
 
 def _run(kernel, x, nch, mode, h, codes_dtype, st, want_err=1):
@@ -53,10 +53,10 @@ def test_native_equals_plain_twin(xd, cd, nch, mode, h):
     x = rs.uniform(-1.1, 1.1, 400 * nch).astype(xd)
     x[5] = np.nan
     x[9] = np.inf
-    native = compiled_kernel(xd, cd)
+    native = compiled_kernel(xd, cd, len(h))
     a, b = _state(nch, len(h)), _state(nch, len(h))
     ca, ea = _run(native, x, nch, mode, h, cd, a)
-    cb, eb = _run(_kernel.quantize_block_plain, x, nch, mode, h, cd, b)
+    cb, eb = _run(_kernel.quantize_block_plain, x, nch, mode, h, cd, b)  # any tap count
     assert np.array_equal(ca, cb) and np.array_equal(ea, eb)
     for k in a:
         assert np.array_equal(a[k], b[k]), k
@@ -64,22 +64,22 @@ def test_native_equals_plain_twin(xd, cd, nch, mode, h):
 
 def test_native_path_is_in_use():
     # the fast start-up this module exists for: no numba import on the convert path
-    compiled_kernel(np.float32, np.int16)
-    assert _jit.status()["quantize-f32-i16"] == "native"
+    compiled_kernel(np.float32, np.int16, 0)
+    assert _jit.status()["quantize-f32-i16-t0"] == "native"
 
 
 def test_numba_fallback_gives_the_same_bits():
     fallback = _jit._numba_fallback(_kernel.build)
     x = np.random.default_rng(1).uniform(-1, 1, 2 * 3000).astype(np.float32)
     a, b = _state(2, 9), _state(2, 9)
-    ca, ea = _run(compiled_kernel(np.float32, np.int16), x, 2, 2, SHAPER9, np.int16, a)
+    ca, ea = _run(compiled_kernel(np.float32, np.int16, 9), x, 2, 2, SHAPER9, np.int16, a)
     cb, eb = _run(fallback, x, 2, 2, SHAPER9, np.int16, b)
     assert np.array_equal(ca, cb) and np.array_equal(ea, eb)
     assert all(np.array_equal(a[k], b[k]) for k in a)
 
 
 def test_native_rejects_wrong_buffers():
-    k = compiled_kernel(np.float32, np.int16)
+    k = compiled_kernel(np.float32, np.int16, 0)
     st = _state(1, 0)
     with pytest.raises(TypeError, match="contiguous int16"):
         k(np.zeros(4, np.float32), 4, 1, st["rng"], 2, 0.5, np.zeros(1), 0, st["fbs"], st["hp"],
@@ -93,7 +93,7 @@ from requant import _jit
 from requant.quantize import Requantizer
 rq = Requantizer(2, bits=16, dither="tpdf", seed=5)
 codes, err = rq.process(np.linspace(-0.5, 0.5, 2000, dtype=np.float32).reshape(-1, 2))
-print(_jit.status()["quantize-f32-i16"], int(codes.astype(np.int64).sum()), "numba" in sys.modules)
+print(_jit.status()["quantize-f32-i16-t0"], int(codes.astype(np.int64).sum()), "numba" in sys.modules)
 """
 
 
