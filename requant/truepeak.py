@@ -380,44 +380,37 @@ def true_peak_dbtp(x, *, flush=True):
 #: can exceed this times the largest |sample| among the 12 it is made from.
 PHASE_GAIN = float(np.max(np.sum(np.abs(PHASES), axis=1)))
 
-#: Frames per sub-block of :func:`dual_peak_kernel_py`'s skip test.
+#: Frames per sub-block of the dual kernel's skip test (:func:`build_dual`).
 SUB_FRAMES = 64
+#: Most frames the dual kernel interpolates in one pass (a run of sub-blocks).
+RUN_FRAMES = 1024
 
 
-def _interp_peak(row, err, use_err, phases, s0, s1):
-    """max |interpolated sample| for inputs n in [s0, s1) (history before s0)."""
-    best = 0.0
-    for n in range(s0, s1):
-        a0 = 0.0
-        a1 = 0.0
-        a2 = 0.0
-        a3 = 0.0
-        for j in range(12):
-            v = np.float64(row[n - j])
-            if use_err:
-                v += np.float64(err[n - j])
-            a0 += phases[0, j] * v
-            a1 += phases[1, j] * v
-            a2 += phases[2, j] * v
-            a3 += phases[3, j] * v
-        best = max(best, max(max(abs(a0), abs(a1)), max(abs(a2), abs(a3))))
-    return best
+def build_dual(jit=None):
+    """Return the dual true-peak kernel, its helper compiled by ``jit``.
 
+    ``jit`` is numba's ``njit(inline="always")`` for the compiled kernel
+    (loaded through :mod:`requant._jit`), ``None`` for the plain-Python twin.
+    The kernel is ``dual_peak(hx, he, xs, es, m, nch, phases, gain, sub, run,
+    peak_in, peak_out, v, acc, bx, be, ub, pk)`` over flat buffers:
 
-def dual_peak_kernel_py(xs, es, phases, gain, sub, peak_in, peak_out):
-    """Update the true peaks of x and of x + e, skipping provably lower parts.
-
-    Parameters
-    ----------
-    xs, es : ndarray, float32 or float64, (11 + frames, channels)
-        Input and error, each with 11 samples of history first (sums are
-        formed in float64 whatever the storage).
-    phases : ndarray, (4, 12)
+    hx, he : float64 [11*nch]
+        The 11 frames of input and error before this block.
+    xs, es : float32 or float64 [(m - 11)*nch]
+        Input and error, frame-interleaved (sums are formed in float64
+        whatever the storage). Frame ``n`` of the sequence history-then-block
+        is ``h[n]`` for ``n < 11``, else ``x[n - 11]``; ``m`` counts both.
+    phases : float64 [48]
+        :data:`PHASES`, row by row.
     gain : float
         :data:`PHASE_GAIN`.
     sub : int
         Sub-block length of the skip test.
-    peak_in, peak_out : ndarray, (channels,); updated in place
+    run : int
+        Most frames interpolated in one pass.
+    peak_in, peak_out : float64 [nch]; updated in place
+    v, acc : float64 [run + sub + 11] and [run + sub]; working space
+    bx, be, ub, pk : float64 [number of sub-blocks]; working space
 
     Notes
     -----
@@ -426,46 +419,160 @@ def dual_peak_kernel_py(xs, es, phases, gain, sub, peak_in, peak_out):
     exceed the running peak is skipped: the result equals metering every
     sample. For the output ``x + e`` the bound is also the input's own
     sub-block peak plus ``gain * max|e|``, which skips almost everything.
+    Sub-blocks that must be interpolated are taken in runs of up to ``run``
+    frames, decided with the peak as it stood at the start of the run: a run
+    may interpolate a sub-block that a later decision would have skipped,
+    which costs time but never changes a reading.
     """
-    m, n_ch = xs.shape
-    for c in range(n_ch):
-        row = xs[:, c]
-        err = es[:, c]
-        s0 = 11
-        while s0 < m:
-            s1 = min(s0 + sub, m)
-            xmax = 0.0
-            emax = 0.0
-            for n in range(s0 - 11, s1):
-                xmax = max(xmax, abs(np.float64(row[n])))
-                emax = max(emax, abs(np.float64(err[n])))
-            bound_in = gain * xmax
-            if bound_in > peak_in[c]:
-                pin = _interp_peak(row, err, False, phases, s0, s1)
-                peak_in[c] = max(peak_in[c], pin)
-                ub_in = pin
-            else:
-                ub_in = bound_in
-            bound_out = min(gain * (xmax + emax), ub_in + gain * emax)
-            if bound_out > peak_out[c]:
-                peak_out[c] = max(peak_out[c], _interp_peak(row, err, True, phases, s0, s1))
-            s0 = s1
+    wrap = (lambda f: f) if jit is None else jit
+
+    def at(h, b, n, nch, c):
+        # frame n of the history-then-block sequence, as float64
+        if n < 11:
+            return np.float64(h[n * nch + c])
+        return np.float64(b[(n - 11) * nch + c])
+
+    at = wrap(at)
+
+    def run_peaks(hx, he, xs, es, nch, c, use_err, phases, s0, s1, sub, v, acc, out, k0):
+        # Interpolate inputs n in [s0, s1) (history before s0) in one pass and put the
+        # largest |interpolated sample| of each sub-block into out[k0], out[k0 + 1], ...
+        # The samples are gathered into a contiguous float64 row first; each output is
+        # summed j = 0..11 in order, as in the plain meter, and its four phases' largest
+        # magnitude stored, with no running maximum in the loop: the compiler then
+        # computes several outputs at once in vector registers.
+        m = s1 - s0
+        for n in range(s0 - 11, s1):
+            t = at(hx, xs, n, nch, c)
+            if use_err:
+                t += at(he, es, n, nch, c)
+            v[n - s0 + 11] = t
+        for i in range(m):
+            a0 = 0.0
+            a1 = 0.0
+            a2 = 0.0
+            a3 = 0.0
+            for j in range(12):
+                t = v[i + 11 - j]
+                a0 += phases[j] * t
+                a1 += phases[12 + j] * t
+                a2 += phases[24 + j] * t
+                a3 += phases[36 + j] * t
+            acc[i] = max(max(abs(a0), abs(a1)), max(abs(a2), abs(a3)))
+        k = k0
+        i0 = 0
+        while i0 < m:
+            i1 = min(i0 + sub, m)
+            best = 0.0
+            for i in range(i0, i1):
+                if acc[i] > best:
+                    best = acc[i]
+            out[k] = best
+            k += 1
+            i0 = i1
+
+    run_peaks = wrap(run_peaks)
+
+    def dual_peak(hx, he, xs, es, m, nch, phases, gain, sub, run, peak_in, peak_out, v, acc,
+                  bx, be, ub, pk):
+        nsb = (m - 11 + sub - 1) // sub  # sub-blocks after the 11 frames of history
+        per_run = max(1, run // sub)
+        for c in range(nch):
+            for k in range(nsb):
+                s0 = 11 + k * sub
+                s1 = min(s0 + sub, m)
+                xmax = 0.0
+                emax = 0.0
+                for n in range(s0 - 11, s1):
+                    # a branch, not max(): no chain from one sample to the next
+                    t = abs(at(hx, xs, n, nch, c))
+                    if t > xmax:
+                        xmax = t
+                    t = abs(at(he, es, n, nch, c))
+                    if t > emax:
+                        emax = t
+                bx[k] = xmax
+                be[k] = emax
+            # input: runs of sub-blocks whose bound exceeds the peak so far
+            k = 0
+            while k < nsb:
+                if gain * bx[k] > peak_in[c]:
+                    k1 = k + 1
+                    while k1 < nsb and k1 - k < per_run and gain * bx[k1] > peak_in[c]:
+                        k1 += 1
+                    run_peaks(hx, he, xs, es, nch, c, False, phases, 11 + k * sub,
+                              min(11 + k1 * sub, m), sub, v, acc, pk, k)
+                    for kk in range(k, k1):
+                        peak_in[c] = max(peak_in[c], pk[kk])
+                        ub[kk] = pk[kk]
+                    k = k1
+                else:
+                    ub[k] = gain * bx[k]
+                    k += 1
+            # output x + e: bounded by the input's own peak plus gain * max|e|
+            for k in range(nsb):
+                ub[k] = min(gain * (bx[k] + be[k]), ub[k] + gain * be[k])
+            k = 0
+            while k < nsb:
+                if ub[k] > peak_out[c]:
+                    k1 = k + 1
+                    while k1 < nsb and k1 - k < per_run and ub[k1] > peak_out[c]:
+                        k1 += 1
+                    run_peaks(hx, he, xs, es, nch, c, True, phases, 11 + k * sub,
+                              min(11 + k1 * sub, m), sub, v, acc, pk, k)
+                    for kk in range(k, k1):
+                        peak_out[c] = max(peak_out[c], pk[kk])
+                    k = k1
+                else:
+                    k += 1
+
+    return dual_peak
 
 
-_compiled_dual = None
+#: Plain-Python twin of the compiled dual kernel (the tests compare the two).
+dual_peak_kernel_py = build_dual()
+
+_PHASES_FLAT = np.ascontiguousarray(PHASES.reshape(-1))
+_CODES = {np.dtype(np.float32): "f32", np.dtype(np.float64): "f64"}
 
 
-def _dual_kernel():
-    global _compiled_dual, _interp_peak
-    if _compiled_dual is None:
-        import numba
-
-        _interp_peak = numba.njit(cache=True, nogil=True)(_interp_peak_py)
-        _compiled_dual = numba.njit(cache=True, nogil=True)(dual_peak_kernel_py)
-    return _compiled_dual
+_dual_kernels = {}
 
 
-_interp_peak_py = _interp_peak
+def _dual_kernel(x_dtype, e_dtype):
+    """The compiled dual kernel for these storage dtypes (see :mod:`requant._jit`)."""
+    key = (np.dtype(x_dtype), np.dtype(e_dtype))
+    fn = _dual_kernels.get(key)
+    if fn is None:
+        fn = _dual_kernels[key] = _load_dual_kernel(*key)
+    return fn
+
+
+def _load_dual_kernel(x_dtype, e_dtype):
+    from pathlib import Path
+
+    from . import _jit
+
+    xc, ec = _CODES[np.dtype(x_dtype)], _CODES[np.dtype(e_dtype)]
+    args = ["f64*", "f64*", f"{xc}*", f"{ec}*", "i64", "i64", "f64*", "f64", "i64", "i64",
+            "f64*", "f64*", "f64*", "f64*", "f64*", "f64*", "f64*", "f64*"]
+    return _jit.load(f"truepeak-dual-{xc}-{ec}", build_dual, Path(__file__).read_text(), args)
+
+
+def _float_block(a):
+    """A C-contiguous float32 or float64 block (other dtypes become float64)."""
+    a = np.asarray(a)
+    if a.dtype not in (np.float32, np.float64):
+        return np.ascontiguousarray(a, dtype=np.float64)
+    return np.ascontiguousarray(a)
+
+
+def _next_history(hist, block):
+    """The last :data:`HISTORY_FRAMES` frames of ``hist`` followed by ``block``, float64."""
+    n = block.shape[0]
+    if n >= HISTORY_FRAMES:
+        return block[-HISTORY_FRAMES:].astype(np.float64)
+    return np.concatenate((hist[n:], block.astype(np.float64)))
 
 
 class DualTruePeakMeter:
@@ -473,17 +580,19 @@ class DualTruePeakMeter:
 
     The same figures as two :class:`TruePeakMeter` (history, and a zero
     flush at :meth:`finish`), at about half the cost: parts of the signal
-    that provably cannot raise a peak are skipped (see
-    :func:`dual_peak_kernel_py`).
+    that provably cannot raise a peak are skipped (see :func:`build_dual`).
     """
 
     def __init__(self, channels):
         self.channels = int(channels)
         # history keeps the blocks' own dtype (float32 input stays float32: exact)
-        self._hx = np.zeros((HISTORY_FRAMES, self.channels), dtype=np.float32)
-        self._he = np.zeros((HISTORY_FRAMES, self.channels), dtype=np.float32)
+        # the last 11 frames, float64 (exact for float32 blocks too)
+        self._hx = np.zeros((HISTORY_FRAMES, self.channels))
+        self._he = np.zeros((HISTORY_FRAMES, self.channels))
         self.peak_in = np.zeros(self.channels)
         self.peak_out = np.zeros(self.channels)
+        self._v = np.zeros(RUN_FRAMES + SUB_FRAMES + HISTORY_FRAMES)  # kernel working space
+        self._acc = np.zeros(RUN_FRAMES + SUB_FRAMES)
         self.finished = False
 
     def process(self, x, e, *, kernel=None):
@@ -491,16 +600,16 @@ class DualTruePeakMeter:
         n = x.shape[0]
         if n == 0:
             return
-        xs = np.empty((HISTORY_FRAMES + n, self.channels), dtype=np.result_type(x, self._hx))
-        es = np.empty((HISTORY_FRAMES + n, self.channels), dtype=np.result_type(e, self._he))
-        xs[:HISTORY_FRAMES] = self._hx
-        es[:HISTORY_FRAMES] = self._he
-        xs[HISTORY_FRAMES:] = x
-        es[HISTORY_FRAMES:] = e
-        run = _dual_kernel() if kernel is None else kernel
-        run(xs, es, PHASES, PHASE_GAIN, SUB_FRAMES, self.peak_in, self.peak_out)
-        self._hx = xs[-HISTORY_FRAMES:].copy()
-        self._he = es[-HISTORY_FRAMES:].copy()
+        x = _float_block(x)
+        e = _float_block(e)
+        run = _dual_kernel(x.dtype, e.dtype) if kernel is None else kernel
+        nsb = -(-n // SUB_FRAMES)
+        bx, be, ub, pk = np.empty((4, nsb))
+        run(self._hx.reshape(-1), self._he.reshape(-1), x.reshape(-1), e.reshape(-1),
+            HISTORY_FRAMES + n, self.channels, _PHASES_FLAT, PHASE_GAIN, SUB_FRAMES, RUN_FRAMES,
+            self.peak_in, self.peak_out, self._v, self._acc, bx, be, ub, pk)
+        self._hx = _next_history(self._hx, x)
+        self._he = _next_history(self._he, e)
 
     def finish(self):
         """Flush both filters with 11 zeros (idempotent)."""
