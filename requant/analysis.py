@@ -52,6 +52,14 @@ __all__ = [
 
 #: Most Welch segments analysed per channel (spread evenly over the file).
 MAX_SEGMENTS = 1024
+
+#: A window whose float32-ranked power exceeds the quietest so far by more than
+#: this factor is dropped without the exact float64 check. The float32 sums of
+#: a window's squares are typically off by about sqrt(n)*2**-24 (2e-5 for the
+#: longest windows), so a dropped window is, in practice, never more than
+#: 0.1 % quieter than the one kept; a wider slack made stationary programme
+#: copy nearly every window.
+_RANK_SLACK = 1.001
 #: A PSD bin this far above the running median counts as a tone.
 TONE_THRESHOLD_DB = 6.0
 #: Half-width (bins) of the running median that tracks the noise floor.
@@ -217,9 +225,12 @@ class ErrorAnalyzer:
         self._qe = np.zeros((self.QW, self.channels), dtype=np.float32)
         self._qfill = 0
         self._qstart = 0
+        self._qsum = 0.0
+        self._qcand = True
         self._quiet = None
         # true peak
         self._tp = None
+        self._pool = None
         if true_peak:
             from .truepeak import DualTruePeakMeter
 
@@ -243,10 +254,29 @@ class ErrorAnalyzer:
             self._sx2 += np.einsum("ij,ij->j", x64, x64)
             self._se2 += np.einsum("ij,ij->j", e64, e64)
         self._n += n
+        job = None
         if self._tp is not None:
-            self._tp.process(x, e32)
-        self._feed_segments(x32, e32)
-        self._feed_quiet(x32, e32)
+            if n >= self.TP_THREAD_MIN_FRAMES:
+                # the true-peak meter runs beside the spectra, on a thread of its own
+                job = self._tp_pool().submit(self._tp.process, x, e32)
+            else:
+                self._tp.process(x, e32)
+        try:
+            self._feed_segments(x32, e32)
+            self._feed_quiet(x32, e32)
+        finally:
+            if job is not None:
+                job.result()  # the caller reuses x and e once feed returns
+
+    #: Blocks at least this long meter the true peak on a helper thread.
+    TP_THREAD_MIN_FRAMES = 16384
+
+    def _tp_pool(self):
+        if self._pool is None:
+            from concurrent.futures import ThreadPoolExecutor
+
+            self._pool = ThreadPoolExecutor(max_workers=1, thread_name_prefix="requant-tp")
+        return self._pool
 
     def use_sums(self, *, sum_x, sum_e, sum_xe, sum_x2, sum_e2):
         """Take the time-domain sums (full scale) from elsewhere (the kernel keeps them).
@@ -272,19 +302,20 @@ class ErrorAnalyzer:
             j += 1
         self._seg_index = j
         if starts:
-            # gather only the analysed segments; a segment may begin in the kept tail
-            sx = np.empty((len(starts), self.L, x.shape[1]), dtype=np.float32)
+            # gather only the analysed segments, channels first (the FFT runs along
+            # contiguous rows); a segment may begin in the kept tail
+            sx = np.empty((len(starts), x.shape[1], self.L), dtype=np.float32)
             se = np.empty_like(sx)
             for k, s0 in enumerate(starts):
                 if s0 >= tail:
-                    sx[k] = x[s0 - tail:s0 - tail + self.L]
-                    se[k] = e[s0 - tail:s0 - tail + self.L]
+                    sx[k] = x[s0 - tail:s0 - tail + self.L].T
+                    se[k] = e[s0 - tail:s0 - tail + self.L].T
                 else:
                     head = tail - s0
-                    sx[k, :head] = self._buf_x[s0:]
-                    se[k, :head] = self._buf_e[s0:]
-                    sx[k, head:] = x[:self.L - head]
-                    se[k, head:] = e[:self.L - head]
+                    sx[k, :, :head] = self._buf_x[s0:].T
+                    se[k, :, :head] = self._buf_e[s0:].T
+                    sx[k, :, head:] = x[:self.L - head].T
+                    se[k, :, head:] = e[:self.L - head].T
             self._add_segments(sx, se)
         keep = self.L - 1
         if x.shape[0] >= keep:
@@ -298,42 +329,62 @@ class ErrorAnalyzer:
     def _add_segments(self, sx, se):
         from scipy import fft
 
-        # sx, se: (segments, L, channels)
-        w = self.win[None, :, None]
-        fe = fft.rfft(se * w, axis=1)
-        fx = fft.rfft(sx * w, axis=1)
-        self._see += np.sum(fe.real ** 2 + fe.imag ** 2, axis=0).T
-        self._sxx += np.sum(fx.real ** 2 + fx.imag ** 2, axis=0).T
+        # sx, se: (segments, channels, L), float32
+        w = self.win[None, None, :]
+        fe = fft.rfft(se * w, axis=-1)
+        fx = fft.rfft(sx * w, axis=-1)
+        self._see += np.sum(fe.real ** 2 + fe.imag ** 2, axis=0)
+        self._sxx += np.sum(fx.real ** 2 + fx.imag ** 2, axis=0)
         self._nseg += sx.shape[0]
+        # histogram in LSB: bin index floor((e*scale - lo) * nb / (hi - lo)), out of range
+        # counted apart (float32 arithmetic: a bin edge may move by a float32 rounding)
         lo, hi = self.hist_edges[0], self.hist_edges[-1]
         nb = self.hist_edges.size - 1
-        k = np.floor((se.astype(np.float64).ravel() * self.scale - lo) * (nb / (hi - lo)))
-        inside = (k >= 0) & (k < nb)
-        self._hist += np.bincount(k[inside].astype(np.int64), minlength=nb)
-        self._hist_out += int(k.size - np.count_nonzero(inside))
+        f = nb / (hi - lo)
+        y = se.reshape(-1) * np.float32(self.scale * f)
+        y -= np.float32(lo * f)
+        np.clip(y, -1.0, float(nb), out=y)
+        k = np.floor(y).astype(np.intp) + 1  # 0: below, nb + 1: above
+        counts = np.bincount(k, minlength=nb + 2)
+        self._hist += counts[1:nb + 1]
+        self._hist_out += int(counts[0] + counts[nb + 1])
 
     def _feed_quiet(self, x, e):
+        # Windows are ranked by their float32 sum of squares, accumulated block by block;
+        # a window is copied only while it can still be the quietest (most windows are
+        # ruled out within their first block, so most audio is never copied).
         i = 0
         n = x.shape[0]
         while i < n:
             take = min(self.QW - self._qfill, n - i)
-            self._qx[self._qfill:self._qfill + take] = x[i:i + take]
-            self._qe[self._qfill:self._qfill + take] = e[i:i + take]
+            if self._qcand:
+                px = x[i:i + take]
+                flat = px.reshape(-1)
+                self._qsum += float(np.dot(flat, flat))
+                if (self._quiet is not None
+                        and self._qsum > _RANK_SLACK * self._quiet["ms"] * self._qx.size):
+                    self._qcand = False
+                else:
+                    self._qx[self._qfill:self._qfill + take] = px
+                    self._qe[self._qfill:self._qfill + take] = e[i:i + take]
             self._qfill += take
             i += take
             if self._qfill == self.QW:
-                self._close_quiet_window()
+                if self._qcand:
+                    self._close_quiet_window()
                 self._qstart += self.QW
                 self._qfill = 0
+                self._qsum = 0.0
+                self._qcand = True
 
     def _close_quiet_window(self):
         x = self._qx
         nonzero = np.count_nonzero(x)
         if nonzero < 0.5 * x.size:
             return  # (mostly) digital silence: not a passage
-        flat = x.reshape(-1)
-        ms_fast = float(np.dot(flat, flat)) / flat.size  # float32 sum: to rank windows
-        if ms_fast <= 0.0 or (self._quiet is not None and ms_fast > 1.01 * self._quiet["ms"]):
+        ms_fast = self._qsum / x.size  # float32 sums: to rank windows
+        if ms_fast <= 0.0 or (self._quiet is not None
+                              and ms_fast > _RANK_SLACK * self._quiet["ms"]):
             return
         ms = float(np.mean(x.astype(np.float64) ** 2))  # exact, for the candidates
         if self._quiet is None or ms < self._quiet["ms"]:
@@ -429,6 +480,9 @@ class ErrorAnalyzer:
 
     def finish(self):
         """All figures, as a dict (see the module docstring); JSON-ready."""
+        if self._pool is not None:
+            self._pool.shutdown()
+            self._pool = None
         if self._tp is not None:
             self._tp.finish()
         freqs = np.arange(self.L // 2 + 1) * self.rate / self.L
