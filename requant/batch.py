@@ -689,6 +689,7 @@ def _figures(report):
 
 
 def _convert_one(task):
+    from .atomic import pending_path
     from .convert import convert_file
     from .formats import format_for_path
 
@@ -744,7 +745,7 @@ def _convert_one(task):
     return {
         "status": "converted",
         "reason": reason,
-        "output_sha256": sha256_file(out),
+        "output_sha256": sha256_file(pending_path(out)),  # a CommitGroup may hold it
         "snr_db": report["measured"]["snr_db"],
         "duration_s": report["input"]["duration_s"],
         "warnings": warnings,
@@ -833,14 +834,17 @@ class SerialExecutor:
     workers = 1
     description = "this process"
     forks = False
+    max_chunk = 16
+    chunk_bytes = 64 * 2**20
 
     def start(self):
         """Nothing to start."""
 
     def imap_unordered(self, fn, items, tick=None):
-        """Yield (item, fn(item)) in order."""
-        for item in items:
-            yield item, fn(item)
+        """Yield (item, fn(item)) in order, in chunks whose outputs reach the disk together
+        (as a worker's chunk does, see :func:`_run_chunk`)."""
+        for chunk in chunk_items(items, per=self.max_chunk, chunk_bytes=self.chunk_bytes):
+            yield from zip(chunk, _run_chunk(fn, chunk))
 
     def drain(self):
         """Nothing runs after an interrupt here."""
@@ -890,12 +894,13 @@ def _worker_init():
 
 
 def _warm_kernel():
-    """Load the compiled kernel (numba) by requantizing a tiny array; cheap when loaded."""
+    """Load the compiled kernel most batches use (float32 in, 16-bit codes, unshaped) by
+    requantizing a tiny block; cheap once loaded (see requant._jit)."""
     import numpy as np
 
-    from .quantize import requantize
+    from .quantize import Requantizer
 
-    requantize(np.zeros((16, 1)), bits=16, dither="tpdf", seed=0)
+    Requantizer(1, bits=16, dither="tpdf", seed=0).process(np.zeros((16, 1), np.float32))
 
 
 def _ping():
@@ -903,15 +908,35 @@ def _ping():
 
 
 def _run_chunk(fn, items):
-    """Run ``fn`` on each item in a worker; stop after an interrupt (SIGINT)."""
+    """Run ``fn`` on each item in a worker; stop after an interrupt (SIGINT).
+
+    The chunk's outputs are flushed to disk together and then renamed into
+    place (:class:`~requant.atomic.CommitGroup`) before the results go back,
+    so the manifest never names an output that is not on disk. If that flush
+    fails, the files it held are reported failed.
+    """
+    from .atomic import CommitGroup
+
     out = []
-    for item in items:
-        if _TASK["stop"]:
-            break
-        res = fn(item)
-        out.append(res)
-        if isinstance(res, dict) and res.get("status") == "interrupted":
-            break
+    with CommitGroup() as group:
+        for item in items:
+            if _TASK["stop"]:
+                break
+            res = fn(item)
+            out.append(res)
+            if isinstance(res, dict) and res.get("status") == "interrupted":
+                break
+        waiting = {os.path.abspath(final) for _, final in group.pairs}
+        try:
+            group.flush()
+        except OSError as exc:
+            from .convert import _wrap_write_error
+
+            for item, res in zip(items, out):
+                path = item.get("output_path") if isinstance(item, dict) else None
+                if path and isinstance(res, dict) and os.path.abspath(path) in waiting:
+                    res.update(status="failed", error=str(_wrap_write_error(exc, path)),
+                               output_sha256=None)
     return out
 
 

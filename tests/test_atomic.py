@@ -1,0 +1,107 @@
+"""requant.atomic: outputs appear whole or not at all.
+
+The rule checked here is the one POSIX gives for crash-safe replacement
+(write a temporary file, fsync it, then rename(2) it over the final name:
+rename is atomic within a file system, IEEE Std 1003.1, rename()): every
+fsync must come before the rename that publishes the file, also when a
+CommitGroup defers them.
+"""
+
+import errno
+import os
+
+import numpy as np
+import pytest
+import soundfile as sf
+
+from requant import atomic, batch
+from requant.atomic import AtomicOutputs, CommitGroup, pending_path
+
+
+def _write(outs, final, text):
+    tmp = outs.path_for(final)
+    with open(tmp, "w") as fh:
+        fh.write(text)
+    return tmp
+
+
+def _trace(monkeypatch):
+    calls = []
+    real_fsync, real_replace = os.fsync, os.replace
+    monkeypatch.setattr(atomic.os, "fsync", lambda fd: (calls.append("fsync"), real_fsync(fd)))
+    monkeypatch.setattr(atomic.os, "replace",
+                        lambda a, b: (calls.append("replace"), real_replace(a, b)))
+    return calls
+
+
+def test_plain_commit_flushes_then_renames(tmp_path, monkeypatch):
+    calls = _trace(monkeypatch)
+    with AtomicOutputs() as outs:
+        _write(outs, tmp_path / "a.txt", "A")
+    assert (tmp_path / "a.txt").read_text() == "A"
+    assert calls == ["fsync", "replace"]
+
+
+def test_group_defers_and_flushes_everything_before_any_rename(tmp_path, monkeypatch):
+    calls = _trace(monkeypatch)
+    with CommitGroup() as group:
+        for name in "abc":
+            with AtomicOutputs() as outs:
+                tmp = _write(outs, tmp_path / f"{name}.txt", name)
+            assert not (tmp_path / f"{name}.txt").exists()  # waits in the group
+            assert pending_path(tmp_path / f"{name}.txt") == tmp
+        assert calls == []
+        group.flush()
+    assert calls == ["fsync"] * 3 + ["replace"] * 3
+    assert [(tmp_path / f"{n}.txt").read_text() for n in "abc"] == ["a", "b", "c"]
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["a.txt", "b.txt", "c.txt"]
+    assert pending_path(tmp_path / "a.txt") == tmp_path / "a.txt"  # outside any group
+
+
+def test_group_left_without_flush_leaves_nothing(tmp_path):
+    with pytest.raises(KeyboardInterrupt):
+        with CommitGroup():
+            with AtomicOutputs() as outs:
+                _write(outs, tmp_path / "a.txt", "A")
+            raise KeyboardInterrupt
+    assert list(tmp_path.iterdir()) == []
+
+
+def test_failed_flush_removes_what_was_not_renamed(tmp_path, monkeypatch):
+    real_replace = os.replace
+    done = []
+
+    def replace(a, b):
+        if done:
+            raise OSError(errno.ENOSPC, "No space left on device")
+        done.append(b)
+        real_replace(a, b)
+
+    monkeypatch.setattr(atomic.os, "replace", replace)
+    with CommitGroup() as group:
+        for name in "ab":
+            with AtomicOutputs() as outs:
+                _write(outs, tmp_path / f"{name}.txt", name)
+        with pytest.raises(OSError):
+            group.flush()
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["a.txt"]
+
+
+def test_batch_chunk_reports_a_failed_flush(tmp_path, monkeypatch):
+    # a chunk whose outputs cannot be published says so per file; nothing partial stays
+    src, dst = tmp_path / "src", tmp_path / "dst"
+    src.mkdir()
+    dst.mkdir()
+    for i in range(3):
+        sf.write(src / f"c{i}.wav", np.full((480, 1), 0.25 * i, np.float32), 48000,
+                 subtype="FLOAT")
+    tasks = [{"source": f"c{i}.wav", "output": f"c{i}.wav",
+              "source_path": str(src / f"c{i}.wav"), "output_path": str(dst / f"c{i}.wav"),
+              "seed": i, "settings": dict(batch.DEFAULT_SETTINGS), "overwrite": False,
+              "expect_sha256": None, "reason": "new", "note": None} for i in range(3)]
+    monkeypatch.setattr(atomic.os, "replace",
+                        lambda a, b: (_ for _ in ()).throw(OSError(errno.ENOSPC, "No space")))
+    results = batch._run_chunk(batch.convert_task, tasks)
+    assert [r["status"] for r in results] == ["failed"] * 3
+    assert all("disk is full" in r["error"] for r in results)
+    assert list(dst.iterdir()) == []
