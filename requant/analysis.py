@@ -200,12 +200,10 @@ class ErrorAnalyzer:
             self.stride = 1
         nb = self.L // 2 + 1
         self._see = np.zeros((self.channels, nb))
-        self._sxx = np.zeros((self.channels, nb))
         self._nseg = 0
         self._seg_index = 0
         self._pos = 0
         self._own_sums = bool(own_sums)
-        self._buf_x = np.zeros((0, self.channels), dtype=np.float32)
         self._buf_e = np.zeros((0, self.channels), dtype=np.float32)
         # time-domain sums (all samples), per channel
         self._n = 0
@@ -262,7 +260,7 @@ class ErrorAnalyzer:
             else:
                 self._tp.process(x, e32)
         try:
-            self._feed_segments(x32, e32)
+            self._feed_segments(e32)
             self._feed_quiet(x32, e32)
         finally:
             if job is not None:
@@ -288,12 +286,12 @@ class ErrorAnalyzer:
                                          (sum_x, sum_e, sum_xe))
         self._sx2, self._se2 = (np.asarray(v, dtype=np.float64) for v in (sum_x2, sum_e2))
 
-    def _feed_segments(self, x, e):
+    def _feed_segments(self, e):
         # Segment j starts at global frame j*hop; only every stride-th is analysed.
         # The last L-1 frames are kept, so a segment can straddle two blocks.
-        tail = self._buf_x.shape[0]
+        tail = self._buf_e.shape[0]
         base = self._pos - tail  # global frame of the combined buffer's first sample
-        end = self._pos + x.shape[0]
+        end = self._pos + e.shape[0]
         starts = []
         j = self._seg_index
         while j * self.hop + self.L <= end:
@@ -304,38 +302,30 @@ class ErrorAnalyzer:
         if starts:
             # gather only the analysed segments, channels first (the FFT runs along
             # contiguous rows); a segment may begin in the kept tail
-            sx = np.empty((len(starts), x.shape[1], self.L), dtype=np.float32)
-            se = np.empty_like(sx)
+            se = np.empty((len(starts), e.shape[1], self.L), dtype=np.float32)
             for k, s0 in enumerate(starts):
                 if s0 >= tail:
-                    sx[k] = x[s0 - tail:s0 - tail + self.L].T
                     se[k] = e[s0 - tail:s0 - tail + self.L].T
                 else:
                     head = tail - s0
-                    sx[k, :, :head] = self._buf_x[s0:].T
                     se[k, :, :head] = self._buf_e[s0:].T
-                    sx[k, :, head:] = x[:self.L - head].T
                     se[k, :, head:] = e[:self.L - head].T
-            self._add_segments(sx, se)
+            self._add_segments(se)
         keep = self.L - 1
-        if x.shape[0] >= keep:
-            self._buf_x = np.array(x[-keep:], dtype=np.float32)
+        if e.shape[0] >= keep:
             self._buf_e = np.array(e[-keep:], dtype=np.float32)
         else:
-            self._buf_x = np.concatenate((self._buf_x, x))[-keep:]
             self._buf_e = np.concatenate((self._buf_e, e))[-keep:]
         self._pos = end
 
-    def _add_segments(self, sx, se):
+    def _add_segments(self, se):
         from scipy import fft
 
-        # sx, se: (segments, channels, L), float32
+        # se: (segments, channels, L), float32
         w = self.win[None, None, :]
         fe = fft.rfft(se * w, axis=-1)
-        fx = fft.rfft(sx * w, axis=-1)
         self._see += np.sum(fe.real ** 2 + fe.imag ** 2, axis=0)
-        self._sxx += np.sum(fx.real ** 2 + fx.imag ** 2, axis=0)
-        self._nseg += sx.shape[0]
+        self._nseg += se.shape[0]
         # histogram in LSB: bin index floor((e*scale - lo) * nb / (hi - lo)), out of range
         # counted apart (float32 arithmetic: a bin edge may move by a float32 rounding)
         lo, hi = self.hist_edges[0], self.hist_edges[-1]
@@ -556,7 +546,6 @@ class ErrorAnalyzer:
         # kept for pictures, not for JSON
         self.freqs = freqs
         self.psd_error = self._psd(self._see) if have_psd else None
-        self.psd_input = self._psd(self._sxx) if have_psd else None
         self.quiet_samples = None if self._quiet is None else (self._quiet["x"], self._quiet["e"])
         return out
 
