@@ -411,6 +411,8 @@ def build_dual(jit=None):
     peak_in, peak_out : float64 [nch]; updated in place
     v, acc : float64 [run + sub + 11] and [run + sub]; working space
     bx, be, ub, pk : float64 [number of sub-blocks]; working space
+    phases32, v32, acc32 : float32 [48], [run + sub + 11], [run + sub]
+        :data:`PHASES` rounded to float32, and working space of the screen
 
     Notes
     -----
@@ -422,7 +424,11 @@ def build_dual(jit=None):
     Sub-blocks that must be interpolated are taken in runs of up to ``run``
     frames, decided with the peak as it stood at the start of the run: a run
     may interpolate a sub-block that a later decision would have skipped,
-    which costs time but never changes a reading.
+    which costs time but never changes a reading. The input's runs are first
+    interpolated in float32 (twice as many outputs per vector instruction);
+    a sub-block is read in float64 only if its float32 peak plus a proven
+    bound on the float32 rounding (16 * 2**-24 * gain * max|x|) exceeds the
+    peak so far, so the reading is the float64 one wherever it matters.
     """
     wrap = (lambda f: f) if jit is None else jit
 
@@ -434,13 +440,41 @@ def build_dual(jit=None):
 
     at = wrap(at)
 
-    def run_peaks(hx, he, xs, es, nch, c, use_err, phases, s0, s1, sub, v, acc, out, k0):
+    def maxabs(b, nch, c, lo, hi):
+        # largest |b[n*nch + c]| for block frames n in [lo, hi); four running maxima, so
+        # that no compare waits for the one before
+        m0 = 0.0
+        m1 = 0.0
+        m2 = 0.0
+        m3 = 0.0
+        n = lo
+        while n + 4 <= hi:
+            t0 = abs(np.float64(b[n * nch + c]))
+            t1 = abs(np.float64(b[(n + 1) * nch + c]))
+            t2 = abs(np.float64(b[(n + 2) * nch + c]))
+            t3 = abs(np.float64(b[(n + 3) * nch + c]))
+            m0 = t0 if t0 > m0 else m0
+            m1 = t1 if t1 > m1 else m1
+            m2 = t2 if t2 > m2 else m2
+            m3 = t3 if t3 > m3 else m3
+            n += 4
+        while n < hi:
+            t0 = abs(np.float64(b[n * nch + c]))
+            m0 = t0 if t0 > m0 else m0
+            n += 1
+        return max(max(m0, m1), max(m2, m3))
+
+    maxabs = wrap(maxabs)
+
+    def run_peaks(hx, he, xs, es, nch, c, use_err, phases, s0, s1, sub, v, acc, out, k0, zero):
         # Interpolate inputs n in [s0, s1) (history before s0) in one pass and put the
         # largest |interpolated sample| of each sub-block into out[k0], out[k0 + 1], ...
         # The samples are gathered into a contiguous float64 row first; each output is
         # summed j = 0..11 in order, as in the plain meter, and its four phases' largest
         # magnitude stored, with no running maximum in the loop: the compiler then
-        # computes several outputs at once in vector registers.
+        # computes several outputs at once in vector registers. The arithmetic is that of
+        # ``zero``, ``phases``, ``v`` and ``acc``: float64 for the reading, float32 for the
+        # screen (twice as many outputs per vector).
         m = s1 - s0
         for n in range(s0 - 11, s1):
             t = at(hx, xs, n, nch, c)
@@ -448,10 +482,10 @@ def build_dual(jit=None):
                 t += at(he, es, n, nch, c)
             v[n - s0 + 11] = t
         for i in range(m):
-            a0 = 0.0
-            a1 = 0.0
-            a2 = 0.0
-            a3 = 0.0
+            a0 = zero
+            a1 = zero
+            a2 = zero
+            a3 = zero
             for j in range(12):
                 t = v[i + 11 - j]
                 a0 += phases[j] * t
@@ -463,7 +497,7 @@ def build_dual(jit=None):
         i0 = 0
         while i0 < m:
             i1 = min(i0 + sub, m)
-            best = 0.0
+            best = zero
             for i in range(i0, i1):
                 if acc[i] > best:
                     best = acc[i]
@@ -474,37 +508,47 @@ def build_dual(jit=None):
     run_peaks = wrap(run_peaks)
 
     def dual_peak(hx, he, xs, es, m, nch, phases, gain, sub, run, peak_in, peak_out, v, acc,
-                  bx, be, ub, pk):
+                  bx, be, ub, pk, phases32, v32, acc32):
+        # |float32 screen - float64 reading| <= 14 * 2**-24 * sum|h_j x_j| (rounding of h,
+        # x, each product and 11 sums), and sum|h_j x_j| <= gain * max|x|: 16 to spare
+        margin = 16.0 * 2.0**-24 * gain
         nsb = (m - 11 + sub - 1) // sub  # sub-blocks after the 11 frames of history
         per_run = max(1, run // sub)
         for c in range(nch):
             for k in range(nsb):
+                # largest |x| and |e| over the sub-block and the 11 frames before it
                 s0 = 11 + k * sub
                 s1 = min(s0 + sub, m)
+                lo = s0 - 11
                 xmax = 0.0
                 emax = 0.0
-                for n in range(s0 - 11, s1):
-                    # a branch, not max(): no chain from one sample to the next
-                    t = abs(at(hx, xs, n, nch, c))
-                    if t > xmax:
-                        xmax = t
-                    t = abs(at(he, es, n, nch, c))
-                    if t > emax:
-                        emax = t
-                bx[k] = xmax
-                be[k] = emax
-            # input: runs of sub-blocks whose bound exceeds the peak so far
+                while lo < 11:  # frames from the history (first sub-block only)
+                    xmax = max(xmax, abs(at(hx, xs, lo, nch, c)))
+                    emax = max(emax, abs(at(he, es, lo, nch, c)))
+                    lo += 1
+                bx[k] = max(xmax, maxabs(xs, nch, c, lo - 11, s1 - 11))
+                be[k] = max(emax, maxabs(es, nch, c, lo - 11, s1 - 11))
+            # input: runs of sub-blocks whose bound exceeds the peak so far, screened in
+            # float32; the float64 reading is made only where the screen cannot rule out a
+            # new peak
             k = 0
             while k < nsb:
                 if gain * bx[k] > peak_in[c]:
                     k1 = k + 1
                     while k1 < nsb and k1 - k < per_run and gain * bx[k1] > peak_in[c]:
                         k1 += 1
-                    run_peaks(hx, he, xs, es, nch, c, False, phases, 11 + k * sub,
-                              min(11 + k1 * sub, m), sub, v, acc, pk, k)
+                    run_peaks(hx, he, xs, es, nch, c, False, phases32, 11 + k * sub,
+                              min(11 + k1 * sub, m), sub, v32, acc32, pk, k, np.float32(0.0))
                     for kk in range(k, k1):
-                        peak_in[c] = max(peak_in[c], pk[kk])
-                        ub[kk] = pk[kk]
+                        bound = np.float64(pk[kk]) + margin * bx[kk]
+                        if bound <= peak_in[c]:
+                            ub[kk] = bound
+                        else:  # (also when the screen gave NaN)
+                            s0 = 11 + kk * sub
+                            run_peaks(hx, he, xs, es, nch, c, False, phases, s0,
+                                      min(s0 + sub, m), sub, v, acc, pk, kk, 0.0)
+                            peak_in[c] = max(peak_in[c], pk[kk])
+                            ub[kk] = pk[kk]
                     k = k1
                 else:
                     ub[k] = gain * bx[k]
@@ -519,7 +563,7 @@ def build_dual(jit=None):
                     while k1 < nsb and k1 - k < per_run and ub[k1] > peak_out[c]:
                         k1 += 1
                     run_peaks(hx, he, xs, es, nch, c, True, phases, 11 + k * sub,
-                              min(11 + k1 * sub, m), sub, v, acc, pk, k)
+                              min(11 + k1 * sub, m), sub, v, acc, pk, k, 0.0)
                     for kk in range(k, k1):
                         peak_out[c] = max(peak_out[c], pk[kk])
                     k = k1
@@ -533,6 +577,7 @@ def build_dual(jit=None):
 dual_peak_kernel_py = build_dual()
 
 _PHASES_FLAT = np.ascontiguousarray(PHASES.reshape(-1))
+_PHASES32 = _PHASES_FLAT.astype(np.float32)
 _CODES = {np.dtype(np.float32): "f32", np.dtype(np.float64): "f64"}
 
 
@@ -555,7 +600,8 @@ def _load_dual_kernel(x_dtype, e_dtype):
 
     xc, ec = _CODES[np.dtype(x_dtype)], _CODES[np.dtype(e_dtype)]
     args = ["f64*", "f64*", f"{xc}*", f"{ec}*", "i64", "i64", "f64*", "f64", "i64", "i64",
-            "f64*", "f64*", "f64*", "f64*", "f64*", "f64*", "f64*", "f64*"]
+            "f64*", "f64*", "f64*", "f64*", "f64*", "f64*", "f64*", "f64*", "f32*", "f32*",
+            "f32*"]
     return _jit.load(f"truepeak-dual-{xc}-{ec}", build_dual, Path(__file__).read_text(), args)
 
 
@@ -593,6 +639,8 @@ class DualTruePeakMeter:
         self.peak_out = np.zeros(self.channels)
         self._v = np.zeros(RUN_FRAMES + SUB_FRAMES + HISTORY_FRAMES)  # kernel working space
         self._acc = np.zeros(RUN_FRAMES + SUB_FRAMES)
+        self._v32 = np.zeros(RUN_FRAMES + SUB_FRAMES + HISTORY_FRAMES, dtype=np.float32)
+        self._acc32 = np.zeros(RUN_FRAMES + SUB_FRAMES, dtype=np.float32)
         self.finished = False
 
     def process(self, x, e, *, kernel=None):
@@ -607,7 +655,8 @@ class DualTruePeakMeter:
         bx, be, ub, pk = np.empty((4, nsb))
         run(self._hx.reshape(-1), self._he.reshape(-1), x.reshape(-1), e.reshape(-1),
             HISTORY_FRAMES + n, self.channels, _PHASES_FLAT, PHASE_GAIN, SUB_FRAMES, RUN_FRAMES,
-            self.peak_in, self.peak_out, self._v, self._acc, bx, be, ub, pk)
+            self.peak_in, self.peak_out, self._v, self._acc, bx, be, ub, pk, _PHASES32,
+            self._v32, self._acc32)
         self._hx = _next_history(self._hx, x)
         self._he = _next_history(self._he, e)
 

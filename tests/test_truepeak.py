@@ -335,6 +335,26 @@ def test_dual_meter_equals_two_meters(kind, block, dtype):
     assert np.array_equal(d.peak_out, b.true_peak)
 
 
+def test_dual_meter_finds_peaks_float32_cannot_tell_apart():
+    # The float32 screen must not hide a later peak that exceeds an earlier one by less
+    # than float32 resolution (2**-24 relative): the reading must still equal the plain
+    # float64 meter's, bit for bit. Without the screen's rounding margin about half of
+    # these cases read the earlier, lower peak.
+    t = np.arange(24000)
+    tone = 0.7 * np.sin(2 * np.pi * 1000.3 * t / 48000 + 0.3)
+    for i in range(1, 25):
+        x = np.concatenate([tone, tone * (1 + i * 2e-9)])[:, None]
+        e = np.zeros_like(x)
+        d, a = DualTruePeakMeter(1), TruePeakMeter(1)
+        for k in range(0, x.shape[0], 4096):
+            d.process(x[k:k + 4096], e[k:k + 4096])
+        d.finish()
+        a.process(x)
+        a.finish()
+        assert np.array_equal(d.peak_in, a.true_peak), i
+        assert np.array_equal(d.peak_out, a.true_peak), i
+
+
 def test_dual_meter_plain_twin_equals_compiled():
     rng = np.random.default_rng(3)
     x = rng.uniform(-1, 1, (3000, 2))
