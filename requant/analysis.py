@@ -228,7 +228,6 @@ class ErrorAnalyzer:
         self._quiet = None
         # true peak
         self._tp = None
-        self._pool = None
         if true_peak:
             from .truepeak import DualTruePeakMeter
 
@@ -252,29 +251,10 @@ class ErrorAnalyzer:
             self._sx2 += np.einsum("ij,ij->j", x64, x64)
             self._se2 += np.einsum("ij,ij->j", e64, e64)
         self._n += n
-        job = None
         if self._tp is not None:
-            if n >= self.TP_THREAD_MIN_FRAMES:
-                # the true-peak meter runs beside the spectra, on a thread of its own
-                job = self._tp_pool().submit(self._tp.process, x, e32)
-            else:
-                self._tp.process(x, e32)
-        try:
-            self._feed_segments(e32)
-            self._feed_quiet(x32, e32)
-        finally:
-            if job is not None:
-                job.result()  # the caller reuses x and e once feed returns
-
-    #: Blocks at least this long meter the true peak on a helper thread.
-    TP_THREAD_MIN_FRAMES = 16384
-
-    def _tp_pool(self):
-        if self._pool is None:
-            from concurrent.futures import ThreadPoolExecutor
-
-            self._pool = ThreadPoolExecutor(max_workers=1, thread_name_prefix="requant-tp")
-        return self._pool
+            self._tp.process(x, e32)
+        self._feed_segments(e32)
+        self._feed_quiet(x32, e32)
 
     def use_sums(self, *, sum_x, sum_e, sum_xe, sum_x2, sum_e2):
         """Take the time-domain sums (full scale) from elsewhere (the kernel keeps them).
@@ -470,9 +450,6 @@ class ErrorAnalyzer:
 
     def finish(self):
         """All figures, as a dict (see the module docstring); JSON-ready."""
-        if self._pool is not None:
-            self._pool.shutdown()
-            self._pool = None
         if self._tp is not None:
             self._tp.finish()
         freqs = np.arange(self.L // 2 + 1) * self.rate / self.L
