@@ -50,8 +50,10 @@ __all__ = [
     "DITHER_POWER_LSB2",
 ]
 
-#: Most Welch segments analysed per channel (spread evenly over the file).
-MAX_SEGMENTS = 1024
+#: Most Welch segments analysed per channel (spread evenly over the file). 512
+#: averages leave about 4 % (0.2 dB) scatter per bin and far less in band and
+#: weighted figures; more cost time on long files for little gain in precision.
+MAX_SEGMENTS = 512
 
 #: A window whose float32-ranked power exceeds the quietest so far by more than
 #: this factor is dropped without the exact float64 check. The float32 sums of
