@@ -224,3 +224,15 @@ def test_truncating_a_fade_is_flagged():
     y = requantize(x, bits=16, quantizer="truncate", dither="none")
     res = analyze_arrays(x, y - x, fs, bits=16, quantizer="truncate", dither="none")
     assert res["signal_correlated"] is True
+
+
+@pytest.mark.parametrize("n, half", [(4097, 24), (30, 24), (9, 1), (1, 3)])
+def test_running_median_equals_scipy_median_filter(n, half):
+    # reference library: scipy.ndimage.median_filter with mode="nearest"
+    from scipy.ndimage import median_filter
+
+    from requant.analysis import _running_median
+
+    v = np.random.default_rng(n).exponential(1.0, n)
+    assert np.array_equal(_running_median(v, half),
+                          median_filter(v, size=2 * half + 1, mode="nearest"))
