@@ -83,13 +83,10 @@ class WavWriter:
             self.closed = True
             raise
         self._unsynced = 0
-        self._sync_thread = None
-        if background_sync:
-            self._wake = threading.Event()
-            self._stop = False
-            self._sync_thread = threading.Thread(target=self._sync_loop, daemon=True,
-                                                 name="requant-sync")
-            self._sync_thread.start()
+        self._background = bool(background_sync)
+        self._sync_thread = None  # started once SYNC_BYTES have been written (not for short files)
+        self._wake = threading.Event()
+        self._stop = False
 
     def _sync_loop(self):
         while True:
@@ -138,10 +135,14 @@ class WavWriter:
             out = np.ascontiguousarray(block)
         self._write_all(out)
         self.frames += block.shape[0]
-        if self._sync_thread is not None:
+        if self._background:
             self._unsynced += out.nbytes
             if self._unsynced >= SYNC_BYTES:
                 self._unsynced = 0
+                if self._sync_thread is None:
+                    self._sync_thread = threading.Thread(target=self._sync_loop, daemon=True,
+                                                         name="requant-sync")
+                    self._sync_thread.start()
                 self._wake.set()
 
     def close(self):
