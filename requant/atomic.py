@@ -96,13 +96,7 @@ class AtomicOutputs:
 
     def discard(self):
         """Remove every temporary file (errors while removing are ignored)."""
-        for tmp, _ in self._pairs:
-            try:
-                os.unlink(tmp)
-            except FileNotFoundError:
-                pass
-            except OSError:
-                pass
+        _remove_temps(self._pairs)
 
     def commit(self):
         """Flush each temporary file to disk and rename it to its final name.
@@ -114,12 +108,7 @@ class AtomicOutputs:
             group.pairs.extend(self._pairs)
             self._pairs = []
             return
-        for tmp, _ in self._pairs:
-            fd = os.open(tmp, os.O_RDONLY)
-            try:
-                os.fsync(fd)
-            finally:
-                os.close(fd)
+        _fsync_temps(self._pairs)
         for tmp, final in self._pairs:
             os.replace(tmp, final)
         self._pairs = []
@@ -183,12 +172,7 @@ class CommitGroup:
         """
         pairs, self.pairs = self.pairs, []
         try:
-            for tmp, _ in pairs:
-                fd = os.open(tmp, os.O_RDONLY)
-                try:
-                    os.fsync(fd)
-                finally:
-                    os.close(fd)
+            _fsync_temps(pairs)
             while pairs:
                 tmp, final = pairs[0]
                 os.replace(tmp, final)
@@ -200,12 +184,26 @@ class CommitGroup:
 
     def discard(self):
         """Remove every waiting temporary file."""
-        for tmp, _ in self.pairs:
-            try:
-                os.unlink(tmp)
-            except OSError:
-                pass
+        _remove_temps(self.pairs)
         self.pairs = []
+
+
+def _fsync_temps(pairs):
+    """Flush each temporary file of (temporary, final) pairs to disk."""
+    for tmp, _ in pairs:
+        fd = os.open(tmp, os.O_RDONLY)
+        try:
+            os.fsync(fd)
+        finally:
+            os.close(fd)
+
+
+def _remove_temps(pairs):
+    for tmp, _ in pairs:
+        try:
+            os.unlink(tmp)
+        except OSError:
+            pass
 
 
 def pending_path(final):
