@@ -105,8 +105,10 @@ class AtomicOutputs:
         """
         group = getattr(_local, "group", None)
         if group is not None:
-            group.pairs.extend(self._pairs)
-            self._pairs = []
+            # hand over first: an interrupt from here on cannot make discard() remove a file
+            # the group will rename (at worst a temporary is left for the next run to remove)
+            pairs, self._pairs = self._pairs, []
+            group.add(pairs)
             return
         _fsync_temps(self._pairs)
         for tmp, final in self._pairs:
@@ -142,6 +144,10 @@ class CommitGroup:
 
     def __init__(self):
         self.pairs = []
+
+    def add(self, pairs):
+        """Let (temporary, final) pairs wait for :meth:`flush`."""
+        self.pairs.extend(pairs)
 
     def __enter__(self):
         self._outer = getattr(_local, "group", None)

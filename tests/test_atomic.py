@@ -105,3 +105,23 @@ def test_batch_chunk_reports_a_failed_flush(tmp_path, monkeypatch):
     assert [r["status"] for r in results] == ["failed"] * 3
     assert all("disk is full" in r["error"] for r in results)
     assert list(dst.iterdir()) == []
+
+
+def test_interrupt_inside_a_group_commit_never_removes_what_the_group_renames(tmp_path,
+                                                                                 monkeypatch):
+    # A Ctrl-C that lands just after a file joined the group must not let the
+    # interrupted AtomicOutputs remove it: the group will publish it whole.
+    real_add = CommitGroup.add
+
+    def add_then_interrupt(self, pairs):
+        real_add(self, pairs)
+        raise KeyboardInterrupt
+
+    monkeypatch.setattr(CommitGroup, "add", add_then_interrupt)
+    with CommitGroup() as group:
+        with pytest.raises(KeyboardInterrupt):
+            with AtomicOutputs() as outs:
+                _write(outs, tmp_path / "a.txt", "A")
+        group.flush()
+    assert (tmp_path / "a.txt").read_text() == "A"
+    assert [p.name for p in tmp_path.iterdir()] == ["a.txt"]
