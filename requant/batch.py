@@ -894,10 +894,13 @@ def _worker_init():
 
 
 def _warm_kernel():
-    """Load the compiled kernel most batches use (float32 in, 16-bit codes, unshaped) by
-    requantizing a tiny block; cheap once loaded (see requant._jit)."""
+    """Load what every file needs: the modules of a conversion and the compiled kernel
+    most batches use (float32 in, 16-bit codes, unshaped); cheap once loaded. Forked
+    workers inherit it all."""
     import numpy as np
+    import soundfile  # noqa: F401
 
+    from . import convert, riff, wavwrite  # noqa: F401
     from .quantize import Requantizer
 
     Requantizer(1, bits=16, dither="tpdf", seed=0).process(np.zeros((16, 1), np.float32))
