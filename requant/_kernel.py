@@ -111,7 +111,7 @@ def build(jit=None, taps=None):
         rng : uint64 [nch*4], SFC64 states; updated
         mode : int, one of ``DITHER_*``
         offset : float, 0.5 to round (half up), 0.0 to truncate
-        h : float64 [taps], NTF(z) = 1 - sum h[k] z^-(k+1)
+        h : float64 [max(taps, 1)], NTF(z) = 1 - sum h[k] z^-(k+1)
         fbs : float64 [nch*(2*taps+1)], LSB; updated. Per channel: the
             feedback for the next sample, then the last ``taps`` loop errors,
             newest first, twice over (a ring read without wrapping)
