@@ -139,3 +139,20 @@ def test_unwritable_cache_still_converts(tmp_path):
 def test_disabled_native_falls_back_to_numba():
     out = _child({"REQUANT_NO_NATIVE": "1"})
     assert out == ["numba", _reference_sum(), "True"]
+
+
+@pytest.mark.parametrize("taps", [16, 64])
+def test_native_equals_plain_twin_long_shapers(taps):
+    # the longest custom shapers (up to shaping.MAX_TAPS = 64) through the per-tap-count
+    # kernels, in blocks, against the twin run on the whole signal at once
+    rs = np.random.default_rng(taps)
+    h = tuple(0.5 * rs.uniform(-1, 1, taps) / taps)
+    x = rs.uniform(-0.9, 0.9, 2 * 2000).astype(np.float32)
+    a, b = _state(2, taps), _state(2, taps)
+    native = compiled_kernel(np.float32, np.int16, taps)
+    parts = [_run(native, x[i:i + 700], 2, 2, h, np.int16, a) for i in range(0, x.size, 700)]
+    ca = np.concatenate([p[0] for p in parts])
+    ea = np.concatenate([p[1] for p in parts])
+    cb, eb = _run(_kernel.quantize_block_plain, x, 2, 2, h, np.int16, b)
+    assert np.array_equal(ca, cb) and np.array_equal(ea, eb)
+    assert all(np.array_equal(a[k], b[k]) for k in a)
