@@ -30,7 +30,7 @@ from pathlib import Path
 
 import numpy as np
 
-__all__ = ["load", "status", "cache_dir", "TYPES"]
+__all__ = ["load", "pointer_code", "status", "cache_dir", "TYPES"]
 
 #: Argument type codes: (numba type name, ctypes type, numpy dtype or None for scalars).
 TYPES = {
@@ -199,7 +199,16 @@ def _numba_fallback(build):
         build(numba.njit(inline="always", error_model="numpy")))
 
 
-def load(name, build, source, argcodes):
+def pointer_code(dtype):
+    """The :data:`TYPES` code of a pointer to ``dtype`` (e.g. ``"f32*"``)."""
+    dt = np.dtype(dtype)
+    for code, (_, _, npdt) in TYPES.items():
+        if npdt is not None and np.dtype(npdt) == dt:
+            return code
+    raise TypeError(f"no compiled kernel takes {dt} arrays")
+
+
+def load(name, build, source_file, argcodes):
     """The compiled kernel ``name`` for one argument signature.
 
     Parameters
@@ -209,8 +218,9 @@ def load(name, build, source, argcodes):
     build : callable
         ``build(jit)`` returns the kernel's Python function, its helpers
         wrapped by ``jit`` (see :func:`requant._kernel.build`).
-    source : str
-        The kernel's source text; part of the cache key.
+    source_file : str or Path
+        The file that defines the kernel; its text is part of the cache key
+        (read only when ``name`` is not loaded yet in this process).
     argcodes : sequence of str
         One code from :data:`TYPES` per argument. Pointer codes take
         C-contiguous numpy arrays of that dtype.
@@ -228,7 +238,7 @@ def load(name, build, source, argcodes):
         try:
             if os.environ.get("REQUANT_NO_NATIVE"):
                 raise RuntimeError("native kernels disabled by REQUANT_NO_NATIVE")
-            fn = _native(name, build, source, list(argcodes))
+            fn = _native(name, build, Path(source_file).read_text(), list(argcodes))
             _status[name] = "native"
         except Exception:  # any failure: the same code through numba
             fn = _numba_fallback(build)

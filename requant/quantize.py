@@ -21,7 +21,6 @@ run from ``-2**(bits-1)`` to ``2**(bits-1) - 1``.
 
 import functools
 import secrets
-from pathlib import Path
 
 import numpy as np
 
@@ -60,23 +59,15 @@ DITHER_POWER_LSB2 = {"none": 1.0 / 12.0, "rpdf": 1.0 / 6.0, "tpdf": 0.25, "tpdf-
 E_BOUND_LSB = 2.0
 
 
-_CODES = {np.dtype(np.float32): "f32", np.dtype(np.float64): "f64",
-          np.dtype(np.int16): "i16", np.dtype(np.int32): "i32"}
-_kernel_text = None
-
-
 def compiled_kernel(x_dtype, code_dtype, taps):
     """The compiled block kernel for float32/float64 input, int16/int32 codes and
     ``taps`` feedback taps (one machine-code kernel per combination, built on
     first use and cached; see :mod:`requant._jit`)."""
-    global _kernel_text
-    if _kernel_text is None:
-        _kernel_text = Path(_kernel.__file__).read_text()
-    xc, cc = _CODES[np.dtype(x_dtype)], _CODES[np.dtype(code_dtype)]
-    args = [f"{xc}*", "i64", "i64", "u64*", "i64", "f64", "f64*", "i64", "f64*", "f64*", "f64",
-            "f64", "i64", "i64", "f64", "i64", f"{cc}*", "f32*", "i64", "f64*"]
-    return _jit.load(f"quantize-{xc}-{cc}-t{taps}", functools.partial(_kernel.build, taps=taps),
-                     _kernel_text, args)
+    xc, cc = _jit.pointer_code(x_dtype), _jit.pointer_code(code_dtype)
+    args = [xc, "i64", "i64", "u64*", "i64", "f64", "f64*", "i64", "f64*", "f64*", "f64",
+            "f64", "i64", "i64", "f64", "i64", cc, "f32*", "i64", "f64*"]
+    return _jit.load(f"quantize-{xc[:-1]}-{cc[:-1]}-t{taps}",
+                     functools.partial(_kernel.build, taps=taps), _kernel.__file__, args)
 
 
 def lsb(bits):

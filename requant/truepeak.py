@@ -578,31 +578,15 @@ dual_peak_kernel_py = build_dual()
 
 _PHASES_FLAT = np.ascontiguousarray(PHASES.reshape(-1))
 _PHASES32 = _PHASES_FLAT.astype(np.float32)
-_CODES = {np.dtype(np.float32): "f32", np.dtype(np.float64): "f64"}
-
-
-_dual_kernels = {}
-
-
 def _dual_kernel(x_dtype, e_dtype):
     """The compiled dual kernel for these storage dtypes (see :mod:`requant._jit`)."""
-    key = (np.dtype(x_dtype), np.dtype(e_dtype))
-    fn = _dual_kernels.get(key)
-    if fn is None:
-        fn = _dual_kernels[key] = _load_dual_kernel(*key)
-    return fn
-
-
-def _load_dual_kernel(x_dtype, e_dtype):
-    from pathlib import Path
-
     from . import _jit
 
-    xc, ec = _CODES[np.dtype(x_dtype)], _CODES[np.dtype(e_dtype)]
-    args = ["f64*", "f64*", f"{xc}*", f"{ec}*", "i64", "i64", "f64*", "f64", "i64", "i64",
+    xc, ec = _jit.pointer_code(x_dtype), _jit.pointer_code(e_dtype)
+    args = ["f64*", "f64*", xc, ec, "i64", "i64", "f64*", "f64", "i64", "i64",
             "f64*", "f64*", "f64*", "f64*", "f64*", "f64*", "f64*", "f64*", "f32*", "f32*",
             "f32*"]
-    return _jit.load(f"truepeak-dual-{xc}-{ec}", build_dual, Path(__file__).read_text(), args)
+    return _jit.load(f"truepeak-dual-{xc[:-1]}-{ec[:-1]}", build_dual, __file__, args)
 
 
 def _float_block(a):
