@@ -1525,7 +1525,10 @@ def _run_locked(src, dst, settings, *, prune, jobs, overwrite, reporter, executo
     for n in notes:
         reporter.message("note", n)
 
+    from .batch_index import IndexBuilder
+
     manifest = ManifestWriter(manifest_path)
+    index = IndexBuilder()
     recorded = []
     parent_label = _worker_label()
 
@@ -1537,6 +1540,7 @@ def _run_locked(src, dst, settings, *, prune, jobs, overwrite, reporter, executo
         ev.setdefault("worker", parent_label)
         manifest.append(ev)
         recorded.append(ev)
+        index.add(ev)
         totals["files_done"] += 1
         totals["bytes_done"] += size
         if ev["status"] in ("converted", "skipped") and ev.get("duration_s"):
@@ -1575,6 +1579,8 @@ def _run_locked(src, dst, settings, *, prune, jobs, overwrite, reporter, executo
                 if ev.get("status") == "interrupted":
                     raise KeyboardInterrupt
                 record(ev, task["size"])
+                # the workers are busy now: load the index templates while they convert
+                index.prepare()
         except KeyboardInterrupt:
             interrupted = True
             if threading.current_thread() is threading.main_thread():
@@ -1593,11 +1599,9 @@ def _run_locked(src, dst, settings, *, prune, jobs, overwrite, reporter, executo
                            run_seed=run_seed, seed_origin=seed_origin, sid=sid,
                            interrupted=interrupted, executor=executor if tasks else None,
                            notes=notes, profile_path=profile_path, run_id=run_id)
-        from .batch_index import write_index
-
         try:
             write_json_atomic(summary, os.path.join(dst, SUMMARY_NAME))
-            write_index(os.path.join(dst, INDEX_NAME), recorded, summary)
+            index.write(os.path.join(dst, INDEX_NAME), summary)
         except OSError as exc:
             raise OutputError(f"cannot write the summary in {dst!r} ({exc.strerror or exc}); the "
                               "manifest holds every file's result; free some space and run "

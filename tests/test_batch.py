@@ -629,6 +629,31 @@ def test_index_html(tmp_path):
     assert html.index("zz_bad.wav") < html.index("&lt;b&gt;bold")
 
 
+def test_index_rows_rendered_early_or_late_are_the_same(tree, tmp_path):
+    # The builder renders rows as results come back once prepared; rows added before
+    # prepare() wait. Either way the page is the same, problem files first.
+    from requant.batch_index import IndexBuilder, render_index
+
+    summary = run_batch(tree, tmp_path / "out", settings(), jobs=1)
+    events, _ = read_manifest(tmp_path / "out" / B.MANIFEST_NAME)
+    early, late = IndexBuilder(), IndexBuilder()
+    early.prepare()
+    for i, ev in enumerate(events):
+        early.add(ev)
+        late.add(ev)
+        if i == 3:
+            late.prepare()
+    strip = re.compile(r"Written \S+ ")  # the generation time
+    page = strip.sub("", render_index(events, summary))
+    assert strip.sub("", early.render(summary)) == page == strip.sub("", late.render(summary))
+    classes = re.findall(r'<tr class="(\w+)">', page)
+    assert len(classes) == len(events)
+    order = {"failed": 0, "warn": 1, "ok": 2, "other": 3}
+    assert [order[c] for c in classes] == sorted(order[c] for c in classes)
+    numbers = re.findall(r'<tr class="\w+">\n  <td class="n">(\d+)</td>', page)
+    assert numbers == [str(i) for i in range(1, len(events) + 1)]
+
+
 def test_unusual_names(tmp_path):
     src = tmp_path / "src"
     src.mkdir()
