@@ -943,17 +943,25 @@ def _run_chunk(fn, items):
     return out
 
 
-def chunk_items(items, *, per, chunk_bytes):
+def chunk_items(items, *, per, chunk_bytes, taper=None):
     """Yield lists of up to ``per`` items, or fewer once their ``size`` reaches ``chunk_bytes``.
 
     Executors send small files in chunks, so the per-task cost of a process
     pool or a cluster is paid once per chunk; a big file travels alone.
+    With ``taper`` (a number of chunks, e.g. 4 per worker), a chunk holds at
+    most ``ceil(remaining / taper)`` items, so the chunks shrink towards the
+    end of the list and the workers finish together (guided scheduling).
     """
-    chunk, size = [], 0
+    items = list(items) if taper else items
+    left = len(items) if taper else 0
+    chunk, size, cap = [], 0, per
     for it in items:
+        if not chunk and taper:
+            cap = max(1, min(per, -(-left // taper)))
         chunk.append(it)
         size += it.get("size", 0) if isinstance(it, dict) else 0
-        if len(chunk) >= per or size >= chunk_bytes:
+        if len(chunk) >= cap or size >= chunk_bytes:
+            left -= len(chunk)
             yield chunk
             chunk, size = [], 0
     if chunk:
@@ -1056,7 +1064,8 @@ class ProcessExecutor:
         """Group items into chunks: small files travel together, big ones alone."""
         items = list(items)
         per = max(1, min(self.max_chunk, len(items) // (self.workers * 8)))
-        return chunk_items(items, per=per, chunk_bytes=self.chunk_bytes)
+        return chunk_items(items, per=per, chunk_bytes=self.chunk_bytes,
+                           taper=self.workers * 4)
 
     @staticmethod
     def _pairs(chunk, fut):

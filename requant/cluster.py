@@ -442,8 +442,9 @@ class DaskExecutor:
         """Group items: small files travel together, big ones alone."""
         from .batch import chunk_items
 
-        per = max(1, min(self.max_chunk, len(items) // (max(1, self._threads) * 8)))
-        return chunk_items(items, per=per, chunk_bytes=self.chunk_bytes)
+        threads = max(1, self._threads)
+        per = max(1, min(self.max_chunk, len(items) // (threads * 8)))
+        return chunk_items(items, per=per, chunk_bytes=self.chunk_bytes, taper=threads * 4)
 
     def _context(self, items):
         """Shared-path check: write a token into DST, check every worker now."""

@@ -654,6 +654,24 @@ def test_index_rows_rendered_early_or_late_are_the_same(tree, tmp_path):
     assert numbers == [str(i) for i in range(1, len(events) + 1)]
 
 
+def test_chunks_taper_towards_the_end():
+    items = [{"size": 10, "i": i} for i in range(1000)]
+    chunks = list(B.chunk_items(items, per=16, chunk_bytes=1 << 20, taper=8))
+    assert [it for c in chunks for it in c] == items  # every item once, in order
+    sizes = [len(c) for c in chunks]
+    assert max(sizes) == 16 and sizes[-1] == 1
+    assert sizes == sorted(sizes, reverse=True)  # never growing again
+    # each chunk holds at most 1/taper of what was left when it was cut
+    left = len(items)
+    for n in sizes:
+        assert n <= max(1, -(-left // 8))
+        left -= n
+    # the byte limit still cuts first; without taper, chunks are uniform
+    big = [{"size": 6 << 20} for _ in range(5)]
+    assert [len(c) for c in B.chunk_items(big, per=16, chunk_bytes=8 << 20, taper=2)] == [2, 2, 1]
+    assert [len(c) for c in B.chunk_items(items[:40], per=16, chunk_bytes=1 << 20)] == [16, 16, 8]
+
+
 def test_unusual_names(tmp_path):
     src = tmp_path / "src"
     src.mkdir()
