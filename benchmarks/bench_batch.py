@@ -27,15 +27,8 @@ HERE = Path(__file__).resolve().parent
 ROOT = HERE.parent
 PY = sys.executable
 
-# Runs the CLI; registers the batch command if requant/cli.py does not yet.
-RUNNER = """
-import sys
-from requant import cli
-if not any(getattr(c, "name", None) == "batch" for c in cli.app.registered_commands):
-    from requant.cli_batch import register
-    register(cli.app)
-sys.exit(cli.main(sys.argv[1:]))
-"""
+# The same entry point as the installed ``requant`` script.
+RUNNER = "from requant.cli import console; console()"
 
 
 def make_clips(folder, n, *, rate=48000, seconds=1.0):

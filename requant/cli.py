@@ -332,4 +332,11 @@ if __name__ == "__main__":
 
 def console():
     """Entry point of the ``requant`` script."""
-    sys.exit(main())
+    rc = main()
+    # Everything is written and closed by now. Freezing the heap spares the interpreter's
+    # last garbage collections, which would visit every object of every loaded module
+    # (about 40 ms of each run's exit with numpy, soundfile and typer loaded).
+    import gc
+
+    gc.freeze()
+    sys.exit(rc)
