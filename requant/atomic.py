@@ -177,21 +177,39 @@ class CommitGroup:
             are removed (see :meth:`discard`).
         """
         pairs, self.pairs = self.pairs, []
-        try:
-            _fsync_temps(pairs)
-            while pairs:
-                tmp, final = pairs[0]
-                os.replace(tmp, final)
-                pairs.pop(0)
-        except BaseException:
-            self.pairs = pairs
-            self.discard()
-            raise
+        commit_pairs(pairs)
+
+    def detach(self):
+        """Take the waiting (temporary, final) pairs out of the group, to commit elsewhere
+        (:func:`commit_pairs`, e.g. in another process); the group then holds nothing."""
+        pairs, self.pairs = self.pairs, []
+        return pairs
 
     def discard(self):
         """Remove every waiting temporary file."""
         _remove_temps(self.pairs)
         self.pairs = []
+
+
+def commit_pairs(pairs):
+    """fsync every temporary file of (temporary, final) pairs, then rename each into place.
+
+    Raises
+    ------
+    OSError
+        From the first failing flush or rename; the temporary files not yet
+        renamed are removed (as they are after any other exception).
+    """
+    pairs = list(pairs)
+    try:
+        _fsync_temps(pairs)
+        while pairs:
+            tmp, final = pairs[0]
+            os.replace(tmp, final)
+            pairs.pop(0)
+    except BaseException:
+        _remove_temps(pairs)
+        raise
 
 
 def _fsync_temps(pairs):

@@ -36,8 +36,10 @@ Pieces (each replaceable on its own):
   So a run killed between writing an output and recording it leaves a
   claimed output that the next run simply converts again, to the same bytes.
 
-Crash safety, in short: every output is written to a temporary file and
-renamed (``convert_file``); stale ``*.requant-part`` temporaries of a killed
+Crash safety, in short: every output is written to a temporary file,
+flushed to disk and renamed, a chunk of files at a time (in the worker, or
+for the local pool in this process, so that workers never wait for the
+disk: :func:`_run_chunk`), before its result is recorded; stale ``*.requant-part`` temporaries of a killed
 run are removed at the next start; manifest lines are whole or ignored; a
 lost manifest line only costs one reconversion. A lock
 (``DST/.requant-batch.lock``, ``flock``) keeps two batches out of one
@@ -910,13 +912,17 @@ def _ping():
     return os.getpid()
 
 
-def _run_chunk(fn, items):
+def _run_chunk(fn, items, flush=True):
     """Run ``fn`` on each item in a worker; stop after an interrupt (SIGINT).
 
-    The chunk's outputs are flushed to disk together and then renamed into
-    place (:class:`~requant.atomic.CommitGroup`) before the results go back,
-    so the manifest never names an output that is not on disk. If that flush
-    fails, the files it held are reported failed.
+    The chunk's outputs wait as temporary files
+    (:class:`~requant.atomic.CommitGroup`). With ``flush`` they are flushed
+    to disk together and renamed into place here, before the results go back
+    (:func:`_commit_chunk`), and the results are returned. Without it, this
+    returns ``(results, pairs)`` and the caller commits the (temporary, final)
+    pairs: the local pool does that in the parent, so its workers never wait
+    for the disk. Either way the manifest never names an output that is not
+    on disk.
     """
     from .atomic import CommitGroup
 
@@ -929,18 +935,32 @@ def _run_chunk(fn, items):
             out.append(res)
             if isinstance(res, dict) and res.get("status") == "interrupted":
                 break
-        waiting = {os.path.abspath(final) for _, final in group.pairs}
-        try:
-            group.flush()
-        except OSError as exc:
-            from .convert import _wrap_write_error
+        pairs = group.detach()
+    if not flush:
+        return out, pairs
+    return _commit_chunk(items, out, pairs)
 
-            for item, res in zip(items, out):
-                path = item.get("output_path") if isinstance(item, dict) else None
-                if path and isinstance(res, dict) and os.path.abspath(path) in waiting:
-                    res.update(status="failed", error=str(_wrap_write_error(exc, path)),
-                               output_sha256=None)
-    return out
+
+def _commit_chunk(items, results, pairs):
+    """Flush a chunk's outputs to disk, then rename them into place; returns ``results``.
+
+    If that fails, the files it held are reported failed (and nothing
+    partial stays: :func:`~requant.atomic.commit_pairs`).
+    """
+    from .atomic import commit_pairs
+
+    waiting = {os.path.abspath(final) for _, final in pairs}
+    try:
+        commit_pairs(pairs)
+    except OSError as exc:
+        from .convert import _wrap_write_error
+
+        for item, res in zip(items, results):
+            path = item.get("output_path") if isinstance(item, dict) else None
+            if path and isinstance(res, dict) and os.path.abspath(path) in waiting:
+                res.update(status="failed", error=str(_wrap_write_error(exc, path)),
+                           output_sha256=None)
+    return results
 
 
 def chunk_items(items, *, per, chunk_bytes, taper=None):
@@ -1069,11 +1089,14 @@ class ProcessExecutor:
 
     @staticmethod
     def _pairs(chunk, fut):
-        """(item, result) pairs of a finished chunk; items never started are left out."""
+        """(item, result) pairs of a finished chunk, its outputs committed here (the workers
+        leave them temporary: :func:`_run_chunk` with ``flush=False``); items never started
+        are left out."""
         exc = fut.exception()
         if exc is not None:
             return [(item, exc) for item in chunk]
-        return list(zip(chunk, fut.result()))
+        results, pending = fut.result()
+        return list(zip(chunk, _commit_chunk(chunk, results, pending)))
 
     def _collect_broken(self):
         """After a worker death: results of finished chunks, and the items to retry."""
@@ -1096,7 +1119,7 @@ class ProcessExecutor:
 
         self._restart()
         for item in items:
-            fut = self._pool.submit(_run_chunk, fn, [item])
+            fut = self._pool.submit(_run_chunk, fn, [item], False)
             self._inflight = {fut: [item]}
             try:
                 fut.result()
@@ -1129,10 +1152,10 @@ class ProcessExecutor:
                     more = False
                     break
                 try:
-                    fut = self._pool.submit(_run_chunk, fn, chunk)
+                    fut = self._pool.submit(_run_chunk, fn, chunk, False)
                 except BrokenProcessPool:
                     self._restart()
-                    fut = self._pool.submit(_run_chunk, fn, chunk)
+                    fut = self._pool.submit(_run_chunk, fn, chunk, False)
                 self._inflight[fut] = chunk
             if not self._inflight:
                 return

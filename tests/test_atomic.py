@@ -87,24 +87,66 @@ def test_failed_flush_removes_what_was_not_renamed(tmp_path, monkeypatch):
     assert sorted(p.name for p in tmp_path.iterdir()) == ["a.txt"]
 
 
-def test_batch_chunk_reports_a_failed_flush(tmp_path, monkeypatch):
-    # a chunk whose outputs cannot be published says so per file; nothing partial stays
+def _clip_tasks(tmp_path, n=3):
     src, dst = tmp_path / "src", tmp_path / "dst"
     src.mkdir()
     dst.mkdir()
-    for i in range(3):
+    for i in range(n):
         sf.write(src / f"c{i}.wav", np.full((480, 1), 0.25 * i, np.float32), 48000,
                  subtype="FLOAT")
     tasks = [{"source": f"c{i}.wav", "output": f"c{i}.wav",
               "source_path": str(src / f"c{i}.wav"), "output_path": str(dst / f"c{i}.wav"),
               "seed": i, "settings": dict(batch.DEFAULT_SETTINGS), "overwrite": False,
-              "expect_sha256": None, "reason": "new", "note": None} for i in range(3)]
+              "expect_sha256": None, "reason": "new", "note": None, "size": 0}
+             for i in range(n)]
+    return dst, tasks
+
+
+def test_batch_chunk_reports_a_failed_flush(tmp_path, monkeypatch):
+    # a chunk whose outputs cannot be published says so per file; nothing partial stays
+    dst, tasks = _clip_tasks(tmp_path)
     monkeypatch.setattr(atomic.os, "replace",
                         lambda a, b: (_ for _ in ()).throw(OSError(errno.ENOSPC, "No space")))
     results = batch._run_chunk(batch.convert_task, tasks)
     assert [r["status"] for r in results] == ["failed"] * 3
     assert all("disk is full" in r["error"] for r in results)
     assert list(dst.iterdir()) == []
+
+
+def test_local_pool_commits_in_the_parent(tmp_path, monkeypatch):
+    # The workers leave their outputs temporary; this process flushes and renames them
+    # (so no worker waits for the disk), each fsync before any rename of its chunk.
+    dst, tasks = _clip_tasks(tmp_path, 4)
+    calls = _trace(monkeypatch)
+    ex = batch.ProcessExecutor(2, max_chunk=2)
+    ex.start()
+    try:
+        results = dict((item["source"], res) for item, res in ex.imap_unordered(
+            batch.convert_task, tasks))
+    finally:
+        ex.close()
+    assert sorted(results) == [t["source"] for t in tasks]
+    assert all(r["status"] == "converted" for r in results.values())
+    assert calls.count("fsync") >= 4 and calls.count("replace") == 4  # all here, in the parent
+    assert calls.index("replace") > calls.index("fsync")
+    assert sorted(p.name for p in dst.iterdir()) == [f"c{i}.wav" for i in range(4)]
+    for t in tasks:
+        assert batch.sha256_file(t["output_path"]) == results[t["source"]]["output_sha256"]
+
+
+def test_local_pool_reports_a_failed_commit(tmp_path, monkeypatch):
+    dst, tasks = _clip_tasks(tmp_path)
+    monkeypatch.setattr(atomic.os, "replace",
+                        lambda a, b: (_ for _ in ()).throw(OSError(errno.ENOSPC, "No space")))
+    ex = batch.ProcessExecutor(2)
+    ex.start()
+    try:
+        results = [res for _, res in ex.imap_unordered(batch.convert_task, tasks)]
+    finally:
+        ex.close()
+    assert [r["status"] for r in results] == ["failed"] * 3
+    assert all("disk is full" in r["error"] for r in results)
+    assert list(dst.iterdir()) == []  # no output, no temporary file
 
 
 def test_interrupt_inside_a_group_commit_never_removes_what_the_group_renames(tmp_path,
