@@ -331,7 +331,10 @@ def convert_file(in_path, out_path, *, bits=16, quantizer="round", dither="tpdf"
                 writer = SyncWriter(files, layouts, consumer=consumer)
                 blocks = read_blocks(f, block_frames, dtype)
             else:
-                writer = BlockWriter(files, layouts, consumer=consumer)
+                # the analysis thread runs in bursts (true peak); deeper queues keep the
+                # kernel from waiting on it: report vs none 1.49x -> 1.45x (median of 7)
+                writer = BlockWriter(files, layouts, depth=4 if consumer else 2,
+                                     consumer=consumer)
                 blocks = None
             done = 0
             try:
