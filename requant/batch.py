@@ -37,11 +37,12 @@ Pieces (each replaceable on its own):
   claimed output that the next run simply converts again, to the same bytes.
 
 Crash safety, in short: every output is written to a temporary file,
-flushed to disk and renamed, a chunk of files at a time (in the worker, or
-for the local pool in this process, so that workers never wait for the
-disk: :func:`_run_chunk`), before its result is recorded; stale ``*.requant-part`` temporaries of a killed
-run are removed at the next start; manifest lines are whole or ignored; a
-lost manifest line only costs one reconversion. A lock
+flushed to disk and renamed, a chunk of files at a time, before its result
+is recorded (in the worker; for the local pool in this process, so that the
+workers never wait for the disk: :func:`_run_chunk`); stale
+``*.requant-part`` temporaries of a killed run are removed at the next
+start; manifest lines are whole or ignored; a lost manifest line only costs
+one reconversion. A lock
 (``DST/.requant-batch.lock``, ``flock``) keeps two batches out of one
 destination.
 """
