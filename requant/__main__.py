@@ -1,3 +1,3 @@
-from .cli import console
+from requant.cli import console
 
 console()

@@ -60,8 +60,8 @@ import sys
 import threading
 import time
 
-from . import __version__
-from .errors import InputError, OutputError, RequantError, UsageError
+from requant import __version__
+from requant.errors import InputError, OutputError, RequantError, UsageError
 
 __all__ = [
     "AUDIO_EXTENSIONS",
@@ -124,7 +124,7 @@ OUTPUT_SETTINGS = ("bits", "quantizer", "dither", "shaping", "shaping_order", "s
                    "force_dither", "format")
 _LIST_SETTINGS = ("include", "exclude")
 
-# Source WAV chunks that are not metadata (see requant.riff.copy_metadata).
+# Source WAV chunks that are not metadata (see requant.audio_io.riff.copy_metadata).
 _NOT_METADATA = frozenset({"fmt ", "data", "fact", "ds64", "JUNK", "junk", "PAD ", "FLLR",
                            "PEAK", "levl"})
 _SEED_MAX = 2**63 - 1
@@ -185,9 +185,9 @@ def resolve_settings(options=None, profile=None):
 
 def validate_settings(s):
     """Check a full settings dict (see :func:`resolve_settings`); return it, normalized."""
-    from .convert import resolve_shaping_spec
-    from .profile import OUTPUT_CHOICES
-    from .quantize import check_settings
+    from requant.convert import resolve_shaping_spec
+    from requant.profile import OUTPUT_CHOICES
+    from requant.dsp.quantizer import check_settings
 
     s = dict(s)
     check_settings(s["bits"], s["quantizer"], s["dither"])
@@ -210,7 +210,7 @@ def validate_settings(s):
     shaping = str(s["shaping"]).strip()
     if shaping.lower().endswith(".json"):
         shaping = os.path.abspath(shaping)
-        from .shaping import load_coefficients
+        from requant.dsp.shaping import load_coefficients
 
         load_coefficients(shaping)  # readable, valid JSON; the rate is checked per file
     elif shaping == "hearing" and (s["shaping_order"] is not None
@@ -593,7 +593,7 @@ class _Finalize:
         self.source_is_wav = source_is_wav
 
     def __call__(self, tmp_out, out_format, report=None):
-        from . import riff
+        from requant.audio_io import riff  # noqa: F401
 
         meta = {"copied": [], "rewritten": [], "dropped": [], "tags": sorted(self.tags or {})}
         if not self.source_is_wav:
@@ -692,9 +692,9 @@ def _figures(report):
 
 
 def _convert_one(task):
-    from .atomic import pending_path
-    from .convert import convert_file
-    from .formats import format_for_path
+    from requant.audio_io.atomic import pending_path
+    from requant.convert import convert_file
+    from requant.audio_io.formats import format_for_path
 
     src, out = task["source_path"], task["output_path"]
     for path in (src, out):
@@ -903,8 +903,10 @@ def _warm_kernel():
     import numpy as np
     import soundfile  # noqa: F401
 
-    from . import convert, riff, wavwrite  # noqa: F401
-    from .quantize import Requantizer
+    from requant import convert  # noqa: F401
+    from requant.audio_io import wavwrite  # noqa: F401
+    from requant.audio_io import riff  # noqa: F401
+    from requant.dsp.quantizer import Requantizer
 
     Requantizer(1, bits=16, dither="tpdf", seed=0).process(np.zeros((16, 1), np.float32))
 
@@ -917,7 +919,7 @@ def _run_chunk(fn, items, flush=True):
     """Run ``fn`` on each item in a worker; stop after an interrupt (SIGINT).
 
     The chunk's outputs wait as temporary files
-    (:class:`~requant.atomic.CommitGroup`). With ``flush`` they are flushed
+    (:class:`~requant.audio_io.atomic.CommitGroup`). With ``flush`` they are flushed
     to disk together and renamed into place here, before the results go back
     (:func:`_commit_chunk`), and the results are returned. Without it, this
     returns ``(results, pairs)`` and the caller commits the (temporary, final)
@@ -925,7 +927,7 @@ def _run_chunk(fn, items, flush=True):
     for the disk. Either way the manifest never names an output that is not
     on disk.
     """
-    from .atomic import CommitGroup
+    from requant.audio_io.atomic import CommitGroup
 
     out = []
     with CommitGroup() as group:
@@ -946,15 +948,15 @@ def _commit_chunk(items, results, pairs):
     """Flush a chunk's outputs to disk, then rename them into place; returns ``results``.
 
     If that fails, the files it held are reported failed (and nothing
-    partial stays: :func:`~requant.atomic.commit_pairs`).
+    partial stays: :func:`~requant.audio_io.atomic.commit_pairs`).
     """
-    from .atomic import commit_pairs
+    from requant.audio_io.atomic import commit_pairs
 
     waiting = {os.path.abspath(final) for _, final in pairs}
     try:
         commit_pairs(pairs)
     except OSError as exc:
-        from .convert import _wrap_write_error
+        from requant.convert import _wrap_write_error
 
         for item, res in zip(items, results):
             path = item.get("output_path") if isinstance(item, dict) else None
@@ -1061,7 +1063,7 @@ class ProcessExecutor:
         if self.start_method == "fork":
             _warm_kernel()  # once, here: every forked worker inherits the loaded kernel
         if self.start_method == "forkserver":
-            ctx.set_forkserver_preload(["requant.batch", "requant.convert", "requant.riff"])
+            ctx.set_forkserver_preload(["requant.batch", "requant.convert", "requant.audio_io.riff"])
         self._pool = ProcessPoolExecutor(self.workers, mp_context=ctx, initializer=_worker_init)
         pings = [self._pool.submit(_ping) for _ in range(self.workers)]
         wait(pings, timeout=self.start_timeout_s)
@@ -1374,7 +1376,7 @@ def _plan(src, dst, settings, *, prune, run_seed, sid, overwrite, events):
 # --------------------------------------------------------------------------- running
 
 def _choose_run_seed(settings, dst):
-    from .quantize import new_seed
+    from requant.dsp.quantizer import new_seed
 
     if settings["seed"] is not None:
         return int(settings["seed"]), "given"
@@ -1414,7 +1416,7 @@ def _dry_run(src, dst, settings, *, prune, overwrite, reporter):
     sid = settings_id(settings, run_seed if run_seed is not None else 0)
     tasks, parent_events, info = _plan(src, dst, settings, prune=prune, run_seed=run_seed or 0,
                                        sid=sid, overwrite=overwrite, events=events)
-    from .convert import open_input
+    from requant.convert import open_input
 
     items = []
     for ev in parent_events:
@@ -1511,7 +1513,7 @@ def run_batch(src, dst, settings=None, *, jobs=None, overwrite=False, dry_run=Fa
 
 def _run_locked(src, dst, settings, *, prune, jobs, overwrite, reporter, executor, profile_path,
                 t_start, started):
-    from .convert import write_json_atomic
+    from requant.convert import write_json_atomic
 
     stale = _remove_stale_temps(dst)
     manifest_path = os.path.join(dst, MANIFEST_NAME)
@@ -1558,7 +1560,7 @@ def _run_locked(src, dst, settings, *, prune, jobs, overwrite, reporter, executo
     for n in notes:
         reporter.message("note", n)
 
-    from .batch_index import IndexBuilder
+    from requant.batch_index import IndexBuilder
 
     manifest = ManifestWriter(manifest_path)
     index = IndexBuilder()

@@ -174,7 +174,7 @@ class IndexBuilder:
 
     def write(self, path, summary):
         """Render the page and write it atomically (temporary file, then rename)."""
-        from .atomic import AtomicOutputs
+        from requant.audio_io.atomic import AtomicOutputs
 
         html = self.render(summary)
         with AtomicOutputs() as outs:

@@ -47,7 +47,7 @@ def friendly(fn):
 
     @functools.wraps(fn)
     def wrapper(*args, **kwargs):
-        from .errors import RequantError
+        from requant.errors import RequantError
 
         try:
             return fn(*args, **kwargs)
@@ -74,7 +74,7 @@ def _root(
 ):
     _DEBUG["on"] = debug
     if version:
-        from . import __version__
+        from requant import __version__
 
         print(f"requant {__version__}")
         raise typer.Exit()
@@ -125,7 +125,7 @@ def convert(
     quiet: bool = typer.Option(False, "--quiet", "-q", help="Print only warnings and errors."),
 ):
     """Requantize one file; optionally write its error signal and a report."""
-    from .convert import convert_file
+    from requant.convert import convert_file
 
     progress = _progress_printer(quiet)
     try:
@@ -199,9 +199,9 @@ def inspect(
     overwrite: bool = typer.Option(False, "--overwrite", help="Replace an existing JSON file."),
 ):
     """Say what a file really holds: bits in use, peaks, DC, clipping, silence, noise floor."""
-    from .convert import open_input, write_json_atomic
-    from .inspect import format_inspection, inspect_file
-    from .atomic import check_outputs
+    from requant.convert import open_input, write_json_atomic
+    from requant.inspection import format_inspection, inspect_file
+    from requant.audio_io.atomic import check_outputs
 
     if json_path is not None:
         check_outputs([file], [json_path], overwrite=overwrite)
@@ -234,14 +234,14 @@ def shaper_show(
     overwrite: bool = typer.Option(False, "--overwrite", help="Replace existing exports."),
 ):
     """Describe a shaping filter: coefficients, noise gains, Gerzon-Craven figures."""
-    from . import shaping as sh
-    from .atomic import check_outputs
-    from .convert import resolve_shaping_spec
+    from requant.dsp import shaping as sh
+    from requant.audio_io.atomic import check_outputs
+    from requant.convert import resolve_shaping_spec
 
     check_outputs([], [json_out, png_out], overwrite=overwrite)
     name, h = resolve_shaping_spec(shaping, rate, order=order, limit_db=limit)
     if name == "none" or len(h) == 0:
-        from .errors import UsageError
+        from requant.errors import UsageError
 
         raise UsageError("--shaping none has no filter to show; give hearing, first-order, "
                          "a JSON file or a comma list")
@@ -282,14 +282,14 @@ def demo(
     seed: int = typer.Option(2026, help="Dither seed for the demo."),
 ):
     """Run the main job on the bundled demo audio and print measured against predicted."""
-    from .demo import run_demo
+    from requant.demo import run_demo
 
     print(run_demo(out, source=source, seed=seed))
     print(CAUTION, file=sys.stderr)
 
 
-from .cli_batch import register as _register_batch  # noqa: E402  (imports typer only)
-from .cli_listen import register as _register_listen  # noqa: E402
+from requant.cli_batch import register as _register_batch  # noqa: E402  (imports typer only)
+from requant.cli_listen import register as _register_listen  # noqa: E402
 
 _register_batch(app)
 _register_listen(app)

@@ -203,7 +203,7 @@ def _print_dry_run(result, quiet):
 
 def register(app):
     """Add the ``batch`` command to a typer app (requant's own, in requant/cli.py)."""
-    from .cli import CAUTION, Dither, Quantizer, _err, friendly
+    from requant.cli import CAUTION, Dither, Quantizer, _err, friendly
 
     @app.command(name="batch")
     @friendly
@@ -274,11 +274,11 @@ def register(app):
         failed, 1 when some file failed, 2 for bad options, 130 when
         interrupted (rerun the same command to resume).
         """
-        from .batch import resolve_settings, run_batch
+        from requant.batch import resolve_settings, run_batch
 
         prof = None
         if profile is not None:
-            from .profile import load_profile
+            from requant.profile import load_profile
 
             prof = load_profile(profile)
         options = {
@@ -292,8 +292,8 @@ def register(app):
         settings = resolve_settings(options, prof)
         executor = None
         if cluster is not None:
-            from .cluster import DaskExecutor
-            from .errors import UsageError
+            from requant.cluster import DaskExecutor
+            from requant.errors import UsageError
 
             if jobs is not None:
                 raise UsageError("--jobs sets local worker processes and does not combine with "

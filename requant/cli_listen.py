@@ -39,7 +39,7 @@ def register(app):
     app : typer.Typer
         The application of :mod:`requant.cli`.
     """
-    from .cli import CAUTION, friendly
+    from requant.cli import CAUTION, friendly
 
     if "listen" in _command_names(app):
         return
@@ -75,7 +75,7 @@ def register(app):
     ):
         """Render one excerpt with every method, with error signals made safely audible,
         and a page (OUTDIR/index.html) for open and blind listening."""
-        from .listen import make_listening_kit
+        from requant.listen import make_listening_kit
 
         kit = make_listening_kit(src, outdir, bits=bits, methods=method or DEFAULT_METHODS,
                                  start_s=start, duration_s=duration, quiet_passage=quiet_passage,
@@ -116,6 +116,6 @@ def register(app):
         results: Path = typer.Argument(..., help="Results JSON saved by the listening page."),
     ):
         """Print right answers per comparison and the chance of that score by guessing."""
-        from .score import format_scores, load_results, score_results
+        from requant.score import format_scores, load_results, score_results
 
         print(format_scores(score_results(load_results(results))))

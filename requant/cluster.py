@@ -58,7 +58,7 @@ import socket
 import threading
 import time
 
-from .errors import RequantError, UsageError
+from requant.errors import RequantError, UsageError
 
 __all__ = ["DaskExecutor", "parse_address", "DEFAULT_PORT", "INSTALL_HINT"]
 
@@ -143,7 +143,7 @@ def _environment():
     import numpy
     import soundfile
 
-    from . import __version__
+    from requant import __version__
 
     return {"requant": __version__, "numpy": numpy.__version__, "numba": numba.__version__,
             "libsndfile": soundfile.__libsndfile_version__}
@@ -151,7 +151,7 @@ def _environment():
 
 def _worker_hello():
     """Run on each worker at start: load the compiled kernel, return the environment."""
-    from .batch import _warm_kernel
+    from requant.batch import _warm_kernel
 
     _warm_kernel()
     return _environment()
@@ -440,7 +440,7 @@ class DaskExecutor:
 
     def _chunks(self, items):
         """Group items: small files travel together, big ones alone."""
-        from .batch import chunk_items
+        from requant.batch import chunk_items
 
         threads = max(1, self._threads)
         per = max(1, min(self.max_chunk, len(items) // (threads * 8)))
@@ -483,7 +483,7 @@ class DaskExecutor:
         return fut
 
     def _lost(self):
-        from .batch import WorkerLost
+        from requant.batch import WorkerLost
 
         return WorkerLost("the dask workers running this file died repeatedly (crashed, were "
                           "killed, or ran out of memory); check the file, or convert it alone "

@@ -2,7 +2,7 @@
 signal and report.
 
 Memory stays flat: one block buffer is reused for the whole file. Outputs
-are written to temporary files and renamed at the end (:mod:`requant.atomic`),
+are written to temporary files and renamed at the end (:mod:`requant.audio_io.atomic`),
 so a failed or interrupted run leaves nothing partial behind.
 """
 
@@ -15,15 +15,15 @@ import sys
 
 import numpy as np
 
-from . import __version__
-from .atomic import AtomicOutputs, check_outputs
-from .blockio import BlockReader, BlockWriter, SyncWriter, read_blocks
-from .errors import InputError, OutputError, RequantError, UsageError
-from .formats import (RF64_THRESHOLD, container_bits_of, format_for_path, read_dtype_for,
+from requant import __version__
+from requant.audio_io.atomic import AtomicOutputs, check_outputs
+from requant.audio_io.blocks import BlockReader, BlockWriter, SyncWriter, read_blocks
+from requant.errors import InputError, OutputError, RequantError, UsageError
+from requant.audio_io.formats import (RF64_THRESHOLD, container_bits_of, format_for_path, read_dtype_for,
                       subtype_for)
-from .measure import measured_figures, predicted_figures
-from .quantize import Requantizer, check_settings, new_seed, predicted_error_power_lsb2
-from .wavwrite import RAW_SUBTYPES, WavWriter
+from requant.dsp.figures import measured_figures, predicted_figures
+from requant.dsp.quantizer import Requantizer, check_settings, new_seed, predicted_error_power_lsb2
+from requant.audio_io.wavwrite import RAW_SUBTYPES, WavWriter
 
 __all__ = ["convert_file", "open_input", "resolve_shaping_spec", "DEFAULT_BLOCK_FRAMES",
            "write_json_atomic"]
@@ -65,11 +65,11 @@ def resolve_shaping_spec(spec, sample_rate, *, order=None, limit_db=None):
 
     ``spec`` is 'none', 'first-order', 'hearing', a JSON file of coefficients
     or a comma list. Everything but 'none' is handled by
-    :mod:`requant.shaping` (imported only when needed).
+    :mod:`requant.dsp.shaping` (imported only when needed).
     """
     if spec is None or spec == "none":
         return "none", np.zeros(0)
-    from . import shaping
+    from requant.dsp import shaping
 
     kwargs = {}
     if order is not None:
@@ -226,10 +226,10 @@ def convert_file(in_path, out_path, *, bits=16, quantizer="round", dither="tpdf"
         and leaves nothing behind.
     analyze : bool, optional
         Measure weighted noise, error spectrum, signal-correlated error,
-        the quietest passage and true peak (:mod:`requant.analysis`).
+        the quietest passage and true peak (:mod:`requant.dsp.analysis`).
         Default: when a report is written.
     keep_analyzer : bool, default False
-        Put the :class:`~requant.analysis.ErrorAnalyzer` (with the arrays the
+        Put the :class:`~requant.dsp.analysis.ErrorAnalyzer` (with the arrays the
         pictures need) in ``report['_analyzer']``; callers remove it before
         writing JSON.
 
@@ -265,7 +265,7 @@ def convert_file(in_path, out_path, *, bits=16, quantizer="round", dither="tpdf"
             raise UsageError(f"{report_path!r}: name the report .json, .html or .md")
     extra = []
     if report_path is not None and report_path.lower().endswith(".md"):
-        from .report_render import picture_paths
+        from requant.report.render import picture_paths
 
         extra = list(picture_paths(report_path).values())
     check_outputs([in_path], [out_path, error_path, report_path, *extra], overwrite=overwrite)
@@ -314,7 +314,7 @@ def convert_file(in_path, out_path, *, bits=16, quantizer="round", dither="tpdf"
             analyzer = consumer = None
             layouts = [((block_frames, nch), rq.code_dtype), ((block_frames, nch), np.float32)]
             if analyze:
-                from .analysis import ErrorAnalyzer
+                from requant.dsp.analysis import ErrorAnalyzer
 
                 analyzer = ErrorAnalyzer(nch, rate, bits=bits, quantizer=quantizer,
                                          dither=eff_dither, coeffs=eff_coeffs,
@@ -395,7 +395,7 @@ def convert_file(in_path, out_path, *, bits=16, quantizer="round", dither="tpdf"
             if finalize is not None:
                 report["output"]["metadata"] = finalize(tmp_out, out_fmt, report)
             if report_path is not None:
-                from .report import write_report
+                from requant.report.write import write_report
 
                 write_report(report, analyzer, report_path, outs)
             try:
@@ -410,7 +410,7 @@ def convert_file(in_path, out_path, *, bits=16, quantizer="round", dither="tpdf"
 
 def _merge_analysis(report, res):
     """Fold the analyzer's figures into the report's sections."""
-    from .analysis import correlated_summary
+    from requant.dsp.analysis import correlated_summary
 
     report["measured"].update(res["measured"])
     report["predicted"].update(res["predicted"])

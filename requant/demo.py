@@ -200,8 +200,8 @@ def run_demo(out, *, source=None, seed=2026):
     str
         A table of measured against predicted figures.
     """
-    from .convert import convert_file
-    from .errors import InputError
+    from requant.convert import convert_file
+    from requant.errors import InputError
 
     src = Path(source) if source is not None else default_demo_dir()
     missing = [name for name in DEMO_FILES if not (src / name).is_file()]
@@ -212,8 +212,8 @@ def run_demo(out, *, source=None, seed=2026):
         )
     out = Path(out)
     out.mkdir(parents=True, exist_ok=True)
-    from .atomic import AtomicOutputs
-    from .report import write_report
+    from requant.audio_io.atomic import AtomicOutputs
+    from requant.report.write import write_report
 
     rows = []
     for i, (name, out_name, settings) in enumerate(_JOBS):

@@ -25,7 +25,7 @@ What :func:`make_listening_kit` writes into ``OUTDIR``
     (:func:`quiet_gain_db`) *after* requantization and hard-limited at the
     same cap. 32-bit float.
 ``figures.json``
-    Settings, each method's figures (from :func:`requant.analysis.analyze_arrays`),
+    Settings, each method's figures (from :func:`requant.dsp.analysis.analyze_arrays`),
     the level-match check, gains, cap and limiter counts.
 ``index.html``
     One page, no server, no network: open it from the file system.
@@ -45,7 +45,7 @@ from urllib.parse import quote
 
 import numpy as np
 
-from .errors import InputError, OutputError, UsageError
+from requant.errors import InputError, OutputError, UsageError
 
 __all__ = [
     "Method",
@@ -521,7 +521,7 @@ def render_method(x, sample_rate, *, bits, method, coeffs=(), seed):
     err : ndarray, float64
         ``y - x``.
     """
-    from .quantize import Requantizer
+    from requant.dsp.quantizer import Requantizer
 
     cbits = _container_bits(bits)
     rq = Requantizer(x.shape[1], bits=bits, quantizer=method.quantizer, dither=method.dither,
@@ -581,7 +581,7 @@ def _verify(path, expected):
 
 
 def _analyze(x, err, rate, *, bits, method, coeffs):
-    from .analysis import analyze_arrays
+    from requant.dsp.analysis import analyze_arrays
 
     res = analyze_arrays(x, err, rate, bits=bits, quantizer=method.quantizer,
                          dither=method.dither, coeffs=coeffs)
@@ -656,7 +656,7 @@ def _quiet_setup(quiet_x, rate, *, bits, error_gain_db):
 
 def _render_one(m, *, key, names, tmp, x, orig, rate, bits, coeffs, seed, env, gain, quiet):
     """Render, write and verify one method's files; return its figures row."""
-    from .quantize import predicted_error_power_lsb2
+    from requant.dsp.quantizer import predicted_error_power_lsb2
 
     predicted = predicted_error_power_lsb2(m.quantizer, m.dither, coeffs)
     codes, y, err = render_method(x, rate, bits=bits, method=m, coeffs=coeffs, seed=seed)
@@ -748,12 +748,12 @@ def make_listening_kit(src, outdir, *, bits=16, methods=("truncate", "tpdf", "tp
     Methods are rendered one after another, each written, read back and
     checked before the next, so memory holds a few copies of the excerpt
     whatever the number of methods. All files appear together at the end
-    (:class:`requant.atomic.AtomicOutputs`), or none on failure.
+    (:class:`requant.audio_io.atomic.AtomicOutputs`), or none on failure.
     """
-    from . import __version__
-    from .atomic import AtomicOutputs, check_outputs
-    from .convert import open_input, resolve_shaping_spec
-    from .quantize import check_settings, new_seed
+    from requant import __version__
+    from requant.audio_io.atomic import AtomicOutputs, check_outputs
+    from requant.convert import open_input, resolve_shaping_spec
+    from requant.dsp.quantizer import check_settings, new_seed
 
     check_settings(bits, "round", "none")
     parsed = parse_methods(list(methods))

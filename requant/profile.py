@@ -34,7 +34,7 @@ import math
 import os
 import tomllib
 
-from .errors import UsageError
+from requant.errors import UsageError
 
 __all__ = ["PROFILE_KEYS", "OUTPUT_CHOICES", "ProfileError", "load_profile", "parse_profile"]
 
@@ -124,7 +124,7 @@ def _shaping(where, value, base_dir):
     if not isinstance(value, str) or not value.strip():
         raise ProfileError(f"{where}: shaping must be {PROFILE_KEYS['shaping']}, not "
                            f"{_kind(value)}")
-    from .shaping import SHAPING_NAMES, parse_coefficients
+    from requant.dsp.shaping import SHAPING_NAMES, parse_coefficients
 
     text = value.strip()
     if text.lower().endswith(".json"):
@@ -176,7 +176,7 @@ def parse_profile(text, *, source="profile", base_dir=None):
     >>> parse_profile('bits = 12\\ndither = "tpdf-hp"')
     {'bits': 12, 'dither': 'tpdf-hp'}
     """
-    from .quantize import DITHERS, QUANTIZERS
+    from requant.dsp.quantizer import DITHERS, QUANTIZERS
 
     where = source
     try:

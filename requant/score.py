@@ -16,7 +16,7 @@ import json
 import math
 import os
 
-from .errors import InputError
+from requant.errors import InputError
 
 __all__ = ["guessing_p_value", "load_results", "score_results", "format_scores",
            "RESULTS_FORMAT"]

@@ -16,10 +16,10 @@ import numpy as np
 import pytest
 import soundfile as sf
 
-from requant.analysis import analyze_arrays, error_pdf
+from requant.dsp.analysis import analyze_arrays, error_pdf
 from requant.convert import convert_file
-from requant.quantize import requantize
-from requant.shaping import design_hearing, ntf_response
+from requant.dsp.quantizer import requantize
+from requant.dsp.shaping import design_hearing, ntf_response
 
 
 def busy(tmp_path, fs=48000, seconds=6.0, channels=2, seed=0, name="busy.wav"):
@@ -53,7 +53,7 @@ def test_unweighted_noise_from_psd_equals_error_power(tmp_path):
     rng = np.random.default_rng(1)
     x = rng.uniform(-0.5, 0.5, (fs * 4, 1))
     y = requantize(x, bits=12, dither="tpdf", seed=2)
-    from requant.analysis import ErrorAnalyzer
+    from requant.dsp.analysis import ErrorAnalyzer
 
     an = ErrorAnalyzer(1, fs, bits=12, quantizer="round", dither="tpdf", total_frames=x.shape[0],
                        true_peak=False)
@@ -71,7 +71,7 @@ def test_shaped_spectrum_matches_ntf_in_octave_bands(fs):
     x = rng.uniform(-0.5, 0.5, (fs * 8, 1))
     h = design_hearing(fs)
     y = requantize(x, bits=16, dither="tpdf", coeffs=h, seed=5)
-    from requant.analysis import ErrorAnalyzer
+    from requant.dsp.analysis import ErrorAnalyzer
 
     an = ErrorAnalyzer(1, fs, bits=16, quantizer="round", dither="tpdf", coeffs=h,
                        total_frames=x.shape[0], true_peak=False)
@@ -174,7 +174,7 @@ def test_rpdf_noise_modulation_is_reported():
                                                ("round", "tpdf"), ("truncate", "tpdf")])
 def test_error_pdf_integrates_to_one_with_predicted_moments(quantizer, dither):
     # uniform ⊛ dither pdf [LWV92]: mean 0 (-1/2 truncated), mean square as predicted
-    from requant.quantize import predicted_error_power_lsb2
+    from requant.dsp.quantizer import predicted_error_power_lsb2
 
     x = np.linspace(-4, 4, 80001)
     p = error_pdf(x, quantizer=quantizer, dither=dither)
@@ -231,7 +231,7 @@ def test_running_median_equals_scipy_median_filter(n, half):
     # reference library: scipy.ndimage.median_filter with mode="nearest"
     from scipy.ndimage import median_filter
 
-    from requant.analysis import _running_median
+    from requant.dsp.analysis import _running_median
 
     v = np.random.default_rng(n).exponential(1.0, n)
     assert np.array_equal(_running_median(v, half),

@@ -1,4 +1,4 @@
-"""requant.atomic: outputs appear whole or not at all.
+"""requant.audio_io.atomic: outputs appear whole or not at all.
 
 The rule checked here is the one POSIX gives for crash-safe replacement
 (write a temporary file, fsync it, then rename(2) it over the final name:
@@ -14,8 +14,9 @@ import numpy as np
 import pytest
 import soundfile as sf
 
-from requant import atomic, batch
-from requant.atomic import AtomicOutputs, CommitGroup, pending_path
+from requant import batch
+from requant.audio_io import atomic
+from requant.audio_io.atomic import AtomicOutputs, CommitGroup, pending_path
 
 
 def _write(outs, final, text):

@@ -1,4 +1,4 @@
-"""Tests for requant.inspect: what a file really holds.
+"""Tests for requant.inspection: what a file really holds.
 
 Fixture files are written with soundfile from integer arrays (int16, or int32
 left-justified), so every sample value is known exactly (python-soundfile docs,
@@ -12,7 +12,7 @@ import pytest
 import soundfile as sf
 
 from requant.errors import InputError, UsageError
-from requant.inspect import format_inspection, inspect_file
+from requant.inspection import format_inspection, inspect_file
 
 RATE = 48000
 

@@ -1,4 +1,4 @@
-"""The compiled-kernel loader (requant._jit): machine code cached by us and
+"""The compiled-kernel loader (requant.dsp.native): machine code cached by us and
 loaded with llvmlite must give the same bits as the plain-Python twin and as
 numba's own compilation of the same source, and a broken or missing cache must
 never break a conversion.
@@ -15,8 +15,9 @@ import sys
 import numpy as np
 import pytest
 
-from requant import _jit, _kernel
-from requant.quantize import Requantizer, compiled_kernel
+from requant.dsp import native
+from requant.dsp import kernel as _kernel
+from requant.dsp.quantizer import Requantizer, compiled_kernel
 
 SHAPER9 = (2.412, -3.370, 3.937, -4.174, 3.353, -2.205, 1.281, -0.569, 0.0847)
 
@@ -65,11 +66,11 @@ def test_native_equals_plain_twin(xd, cd, nch, mode, h):
 def test_native_path_is_in_use():
     # the fast start-up this module exists for: no numba import on the convert path
     compiled_kernel(np.float32, np.int16, 0)
-    assert _jit.status()["quantize-f32-i16-t0"] == "native"
+    assert native.status()["quantize-f32-i16-t0"] == "native"
 
 
 def test_numba_fallback_gives_the_same_bits():
-    fallback = _jit._numba_fallback(_kernel.build)
+    fallback = native._numba_fallback(_kernel.build)
     x = np.random.default_rng(1).uniform(-1, 1, 2 * 3000).astype(np.float32)
     a, b = _state(2, 9), _state(2, 9)
     ca, ea = _run(compiled_kernel(np.float32, np.int16, 9), x, 2, 2, SHAPER9, np.int16, a)
@@ -89,11 +90,11 @@ def test_native_rejects_wrong_buffers():
 
 _CHILD = r"""
 import sys, numpy as np
-from requant import _jit
-from requant.quantize import Requantizer
+from requant.dsp import native
+from requant.dsp.quantizer import Requantizer
 rq = Requantizer(2, bits=16, dither="tpdf", seed=5)
 codes, err = rq.process(np.linspace(-0.5, 0.5, 2000, dtype=np.float32).reshape(-1, 2))
-print(_jit.status()["quantize-f32-i16-t0"], int(codes.astype(np.int64).sum()), "numba" in sys.modules)
+print(native.status()["quantize-f32-i16-t0"], int(codes.astype(np.int64).sum()), "numba" in sys.modules)
 """
 
 

@@ -140,7 +140,7 @@ def test_renders_exist_for_every_method(kit16):
 
 
 def test_program_renders_hold_exactly_the_requantized_codes(kit16):
-    from requant.quantize import requantize
+    from requant.dsp.quantizer import requantize
 
     _, out, kit = kit16
     x = read(out / "original.wav")

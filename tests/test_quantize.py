@@ -12,9 +12,9 @@ Sources (see ../shared/REFERENCES.md):
 import numpy as np
 import pytest
 
-from requant import _kernel
+from requant.dsp import kernel as _kernel
 from requant.errors import UsageError
-from requant.quantize import Requantizer, predicted_error_power_lsb2, requantize
+from requant.dsp.quantizer import Requantizer, predicted_error_power_lsb2, requantize
 
 N_STAT = 1_000_000
 

@@ -22,8 +22,8 @@ import numpy as np
 import pytest
 import soundfile as sf
 
-from requant import report_render
-from requant.atomic import AtomicOutputs
+from requant.report import render as report_render
+from requant.audio_io.atomic import AtomicOutputs
 from requant.convert import convert_file
 
 RATE = 48000

@@ -1,4 +1,4 @@
-"""Tests for requant.riff: WAV chunk reading and metadata copying.
+"""Tests for requant.audio_io.riff: WAV chunk reading and metadata copying.
 
 Fixtures are built byte by byte from the layouts of their specifications
 (named beside each builder). The oracles are outside the module under test:
@@ -21,9 +21,9 @@ import soundfile as sf
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from requant import riff
+from requant.audio_io import riff
 from requant.errors import InputError, OutputError, UsageError
-from requant.riff import (
+from requant.audio_io.riff import (
     BEXT_FIXED_BYTES,
     Chunk,
     ChunkError,

@@ -1,4 +1,4 @@
-"""Tests for requant.shaping: NTF design, figures of merit, coefficient I/O.
+"""Tests for requant.dsp.shaping: NTF design, figures of merit, coefficient I/O.
 
 Check values come from /work/shared/REFERENCES.md section 3 (noise shaping).
 """
@@ -11,9 +11,9 @@ import numpy as np
 import pytest
 from scipy import linalg, signal
 
-from requant import shaping
+from requant.dsp import shaping
 from requant.errors import InputError, OutputError, UsageError
-from requant.shaping import (
+from requant.dsp.shaping import (
     DEFAULT_MAX_GAIN_DB,
     MAX_TAPS,
     design_from_weight,

@@ -1,13 +1,13 @@
-"""Tests for requant.truepeak (ITU-R BS.1770-4 Annex 2 true-peak meter)."""
+"""Tests for requant.dsp.truepeak (ITU-R BS.1770-4 Annex 2 true-peak meter)."""
 
 
 import numpy as np
 import pytest
 import scipy.signal
 
-from requant import truepeak
+from requant.dsp import truepeak
 from requant.errors import InputError, UsageError
-from requant.truepeak import (
+from requant.dsp.truepeak import (
     PHASES,
     TruePeakMeter,
     oversample,
@@ -301,7 +301,7 @@ def test_bad_blocks():
 
 # --- DualTruePeakMeter: the skipping meter must equal two plain meters exactly ---------------
 
-from requant.truepeak import DualTruePeakMeter, dual_peak_kernel_py  # noqa: E402
+from requant.dsp.truepeak import DualTruePeakMeter, dual_peak_kernel_py  # noqa: E402
 
 
 @pytest.mark.parametrize("kind", ["noise", "bursts", "silence-then-tone"])

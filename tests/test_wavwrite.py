@@ -1,4 +1,4 @@
-"""requant.wavwrite against libsndfile (python-soundfile), the reference
+"""requant.audio_io.wavwrite against libsndfile (python-soundfile), the reference
 reader and writer of WAV files.
 
 * The header bytes must equal what libsndfile writes for the same file, apart
@@ -16,8 +16,8 @@ import numpy as np
 import pytest
 import soundfile as sf
 
-from requant.riff import read_chunks
-from requant.wavwrite import RAW_SUBTYPES, WavWriter
+from requant.audio_io.riff import read_chunks
+from requant.audio_io.wavwrite import RAW_SUBTYPES, WavWriter
 
 
 def _codes(subtype, frames, ch, rng):
@@ -77,7 +77,7 @@ def test_eight_bit_is_unsigned_with_pad_byte(tmp_path):
 
 
 def test_background_sync_writes_the_same_bytes(tmp_path, monkeypatch):
-    import requant.wavwrite as ww
+    import requant.audio_io.wavwrite as ww
 
     monkeypatch.setattr(ww, "SYNC_BYTES", 1000)  # flush after nearly every block
     rng = np.random.default_rng(4)

@@ -1,4 +1,4 @@
-"""Tests for requant.weighting against standards' tables and reference libraries.
+"""Tests for requant.dsp.weighting against standards' tables and reference libraries.
 
 Check values come from /work/shared/REFERENCES.md section 4, which quotes
 IEC 61672-1:2013, ITU-R BS.468-4 Table 1, ISO 226:2003 Table 1 and
@@ -13,7 +13,7 @@ import pytest
 from scipy import integrate, optimize, signal
 
 from requant.errors import UsageError
-from requant.weighting import (
+from requant.dsp.weighting import (
     THRESHOLD_CEILING_DB_SPL,
     UPPER_LIMIT_OF_HEARING_HZ,
     WEIGHTINGS,

@@ -20,7 +20,7 @@ import os
 import secrets
 import threading
 
-from .errors import OutputError, UsageError
+from requant.errors import OutputError, UsageError
 
 __all__ = ["check_outputs", "AtomicOutputs", "CommitGroup", "pending_path", "same_file"]
 

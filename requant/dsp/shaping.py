@@ -23,7 +23,7 @@ Levinson-Durbin recursion, whose reflection coefficients all lie inside
 prediction: a tutorial review", Proc. IEEE 63(4), 1975).
 
 The design weight ``W_d²`` is the hearing-threshold weight of
-:func:`requant.weighting.weighting_power` (Terhardt 1979, 1 at 1 kHz) with
+:func:`requant.dsp.weighting.weighting_power` (Terhardt 1979, 1 at 1 kHz) with
 two regularisers:
 
 * a floor :data:`DESIGN_FLOOR_DB` (20 dB) below the 1 kHz weight, up to the
@@ -32,7 +32,7 @@ two regularisers:
   the model, or any later gain or processing, would disagree. The floor
   stops the design trading audible-band noise for a steep rise at the edge
   of hearing, and it stops noise being piled up below 100 Hz.
-* above :data:`requant.weighting.UPPER_LIMIT_OF_HEARING_HZ` (about
+* above :data:`requant.dsp.weighting.UPPER_LIMIT_OF_HEARING_HZ` (about
   17.8 kHz, where Terhardt's threshold passes 100 dB SPL) the weight is 0:
   noise there is inaudible and may go there. What bounds it is a limit on
   the total noise power gain ``Σ n_k² <= 10^(max_gain_db/10)``, enforced by
@@ -58,7 +58,7 @@ from pathlib import Path
 import numpy as np
 
 from requant.errors import InputError, OutputError, UsageError
-from requant.weighting import (
+from requant.dsp.weighting import (
     UPPER_LIMIT_OF_HEARING_HZ,
     WEIGHTINGS,
     frequency_grid,
@@ -197,7 +197,7 @@ def design_from_weight(weight_power, *, order, max_gain_db=None):
     Parameters
     ----------
     weight_power : array_like of float, >= 0
-        ``W²`` on the uniform grid :func:`requant.weighting.frequency_grid`
+        ``W²`` on the uniform grid :func:`requant.dsp.weighting.frequency_grid`
         over 0..fs/2 (both ends included), at least ``order + 2`` points.
     order : int, 1..64
         Number of feedback coefficients K.
@@ -320,7 +320,7 @@ def design_hearing(
     weighting : {"threshold", "a", "itu468", "flat"}, default "threshold"
         What the design minimises: the noise weighted by the inverse of
         Terhardt's (1979) hearing threshold, or by another weighting of
-        :mod:`requant.weighting`, with the regularisers of the module notes.
+        :mod:`requant.dsp.weighting`, with the regularisers of the module notes.
 
     Returns
     -------

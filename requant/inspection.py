@@ -18,7 +18,7 @@ bits_used
     for float64). A file of zeros gives 0.
 peak_dbfs, true_peak_dbtp
     ``20 log10(max |x|)``; the true peak per ITU-R BS.1770-4 Annex 2
-    (:mod:`requant.truepeak`, zero history before the file, zero flush after).
+    (:mod:`requant.dsp.truepeak`, zero history before the file, zero flush after).
 rms_dbfs
     AES17: a full-scale sine reads 0 dBFS, i.e. ``10 log10(2 mean(x^2))``.
 dc_offset, dc_offset_dbfs
@@ -47,7 +47,7 @@ noise_floor_dbfs
     digital silence. A final partial block counts only when the file is
     shorter than one block. ``None`` when every block is silent.
 
-dB figures of zero (silence) are ``None``, as in :mod:`requant.measure`.
+dB figures of zero (silence) are ``None``, as in :mod:`requant.dsp.figures`.
 Samples that are NaN or infinite (float files only) are counted in
 ``nonfinite_samples`` and then treated as 0 for every other figure (they do
 not count as silent).
@@ -60,7 +60,7 @@ import os
 
 import numpy as np
 
-from .errors import UsageError
+from requant.errors import UsageError
 
 __all__ = ["inspect_file", "format_inspection", "DEFAULT_BLOCK_FRAMES"]
 
@@ -156,7 +156,7 @@ class _Accumulator:
 
     def __init__(self, channels, *, sample_rate, container_bits, clip_run, floor_block_s,
                  floor_percentile):
-        from .truepeak import TruePeakMeter
+        from requant.dsp.truepeak import TruePeakMeter
 
         ch = channels
         self.ch = ch
@@ -335,7 +335,7 @@ def inspect_file(path, *, block_frames=DEFAULT_BLOCK_FRAMES, clip_run=3,
     TypeError
         If an option has the wrong type.
     """
-    from .convert import open_input
+    from requant.convert import open_input
 
     _check_int("block_frames", block_frames, 1)
     _check_int("clip_run", clip_run, 1)

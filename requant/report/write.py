@@ -1,8 +1,8 @@
 """Writing the report: JSON, and (with pictures) HTML and Markdown.
 
 Rendering only: the figures come from :mod:`requant.convert` and
-:mod:`requant.analysis`. Every file goes through the caller's
-:class:`~requant.atomic.AtomicOutputs`, so a failure leaves nothing behind.
+:mod:`requant.dsp.analysis`. Every file goes through the caller's
+:class:`~requant.audio_io.atomic.AtomicOutputs`, so a failure leaves nothing behind.
 """
 
 import json
@@ -22,11 +22,11 @@ def write_report(report, analyzer, path, outs):
     Parameters
     ----------
     report : dict
-    analyzer : requant.analysis.ErrorAnalyzer or None
+    analyzer : requant.dsp.analysis.ErrorAnalyzer or None
         Supplies the arrays behind the pictures (HTML, Markdown).
     path : path
         ``.json``, ``.html``/``.htm`` or ``.md``.
-    outs : requant.atomic.AtomicOutputs
+    outs : requant.audio_io.atomic.AtomicOutputs
         Hands out the temporary paths.
     """
     path = os.fspath(path)
@@ -37,7 +37,7 @@ def write_report(report, analyzer, path, outs):
             json.dump(json_ready(report), fh, indent=2, allow_nan=False)
             fh.write("\n")
         return
-    from . import report_render
+    from requant.report import render as report_render
 
     if ext in (".html", ".htm"):
         report_render.write_html(report, analyzer, path, outs)

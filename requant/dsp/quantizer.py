@@ -3,7 +3,7 @@
 :class:`Requantizer` holds everything carried from one block to the next
 (one random generator per channel, error-feedback history, high-pass dither
 memory, running sums) and hands each block to the compiled kernel in
-:mod:`requant._kernel`. Feeding a signal in blocks of any size gives the same
+:mod:`requant.dsp.kernel`. Feeding a signal in blocks of any size gives the same
 bits as feeding it whole.
 
 Conventions
@@ -24,8 +24,9 @@ import secrets
 
 import numpy as np
 
-from . import _jit, _kernel
-from .errors import UsageError
+from requant.dsp import native
+from requant.dsp import kernel as _kernel
+from requant.errors import UsageError
 
 __all__ = [
     "QUANTIZERS",
@@ -62,11 +63,11 @@ E_BOUND_LSB = 2.0
 def compiled_kernel(x_dtype, code_dtype, taps):
     """The compiled block kernel for float32/float64 input, int16/int32 codes and
     ``taps`` feedback taps (one machine-code kernel per combination, built on
-    first use and cached; see :mod:`requant._jit`)."""
-    xc, cc = _jit.pointer_code(x_dtype), _jit.pointer_code(code_dtype)
+    first use and cached; see :mod:`requant.dsp.native`)."""
+    xc, cc = native.pointer_code(x_dtype), native.pointer_code(code_dtype)
     args = [xc, "i64", "i64", "u64*", "i64", "f64", "f64*", "i64", "f64*", "f64*", "f64",
             "f64", "i64", "i64", "f64", "i64", cc, "f32*", "i64", "f64*"]
-    return _jit.load(f"quantize-{xc[:-1]}-{cc[:-1]}-t{taps}",
+    return native.load(f"quantize-{xc[:-1]}-{cc[:-1]}-t{taps}",
                      functools.partial(_kernel.build, taps=taps), _kernel.__file__, args)
 
 

@@ -8,7 +8,7 @@ touch the result (python-soundfile docs; REFERENCES.md §6).
 
 import os
 
-from .errors import UsageError
+from requant.errors import UsageError
 
 __all__ = [
     "OUTPUT_FORMATS",

@@ -2,7 +2,7 @@
 the integer cast, fused, for one block of frames.
 
 This module holds no I/O, no validation and no argument handling. Callers
-(:mod:`requant.quantize`, through :mod:`requant._jit`) validate, allocate and
+(:mod:`requant.dsp.quantizer`, through :mod:`requant.dsp.native`) validate, allocate and
 carry the state. Everything that passes from one sample to the next (the
 generator states, the feedback partial sums, the previous uniform draw of
 high-passed TPDF, the running sums) lives in arrays that are passed in and
@@ -11,7 +11,7 @@ processing it whole.
 
 All buffers are flat: frame ``i`` of channel ``c`` is element ``i*nch + c``.
 The same source therefore compiles for raw pointers (the machine code that
-:mod:`requant._jit` caches and loads without numba) and for 1-D arrays (the
+:mod:`requant.dsp.native` caches and loads without numba) and for 1-D arrays (the
 plain-Python twin the tests run, and the numba fallback).
 
 Units inside the loop are LSBs of the target word length: ``v = x * scale``

@@ -35,8 +35,8 @@ import math
 
 import numpy as np
 
-# the dither powers (LWV 1992) and the prediction live in one place: requant.quantize
-from .quantize import DITHER_POWER_LSB2, predicted_error_power_lsb2
+# the dither powers (LWV 1992) and the prediction live in one place: requant.dsp.quantizer
+from requant.dsp.quantizer import DITHER_POWER_LSB2, predicted_error_power_lsb2
 
 __all__ = [
     "ErrorAnalyzer",
@@ -176,7 +176,7 @@ class ErrorAnalyzer:
     sample_rate : float, Hz
     bits : int, 1..32
     quantizer, dither : str
-        As for :class:`requant.quantize.Requantizer` (the dither actually
+        As for :class:`requant.dsp.quantizer.Requantizer` (the dither actually
         applied, 'none' for a pass-through).
     coeffs : sequence of float
         Error-feedback coefficients (empty for no shaping).
@@ -237,7 +237,7 @@ class ErrorAnalyzer:
         # true peak
         self._tp = None
         if true_peak:
-            from .truepeak import DualTruePeakMeter
+            from requant.dsp.truepeak import DualTruePeakMeter
 
             self._tp = DualTruePeakMeter(self.channels)
 
@@ -377,7 +377,7 @@ class ErrorAnalyzer:
         return p
 
     def _weights(self, freqs):
-        from .weighting import weighting_power
+        from requant.dsp.weighting import weighting_power
 
         return {"a": weighting_power("a", freqs), "itu468": weighting_power("itu468", freqs)}
 
@@ -390,14 +390,14 @@ class ErrorAnalyzer:
         sigma2 = DITHER_POWER_LSB2[self.dither] / self.scale ** 2
         ntf2 = np.ones_like(freqs)
         if self.coeffs.size:
-            from .shaping import ntf_response
+            from requant.dsp.shaping import ntf_response
 
             ntf2 = np.abs(ntf_response(self.coeffs, freqs, self.rate)) ** 2
         return 2.0 * sigma2 / self.rate * ntf2
 
     def predicted_weighted(self):
         """Predicted weighted noise powers (full scale²) for 'a' and 'itu468'."""
-        from .weighting import band_mean, frequency_grid
+        from requant.dsp.weighting import band_mean, frequency_grid
 
         grid = frequency_grid(self.rate, points=8192)
         psd = self.predicted_psd(grid)

@@ -2,7 +2,7 @@
 
 Rendering only: every figure comes from the report dict built by
 :mod:`requant.convert` and from the arrays an
-:class:`~requant.analysis.ErrorAnalyzer` keeps after ``finish()``. Nothing
+:class:`~requant.dsp.analysis.ErrorAnalyzer` keeps after ``finish()``. Nothing
 is measured here.
 
 * :func:`write_html` writes one self-contained page: inline CSS, pictures as
@@ -15,7 +15,7 @@ is measured here.
   CommonMark renderer); all other text is backslash-escaped.
 
 Every file is written to a temporary path handed out by the caller's
-:class:`~requant.atomic.AtomicOutputs`, after all the content has been
+:class:`~requant.audio_io.atomic.AtomicOutputs`, after all the content has been
 rendered in memory, so a failure leaves nothing behind.
 
 Pictures are drawn with a bare :class:`matplotlib.figure.Figure` on the Agg
@@ -102,12 +102,12 @@ def write_html(report, analyzer, path, outs):
     ----------
     report : dict
         As returned by :func:`requant.convert.convert_file`.
-    analyzer : requant.analysis.ErrorAnalyzer or None
+    analyzer : requant.dsp.analysis.ErrorAnalyzer or None
         After ``finish()``; supplies the arrays behind the pictures. None
         writes the tables only.
     path : str or os.PathLike
         The page to write (``.html``).
-    outs : requant.atomic.AtomicOutputs
+    outs : requant.audio_io.atomic.AtomicOutputs
         Hands out the temporary path; the file appears under ``path`` only
         when the caller commits.
 
@@ -134,12 +134,12 @@ def write_markdown(report, analyzer, path, outs):
     ----------
     report : dict
         As returned by :func:`requant.convert.convert_file`.
-    analyzer : requant.analysis.ErrorAnalyzer or None
+    analyzer : requant.dsp.analysis.ErrorAnalyzer or None
         After ``finish()``; None writes the tables only (and no PNG).
     path : str or os.PathLike
         The Markdown file (``.md``); the pictures are named by
         :func:`picture_paths`.
-    outs : requant.atomic.AtomicOutputs
+    outs : requant.audio_io.atomic.AtomicOutputs
         Hands out every temporary path (the report's and each picture's).
 
     Raises
@@ -168,7 +168,7 @@ def render_pictures(report, analyzer):
     Parameters
     ----------
     report : dict
-    analyzer : requant.analysis.ErrorAnalyzer or None
+    analyzer : requant.dsp.analysis.ErrorAnalyzer or None
 
     Returns
     -------
@@ -214,7 +214,7 @@ def _write_bytes(outs, path, data):
 
 
 def _output_error(exc, path):
-    from .errors import OutputError
+    from requant.errors import OutputError
 
     return OutputError(f"writing the report {path!r} failed ({exc.strerror or exc}); "
                        "check the destination's space and permissions")
@@ -489,7 +489,7 @@ def _main_table(m, p, *, have_spectrum):
 
 
 def _correlated_table(m, an):
-    from .analysis import CORRELATED_WARNING_FRACTION
+    from requant.dsp.analysis import CORRELATED_WARNING_FRACTION
 
     q = an.get("quietest_passage") if an else None
     flagged = m.get("signal_correlated")
@@ -659,7 +659,7 @@ def _shaping_table(report, *, passthrough):
     rate = report.get("input", {}).get("sample_rate")
     if not coeffs or not rate:
         return None
-    from .shaping import describe
+    from requant.dsp.shaping import describe
 
     d = describe(coeffs, rate)
     wg, gc = d["weighted_gain_db"], d["gerzon_craven_bound_db"]
@@ -876,7 +876,7 @@ def _fmt_total(v, power):
 
 
 def _plot_error_spectrum(report, an):
-    from .weighting import weighting_power
+    from requant.dsp.weighting import weighting_power
 
     rate = float(an.rate)
     df = rate / an.L
@@ -952,9 +952,9 @@ def _plot_error_spectrum(report, an):
 
 
 def _plot_noise_transfer(report, an):
-    from .analysis import DITHER_POWER_LSB2
-    from .shaping import noise_gain_db, ntf_response
-    from .weighting import weighting_db
+    from requant.dsp.analysis import DITHER_POWER_LSB2
+    from requant.dsp.shaping import noise_gain_db, ntf_response
+    from requant.dsp.weighting import weighting_db
 
     rate = float(an.rate)
     h = np.asarray(an.coeffs, dtype=np.float64)
@@ -999,7 +999,7 @@ def _plot_noise_transfer(report, an):
 
 
 def _plot_histogram(report, an):
-    from .analysis import DITHER_POWER_LSB2, error_pdf
+    from requant.dsp.analysis import DITHER_POWER_LSB2, error_pdf
 
     hist = (report.get("analysis") or {}).get("histogram") or {}
     edges = np.asarray(hist.get("edges_lsb") or an.hist_edges, dtype=np.float64)

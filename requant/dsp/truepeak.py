@@ -59,7 +59,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from .errors import InputError, UsageError
+from requant.errors import InputError, UsageError
 
 __all__ = [
     "OVERSAMPLING",
@@ -390,7 +390,7 @@ def build_dual(jit=None):
     """Return the dual true-peak kernel, its helper compiled by ``jit``.
 
     ``jit`` is numba's ``njit(inline="always")`` for the compiled kernel
-    (loaded through :mod:`requant._jit`), ``None`` for the plain-Python twin.
+    (loaded through :mod:`requant.dsp.native`), ``None`` for the plain-Python twin.
     The kernel is ``dual_peak(hx, he, xs, es, m, nch, phases, gain, sub, run,
     peak_in, peak_out, v, acc, bx, be, ub, pk)`` over flat buffers:
 
@@ -579,14 +579,14 @@ dual_peak_kernel_py = build_dual()
 _PHASES_FLAT = np.ascontiguousarray(PHASES.reshape(-1))
 _PHASES32 = _PHASES_FLAT.astype(np.float32)
 def _dual_kernel(x_dtype, e_dtype):
-    """The compiled dual kernel for these storage dtypes (see :mod:`requant._jit`)."""
-    from . import _jit
+    """The compiled dual kernel for these storage dtypes (see :mod:`requant.dsp.native`)."""
+    from requant.dsp import native
 
-    xc, ec = _jit.pointer_code(x_dtype), _jit.pointer_code(e_dtype)
+    xc, ec = native.pointer_code(x_dtype), native.pointer_code(e_dtype)
     args = ["f64*", "f64*", xc, ec, "i64", "i64", "f64*", "f64", "i64", "i64",
             "f64*", "f64*", "f64*", "f64*", "f64*", "f64*", "f64*", "f64*", "f32*", "f32*",
             "f32*"]
-    return _jit.load(f"truepeak-dual-{xc[:-1]}-{ec[:-1]}", build_dual, __file__, args)
+    return native.load(f"truepeak-dual-{xc[:-1]}-{ec[:-1]}", build_dual, __file__, args)
 
 
 def _float_block(a):

@@ -217,7 +217,7 @@ def load(name, build, source_file, argcodes):
         Cache name, e.g. ``"quantize-f32-i16"``.
     build : callable
         ``build(jit)`` returns the kernel's Python function, its helpers
-        wrapped by ``jit`` (see :func:`requant._kernel.build`).
+        wrapped by ``jit`` (see :func:`requant.dsp.kernel.build`).
     source_file : str or Path
         The file that defines the kernel; its text is part of the cache key
         (read only when ``name`` is not loaded yet in this process).

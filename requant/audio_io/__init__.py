@@ -1,0 +1,1 @@
+"""requant.audio_io."""

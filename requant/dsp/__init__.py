@@ -1,0 +1,1 @@
+"""requant.dsp."""
