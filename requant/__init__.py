@@ -19,7 +19,7 @@ _EXPORTS = {
     "design_hearing": "requant.dsp.shaping",
     "resolve_shaping": "requant.dsp.shaping",
     "analyze_arrays": "requant.dsp.analysis",
-    "run_batch": "requant.batch",
+    "run_batch": "requant.library",
     "make_listening_kit": "requant.listen",
     "RequantError": "requant.errors",
     "UsageError": "requant.errors",

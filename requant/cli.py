@@ -199,7 +199,8 @@ def inspect(
     overwrite: bool = typer.Option(False, "--overwrite", help="Replace an existing JSON file."),
 ):
     """Say what a file really holds: bits in use, peaks, DC, clipping, silence, noise floor."""
-    from requant.convert import open_input, write_json_atomic
+    from requant.audio_io.reader import open_input
+    from requant.audio_io.writers import write_json_atomic
     from requant.inspection import format_inspection, inspect_file
     from requant.audio_io.atomic import check_outputs
 

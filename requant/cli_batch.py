@@ -1,7 +1,7 @@
 """The ``batch`` command: parsing and printing only.
 
 ``register(app)`` adds the command to requant's typer app; the lead calls it
-from :mod:`requant.cli`. The domain work is :func:`requant.batch.run_batch`,
+from :mod:`requant.cli`. The domain work is :func:`requant.library.run_batch`,
 imported inside the command so that ``requant --help`` stays fast.
 
 Options default to None here so that the command can tell which ones were
@@ -274,11 +274,11 @@ def register(app):
         failed, 1 when some file failed, 2 for bad options, 130 when
         interrupted (rerun the same command to resume).
         """
-        from requant.batch import resolve_settings, run_batch
+        from requant.library import resolve_settings, run_batch
 
         prof = None
         if profile is not None:
-            from requant.profile import load_profile
+            from requant.library.profiles import load_profile
 
             prof = load_profile(profile)
         options = {
@@ -292,7 +292,7 @@ def register(app):
         settings = resolve_settings(options, prof)
         executor = None
         if cluster is not None:
-            from requant.cluster import DaskExecutor
+            from requant.library.executors.cluster import DaskExecutor
             from requant.errors import UsageError
 
             if jobs is not None:

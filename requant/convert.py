@@ -7,8 +7,6 @@ so a failed or interrupted run leaves nothing partial behind.
 """
 
 import datetime as _dt
-import errno
-import json
 import math
 import os
 import sys
@@ -17,47 +15,20 @@ import numpy as np
 
 from requant import __version__
 from requant.audio_io.atomic import AtomicOutputs, check_outputs
-from requant.audio_io.blocks import BlockReader, BlockWriter, SyncWriter, read_blocks
-from requant.errors import InputError, OutputError, RequantError, UsageError
+from requant.audio_io.reader import BlockReader, first_nonfinite, on_grid, open_input, read_blocks
+from requant.audio_io.writers import BlockWriter, SyncWriter, open_output, wrap_write_error
+from requant.errors import InputError, UsageError
 from requant.audio_io.formats import (RF64_THRESHOLD, container_bits_of, format_for_path, read_dtype_for,
                       subtype_for)
 from requant.dsp.figures import measured_figures, predicted_figures
 from requant.dsp.quantizer import Requantizer, check_settings, new_seed, predicted_error_power_lsb2
-from requant.audio_io.wavwrite import RAW_SUBTYPES, WavWriter
 
-__all__ = ["convert_file", "open_input", "resolve_shaping_spec", "DEFAULT_BLOCK_FRAMES",
-           "write_json_atomic"]
+__all__ = ["convert_file", "resolve_shaping_spec", "DEFAULT_BLOCK_FRAMES"]
 
 DEFAULT_BLOCK_FRAMES = 65536
 
 _ERROR_FORMATS = {".wav": "WAV", ".wave": "WAV", ".aif": "AIFF", ".aiff": "AIFF", ".aifc": "AIFF"}
 _REPORT_KINDS = (".json", ".html", ".htm", ".md")
-
-
-def open_input(path):
-    """Open an audio file for reading; raise :class:`InputError` if it can't be.
-
-    Returns
-    -------
-    soundfile.SoundFile
-    """
-    import soundfile as sf
-
-    p = os.fspath(path)
-    if not os.path.exists(p):
-        raise InputError(f"{p!r}: no such file; check the path")
-    if os.path.isdir(p):
-        raise InputError(f"{p!r} is a folder; give an audio file (use 'requant batch' for folders)")
-    try:
-        return sf.SoundFile(p)
-    except (sf.LibsndfileError, RuntimeError, TypeError) as exc:
-        detail = str(exc).split(":")[-1].strip() or "unreadable"
-        raise InputError(
-            f"{p!r} is not an audio file that can be read ({detail}); check that it is a "
-            "complete WAV, FLAC, AIFF or other PCM file"
-        ) from None
-    except OSError as exc:
-        raise InputError(f"{p!r} cannot be opened ({exc.strerror or exc}); check its permissions") from None
 
 
 def resolve_shaping_spec(spec, sample_rate, *, order=None, limit_db=None):
@@ -78,107 +49,6 @@ def resolve_shaping_spec(spec, sample_rate, *, order=None, limit_db=None):
         kwargs["max_gain_db"] = limit_db
     name, h = shaping.resolve_shaping(spec, sample_rate, **kwargs)
     return name, np.asarray(h, dtype=np.float64)
-
-
-def _on_grid(f, *, dtype, scale, kmin, kmax, block_frames, subtype):
-    """True when every sample already lies on the target grid, in range.
-
-    An integer container no wider than the target is on the grid without a
-    look. Otherwise the file is scanned, stopping at the first sample off the
-    grid (usually within the first block of real audio).
-    """
-    cbits = container_bits_of(subtype)
-    if cbits is not None and cbits <= round(np.log2(scale)) + 1:
-        return True
-    f.seek(0)
-    try:
-        # a small first look settles almost every real file (the first off-grid sample)
-        n = min(block_frames, 4096)
-        while True:
-            x = f.read(n, dtype="float64")
-            n = block_frames
-            if x.shape[0] == 0:
-                return True
-            v = x * scale
-            if not np.all(np.isfinite(v)):
-                return False
-            if np.any(v != np.floor(v)) or v.min() < kmin or v.max() > kmax:
-                return False
-    finally:
-        f.seek(0)
-
-
-def _first_nonfinite(x, start_frame):
-    bad = np.argwhere(~np.isfinite(x))[0]
-    return start_frame + int(bad[0]), int(bad[1]), ("NaN" if np.isnan(x[tuple(bad)]) else "infinite")
-
-
-def _write_limits_hit(folder):
-    """Name what most likely refused a write ('read-only', 'size limit', 'disk full', None).
-
-    libsndfile reports refused writes as a bare "System error."; look at the
-    destination's mount and permissions, the process's file-size limit and the
-    destination's free space.
-    """
-    try:
-        st = os.statvfs(folder)
-        if st.f_flag & os.ST_RDONLY or not os.access(folder, os.W_OK):
-            return "read-only"
-    except OSError:
-        pass
-    try:
-        import resource
-
-        soft, _ = resource.getrlimit(resource.RLIMIT_FSIZE)
-        if soft != resource.RLIM_INFINITY:
-            return "size limit"
-    except (ImportError, OSError, ValueError):
-        pass
-    try:
-        st = os.statvfs(folder)
-        if st.f_bavail * st.f_frsize < (4 << 20):
-            return "disk full"
-    except OSError:
-        pass
-    return None
-
-
-def _wrap_write_error(exc, path):
-    code = getattr(exc, "errno", None)
-    text = str(exc)
-    folder = os.path.dirname(os.path.abspath(path))
-    limit = _write_limits_hit(folder) if code is None else None
-    if (code in (errno.EACCES, errno.EPERM, errno.EROFS) or "ermission" in text
-            or "Read-only" in text or limit == "read-only"):
-        return OutputError(f"cannot write in the folder of {path!r} (read-only or no permission); "
-                           "choose a writable destination")
-    if code == errno.ENOSPC or "No space" in text or limit == "disk full":
-        return OutputError(f"the disk is full while writing {path!r}; free some space and run again")
-    if code == errno.EFBIG or "too large" in text or limit == "size limit":
-        return OutputError(f"the file size limit was reached while writing {path!r}; "
-                           "free space or raise the limit (ulimit -f)")
-    return OutputError(f"writing {path!r} failed ({text.strip() or type(exc).__name__}); "
-                       "check the destination")
-
-
-def _open_output(path, rate, nch, subtype, fmt, *, plain):
-    """An audio output: our own WAV writer where it can (``plain``: no tags
-    to write), else libsndfile."""
-    if plain and fmt == "WAV" and subtype in RAW_SUBTYPES:
-        return WavWriter(path, samplerate=rate, channels=nch, subtype=subtype,
-                         background_sync=True)
-    import soundfile as sf
-
-    return sf.SoundFile(path, "w", samplerate=rate, channels=nch, subtype=subtype, format=fmt)
-
-
-def write_json_atomic(obj, path):
-    """Write ``obj`` as indented JSON through a temporary file and rename."""
-    with AtomicOutputs() as outs:
-        tmp = outs.path_for(path)
-        with open(tmp, "w", encoding="utf-8") as fh:
-            json.dump(obj, fh, indent=2, allow_nan=False)
-            fh.write("\n")
 
 
 def convert_file(in_path, out_path, *, bits=16, quantizer="round", dither="tpdf", shaping="none",
@@ -279,7 +149,7 @@ def convert_file(in_path, out_path, *, bits=16, quantizer="round", dither="tpdf"
         dtype = read_dtype_for(in_subtype)
         scale = float(2 ** (bits - 1))
         kmin, kmax = -(2 ** (bits - 1)), 2 ** (bits - 1) - 1
-        passthrough = (not force_dither) and frames > 0 and _on_grid(
+        passthrough = (not force_dither) and frames > 0 and on_grid(
             f, dtype=dtype, scale=scale, kmin=kmin, kmax=kmax,
             block_frames=min(block_frames, 65536), subtype=in_subtype)
         eff_dither, eff_coeffs = ("none", np.zeros(0)) if passthrough else (dither, coeffs)
@@ -298,11 +168,11 @@ def convert_file(in_path, out_path, *, bits=16, quantizer="round", dither="tpdf"
             tmp_out = outs.path_for(out_path)
             tmp_err = outs.path_for(error_path) if error_path else None
             try:
-                wout = _open_output(tmp_out, rate, nch, subtype, out_fmt, plain=not tags)
-                werr = (_open_output(tmp_err, rate, nch, "FLOAT", e_fmt, plain=True)
+                wout = open_output(tmp_out, rate, nch, subtype, out_fmt, plain=not tags)
+                werr = (open_output(tmp_err, rate, nch, "FLOAT", e_fmt, plain=True)
                         if tmp_err else None)
             except (sf.LibsndfileError, RuntimeError, OSError) as exc:
-                raise _wrap_write_error(exc, out_path) from None
+                raise wrap_write_error(exc, out_path) from None
             for key, value in (tags or {}).items():
                 try:
                     setattr(wout, key, value)
@@ -347,7 +217,7 @@ def convert_file(in_path, out_path, *, bits=16, quantizer="round", dither="tpdf"
                     if analyzer is not None:
                         bufs[2][:n] = x
                     if rq.acc[:, 6].any():
-                        frame, ch, kind = _first_nonfinite(x, start)
+                        frame, ch, kind = first_nonfinite(x, start)
                         raise InputError(
                             f"{in_path!r} has a {kind} sample at {frame / rate:.6f} s "
                             f"(frame {frame}, channel {ch + 1}); repair the source and run again"
@@ -358,7 +228,7 @@ def convert_file(in_path, out_path, *, bits=16, quantizer="round", dither="tpdf"
                         progress(done, frames)
                 writer.close()
             except (sf.LibsndfileError, RuntimeError, OSError) as exc:
-                raise _wrap_write_error(exc, out_path) from None
+                raise wrap_write_error(exc, out_path) from None
             finally:
                 try:
                     writer.close()
@@ -370,7 +240,7 @@ def convert_file(in_path, out_path, *, bits=16, quantizer="round", dither="tpdf"
                         werr.close()
                 except (sf.LibsndfileError, RuntimeError, OSError) as exc:
                     if sys.exc_info()[0] is None:
-                        raise _wrap_write_error(exc, out_path) from None
+                        raise wrap_write_error(exc, out_path) from None
             if done != frames:
                 short_note = (f"{in_path!r} holds {done} frames although its header declares "
                               f"{frames}; the frames that are there were converted.")
@@ -401,7 +271,7 @@ def convert_file(in_path, out_path, *, bits=16, quantizer="round", dither="tpdf"
             try:
                 outs.commit()
             except OSError as exc:
-                raise _wrap_write_error(exc, out_path) from None
+                raise wrap_write_error(exc, out_path) from None
         except BaseException:
             outs.discard()
             raise

@@ -335,7 +335,7 @@ def inspect_file(path, *, block_frames=DEFAULT_BLOCK_FRAMES, clip_run=3,
     TypeError
         If an option has the wrong type.
     """
-    from requant.convert import open_input
+    from requant.audio_io.reader import open_input
 
     _check_int("block_frames", block_frames, 1)
     _check_int("clip_run", clip_run, 1)

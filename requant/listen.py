@@ -752,7 +752,8 @@ def make_listening_kit(src, outdir, *, bits=16, methods=("truncate", "tpdf", "tp
     """
     from requant import __version__
     from requant.audio_io.atomic import AtomicOutputs, check_outputs
-    from requant.convert import open_input, resolve_shaping_spec
+    from requant.audio_io.reader import open_input
+    from requant.convert import resolve_shaping_spec
     from requant.dsp.quantizer import check_settings, new_seed
 
     check_settings(bits, "round", "none")

@@ -14,7 +14,8 @@ import numpy as np
 import pytest
 import soundfile as sf
 
-from requant import batch
+from requant import library as batch
+from requant.library.executors.base import run_chunk
 from requant.audio_io import atomic
 from requant.audio_io.atomic import AtomicOutputs, CommitGroup, pending_path
 
@@ -108,7 +109,7 @@ def test_batch_chunk_reports_a_failed_flush(tmp_path, monkeypatch):
     dst, tasks = _clip_tasks(tmp_path)
     monkeypatch.setattr(atomic.os, "replace",
                         lambda a, b: (_ for _ in ()).throw(OSError(errno.ENOSPC, "No space")))
-    results = batch._run_chunk(batch.convert_task, tasks)
+    results = run_chunk(batch.convert_task, tasks)
     assert [r["status"] for r in results] == ["failed"] * 3
     assert all("disk is full" in r["error"] for r in results)
     assert list(dst.iterdir()) == []

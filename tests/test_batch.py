@@ -21,8 +21,8 @@ import numpy as np
 import pytest
 import soundfile as sf
 
-from requant import batch as B
-from requant.batch import (DEFAULT_SETTINGS, ProcessExecutor, WorkerLost, derive_seed,
+from requant import library as B
+from requant.library import (DEFAULT_SETTINGS, ProcessExecutor, WorkerLost, derive_seed,
                            read_manifest, resolve_settings, run_batch, settings_id)
 from requant.errors import UsageError
 
@@ -632,7 +632,7 @@ def test_index_html(tmp_path):
 def test_index_rows_rendered_early_or_late_are_the_same(tree, tmp_path):
     # The builder renders rows as results come back once prepared; rows added before
     # prepare() wait. Either way the page is the same, problem files first.
-    from requant.batch_index import IndexBuilder, render_index
+    from requant.library.index import IndexBuilder, render_index
 
     summary = run_batch(tree, tmp_path / "out", settings(), jobs=1)
     events, _ = read_manifest(tmp_path / "out" / B.MANIFEST_NAME)

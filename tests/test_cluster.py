@@ -30,8 +30,8 @@ import numpy as np
 import pytest
 import soundfile as sf
 
-from requant import batch as B
-from requant.batch import WorkerLost, read_manifest, resolve_settings, run_batch
+from requant import library as B
+from requant.library import WorkerLost, read_manifest, resolve_settings, run_batch
 
 HERE = Path(__file__).parent
 BIN = Path(sys.executable).parent
@@ -386,7 +386,7 @@ def test_without_dask_says_what_to_install(library, tmp_path):
 
 
 def test_cli_stays_free_of_dask():
-    code = ("import sys, requant.cli, requant.cluster; "
+    code = ("import sys, requant.cli, requant.library.executors.cluster; "
             "print(sorted({m.split('.')[0] for m in sys.modules} & {'dask', 'distributed'}))")
     proc = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
                           timeout=60)
@@ -407,7 +407,7 @@ def test_jobs_and_cluster_do_not_combine(library, tmp_path):
     ("tls://[::1]:9000", "tls://[::1]:9000"),
 ])
 def test_parse_address(given, expected):
-    from requant.cluster import parse_address
+    from requant.library.executors.cluster import parse_address
 
     assert parse_address(given)[0] == expected
 
@@ -415,7 +415,7 @@ def test_parse_address(given, expected):
 @pytest.mark.parametrize("given", ["", "tcp://", "http://host:80", "host:0", "host:99999",
                                    "tcp://a b:1", "host:port"])
 def test_parse_address_refuses(given):
-    from requant.cluster import parse_address
+    from requant.library.executors.cluster import parse_address
     from requant.errors import UsageError
 
     with pytest.raises(UsageError, match="--cluster"):
@@ -423,7 +423,7 @@ def test_parse_address_refuses(given):
 
 
 def test_worker_check_names_the_shared_path_problem(tmp_path):
-    from requant.cluster import _check_worker, _environment
+    from requant.library.executors.cluster import _check_worker, _environment
 
     (tmp_path / "src").mkdir()
     (tmp_path / "dst").mkdir()
@@ -450,7 +450,7 @@ def _crash_on_bad(item):
 
 
 def test_lost_file_is_worker_lost_and_alone(cluster):
-    from requant.cluster import DaskExecutor
+    from requant.library.executors.cluster import DaskExecutor
 
     before = set(cluster.ready())
     items = [{"name": n, "size": 1} for n in ("a", "b", "bad", "c", "d", "e")]

@@ -12,9 +12,9 @@ import numpy as np
 import pytest
 import soundfile as sf
 
-from requant.batch import MANIFEST_NAME, read_manifest, resolve_settings, run_batch
+from requant.library import MANIFEST_NAME, read_manifest, resolve_settings, run_batch
 from requant.errors import UsageError
-from requant.profile import PROFILE_KEYS, ProfileError, load_profile, parse_profile
+from requant.library.profiles import PROFILE_KEYS, ProfileError, load_profile, parse_profile
 
 RUNNER = """
 import sys

@@ -230,7 +230,7 @@ _ENVS = {}
 def _loader():
     import jinja2
 
-    return jinja2.PackageLoader("requant", "templates")
+    return jinja2.PackageLoader("requant.report", "templates")
 
 
 def _html_env():

@@ -59,7 +59,7 @@ PROFILE_KEYS = {
     "seed": "an integer from 0 to 2**63 - 1 (the run seed)",
 }
 
-_SEED_MAX = 2**63 - 1
+SEED_MAX = 2**63 - 1
 
 
 class ProfileError(UsageError):
@@ -221,7 +221,7 @@ def parse_profile(text, *, source="profile", base_dir=None):
         elif key in ("include", "exclude"):
             out[key] = _patterns(where, key, value)
         elif key == "seed":
-            out[key] = _int_in(where, key, value, 0, _SEED_MAX)
+            out[key] = _int_in(where, key, value, 0, SEED_MAX)
     if out.get("format") == "flac" and out.get("bits", 16) > 24:
         raise ProfileError(f"{where}: FLAC holds at most 24 bits, not {out['bits']}; lower bits "
                            "or choose format = \"wav\"")

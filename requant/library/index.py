@@ -36,7 +36,7 @@ def index_row(ev):
     Parameters
     ----------
     ev : dict
-        A manifest event (see :func:`requant.batch.convert_task`).
+        A manifest event (see :func:`requant.library.task.convert_task`).
 
     Returns
     -------
@@ -100,7 +100,7 @@ class IndexBuilder:
 
     :meth:`add` takes each manifest event. Until :meth:`prepare` has loaded
     the templates it only keeps the event; after that it renders the row's
-    cells at once (autoescaped). :func:`~requant.batch.run_batch` prepares
+    cells at once (autoescaped). :func:`~requant.library.run_batch` prepares
     the builder when the first result is back, so with worker processes the
     templates load and the rows render while the workers convert, and the
     page at the end is only sorted and joined.
@@ -137,7 +137,7 @@ class IndexBuilder:
         Parameters
         ----------
         summary : dict
-            The run summary (:func:`requant.batch.run_batch`).
+            The run summary (:func:`requant.library.run_batch`).
         """
         self.prepare()
         c = summary["counts"]

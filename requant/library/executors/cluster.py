@@ -1,11 +1,11 @@
 """Run a library batch on an existing Dask distributed cluster.
 
 ``DaskExecutor(address)`` has the executor protocol of
-:class:`requant.batch.SerialExecutor` (``workers``, ``description``,
+:class:`requant.library.executors.base.Executor` protocol (``workers``, ``description``,
 ``forks``; ``start``, ``imap_unordered``, ``drain``, ``close``), so
-:func:`requant.batch.run_batch` runs a batch on it exactly as on local
+:func:`requant.library.run.run_batch` runs a batch on it exactly as on local
 processes: the plan, the claims, per-file seeds, resume and the summary are
-the batch's own; only where :func:`requant.batch.convert_task` runs changes.
+the batch's own; only where :func:`requant.library.task.convert_task` runs changes.
 
 How it works:
 
@@ -25,9 +25,11 @@ How it works:
   file's name ends in ``.requant-part``, so a killed run's leftover is
   removed by the next run like any stale temporary.
 * **Tasks.** Files travel in chunks (see :meth:`DaskExecutor._chunks`); each
-  chunk is one dask task running :func:`_run_chunk_on_worker`, which calls
-  ``convert_task`` per file and stamps each event's ``worker`` with the dask
-  worker's address. At most ``window_per_thread`` chunks per worker thread
+  chunk is one dask task running :func:`_run_chunk_on_worker`: the shared
+  chunk runner (:func:`~requant.library.executors.base.run_chunk`), so the
+  chunk's outputs are flushed and renamed together on the worker before its
+  results return, each event's ``worker`` stamped with the dask worker's
+  address. At most ``window_per_thread`` chunks per worker thread
   are in flight, so an interrupt has little to cancel. Results return to
   this process, which alone writes the manifest.
 * **Lost workers.** When a worker dies, the scheduler runs its chunks again
@@ -38,7 +40,7 @@ How it works:
   (dask blames every task assigned to a dying worker), so its files are run
   again one at a time, with nothing else of the batch in flight; a file
   that still kills its workers alone is reported as
-  :class:`requant.batch.WorkerLost`, so only that file is recorded failed.
+  :class:`requant.library.executors.base.WorkerLost`, so only that file is recorded failed.
 
 Security: the dask protocol carries pickled Python objects without
 authentication. Run the scheduler and workers only on a trusted network, or
@@ -59,6 +61,7 @@ import threading
 import time
 
 from requant.errors import RequantError, UsageError
+from requant.library.executors.base import WorkerLost, chunk_items, run_chunk, warm_kernel
 
 __all__ = ["DaskExecutor", "parse_address", "DEFAULT_PORT", "INSTALL_HINT"]
 
@@ -151,9 +154,8 @@ def _environment():
 
 def _worker_hello():
     """Run on each worker at start: load the compiled kernel, return the environment."""
-    from requant.batch import _warm_kernel
 
-    _warm_kernel()
+    warm_kernel()
     return _environment()
 
 
@@ -214,16 +216,11 @@ def _run_chunk_on_worker(fn, items, ctx):
         problem = _CHECKED[key]
     if problem:
         raise RequantError(problem)
+    stamp = {"worker": w.address}
     name = str(w.name) if w.name is not None else None
-    out = []
-    for item in items:
-        res = fn(item)
-        if isinstance(res, dict):
-            res["worker"] = w.address
-            if name and name != w.address:
-                res["worker_name"] = name
-        out.append(res)
-    return out
+    if name and name != w.address:
+        stamp["worker_name"] = name
+    return run_chunk(fn, items, stamp=stamp)
 
 
 # --------------------------------------------------------------------------- the executor
@@ -440,8 +437,6 @@ class DaskExecutor:
 
     def _chunks(self, items):
         """Group items: small files travel together, big ones alone."""
-        from requant.batch import chunk_items
-
         threads = max(1, self._threads)
         per = max(1, min(self.max_chunk, len(items) // (threads * 8)))
         return chunk_items(items, per=per, chunk_bytes=self.chunk_bytes, taper=threads * 4)
@@ -483,8 +478,6 @@ class DaskExecutor:
         return fut
 
     def _lost(self):
-        from requant.batch import WorkerLost
-
         return WorkerLost("the dask workers running this file died repeatedly (crashed, were "
                           "killed, or ran out of memory); check the file, or convert it alone "
                           "with requant convert")

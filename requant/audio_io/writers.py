@@ -1,91 +1,93 @@
-"""Overlapped block I/O: a reader thread and a writer thread around the kernel.
+"""Writing audio and JSON: outputs, overlapped block writing, and clear write errors.
 
-libsndfile calls through python-soundfile (cffi) and the numba kernel both
-release the GIL, so reading the next block, requantizing this one and
-encoding the previous one run at the same time. Buffers circulate through a
-free queue, so memory is a fixed handful of blocks whatever the file length,
-and no buffer is refilled before its consumer hands it back.
+:class:`BlockWriter` encodes on a thread of its own (libsndfile and our WAV
+writer release the GIL), so encoding the previous block overlaps requantizing
+this one; :class:`SyncWriter` does the same work inline for files of one block.
 """
 
+import errno
+import json
+import os
 import queue
 import threading
 
 import numpy as np
 
-__all__ = ["BlockReader", "BlockWriter", "SyncWriter", "read_blocks"]
+from requant.audio_io.atomic import AtomicOutputs
+from requant.audio_io.wavwrite import RAW_SUBTYPES, WavWriter
+from requant.errors import OutputError
+
+__all__ = ["open_output", "wrap_write_error", "write_json_atomic", "BlockWriter", "SyncWriter"]
 
 _END = object()
 
 
-class BlockReader:
-    """Iterate over (start_frame, block) read ahead on a background thread.
+def _write_limits_hit(folder):
+    """Name what most likely refused a write ('read-only', 'size limit', 'disk full', None).
 
-    Parameters
-    ----------
-    f : soundfile.SoundFile
-        Open for reading, positioned at the start.
-    block_frames : int
-    dtype : str
-        'float32' or 'float64'.
-    depth : int
-        Blocks read ahead.
-
-    Notes
-    -----
-    Each yielded block stays valid until the next iteration step.
+    libsndfile reports refused writes as a bare "System error."; look at the
+    destination's mount and permissions, the process's file-size limit and the
+    destination's free space.
     """
+    try:
+        st = os.statvfs(folder)
+        if st.f_flag & os.ST_RDONLY or not os.access(folder, os.W_OK):
+            return "read-only"
+    except OSError:
+        pass
+    try:
+        import resource
 
-    def __init__(self, f, block_frames, dtype, depth=2):
-        self._f = f
-        self._n = block_frames
-        self._free = queue.Queue()
-        self._full = queue.Queue()
-        for _ in range(depth + 1):
-            self._free.put(np.empty((block_frames, f.channels), dtype=dtype))
-        self._dtype = dtype
-        self._stop = False
-        self._thread = threading.Thread(target=self._run, name="requant-reader", daemon=True)
-        self._thread.start()
+        soft, _ = resource.getrlimit(resource.RLIMIT_FSIZE)
+        if soft != resource.RLIM_INFINITY:
+            return "size limit"
+    except (ImportError, OSError, ValueError):
+        pass
+    try:
+        st = os.statvfs(folder)
+        if st.f_bavail * st.f_frsize < (4 << 20):
+            return "disk full"
+    except OSError:
+        pass
+    return None
 
-    def _run(self):
-        try:
-            start = 0
-            while not self._stop:
-                buf = self._free.get()
-                if buf is None:
-                    break
-                x = self._f.read(self._n, dtype=self._dtype, out=buf)
-                if x.shape[0] == 0:
-                    break
-                self._full.put((start, x, buf))
-                start += x.shape[0]
-        except BaseException as exc:  # handed to the consumer
-            self._full.put(exc)
-            return
-        self._full.put(_END)
 
-    def __iter__(self):
-        prev = None
-        try:
-            while True:
-                if prev is not None:
-                    self._free.put(prev)
-                    prev = None
-                item = self._full.get()
-                if item is _END:
-                    return
-                if isinstance(item, BaseException):
-                    raise item
-                start, x, prev = item
-                yield start, x
-        finally:
-            self.close()
+def wrap_write_error(exc, path):
+    code = getattr(exc, "errno", None)
+    text = str(exc)
+    folder = os.path.dirname(os.path.abspath(path))
+    limit = _write_limits_hit(folder) if code is None else None
+    if (code in (errno.EACCES, errno.EPERM, errno.EROFS) or "ermission" in text
+            or "Read-only" in text or limit == "read-only"):
+        return OutputError(f"cannot write in the folder of {path!r} (read-only or no permission); "
+                           "choose a writable destination")
+    if code == errno.ENOSPC or "No space" in text or limit == "disk full":
+        return OutputError(f"the disk is full while writing {path!r}; free some space and run again")
+    if code == errno.EFBIG or "too large" in text or limit == "size limit":
+        return OutputError(f"the file size limit was reached while writing {path!r}; "
+                           "free space or raise the limit (ulimit -f)")
+    return OutputError(f"writing {path!r} failed ({text.strip() or type(exc).__name__}); "
+                       "check the destination")
 
-    def close(self):
-        """Stop the thread (safe to call twice)."""
-        self._stop = True
-        self._free.put(None)
-        self._thread.join()
+
+def open_output(path, rate, nch, subtype, fmt, *, plain):
+    """An audio output: our own WAV writer where it can (``plain``: no tags
+    to write), else libsndfile."""
+    if plain and fmt == "WAV" and subtype in RAW_SUBTYPES:
+        return WavWriter(path, samplerate=rate, channels=nch, subtype=subtype,
+                         background_sync=True)
+    import soundfile as sf
+
+    return sf.SoundFile(path, "w", samplerate=rate, channels=nch, subtype=subtype, format=fmt)
+
+
+def write_json_atomic(obj, path):
+    """Write ``obj`` as indented JSON through a temporary file and rename."""
+    with AtomicOutputs() as outs:
+        tmp = outs.path_for(path)
+        with open(tmp, "w", encoding="utf-8") as fh:
+            json.dump(obj, fh, indent=2, allow_nan=False)
+            fh.write("\n")
 
 
 class BlockWriter:
@@ -185,18 +187,6 @@ class BlockWriter:
         self._raise()
 
 
-def read_blocks(f, block_frames, dtype):
-    """Plain, same-thread counterpart of :class:`BlockReader` (for short files)."""
-    buf = np.empty((block_frames, f.channels), dtype=dtype)
-    start = 0
-    while True:
-        x = f.read(block_frames, dtype=dtype, out=buf)
-        if x.shape[0] == 0:
-            return
-        yield start, x
-        start += x.shape[0]
-
-
 class SyncWriter:
     """Same-thread counterpart of :class:`BlockWriter` (for short files).
 
@@ -219,3 +209,5 @@ class SyncWriter:
 
     def close(self):
         pass
+
+

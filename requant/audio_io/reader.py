@@ -1,0 +1,164 @@
+"""Reading audio: opening an input with one clear error, grid checks, and blocks.
+
+:class:`BlockReader` reads on a thread of its own: libsndfile calls through
+python-soundfile (cffi) release the GIL, so reading the next block overlaps
+requantizing this one. Buffers circulate through a free queue, so memory is a
+fixed handful of blocks whatever the file length.
+"""
+
+import os
+import queue
+import threading
+
+import numpy as np
+
+from requant.audio_io.formats import container_bits_of
+from requant.errors import InputError
+
+__all__ = ["open_input", "on_grid", "first_nonfinite", "BlockReader", "read_blocks"]
+
+_END = object()
+
+
+def open_input(path):
+    """Open an audio file for reading; raise :class:`InputError` if it can't be.
+
+    Returns
+    -------
+    soundfile.SoundFile
+    """
+    import soundfile as sf
+
+    p = os.fspath(path)
+    if not os.path.exists(p):
+        raise InputError(f"{p!r}: no such file; check the path")
+    if os.path.isdir(p):
+        raise InputError(f"{p!r} is a folder; give an audio file (use 'requant batch' for folders)")
+    try:
+        return sf.SoundFile(p)
+    except (sf.LibsndfileError, RuntimeError, TypeError) as exc:
+        detail = str(exc).split(":")[-1].strip() or "unreadable"
+        raise InputError(
+            f"{p!r} is not an audio file that can be read ({detail}); check that it is a "
+            "complete WAV, FLAC, AIFF or other PCM file"
+        ) from None
+    except OSError as exc:
+        raise InputError(f"{p!r} cannot be opened ({exc.strerror or exc}); check its permissions") from None
+
+
+def on_grid(f, *, dtype, scale, kmin, kmax, block_frames, subtype):
+    """True when every sample already lies on the target grid, in range.
+
+    An integer container no wider than the target is on the grid without a
+    look. Otherwise the file is scanned, stopping at the first sample off the
+    grid (usually within the first block of real audio).
+    """
+    cbits = container_bits_of(subtype)
+    if cbits is not None and cbits <= round(np.log2(scale)) + 1:
+        return True
+    f.seek(0)
+    try:
+        # a small first look settles almost every real file (the first off-grid sample)
+        n = min(block_frames, 4096)
+        while True:
+            x = f.read(n, dtype="float64")
+            n = block_frames
+            if x.shape[0] == 0:
+                return True
+            v = x * scale
+            if not np.all(np.isfinite(v)):
+                return False
+            if np.any(v != np.floor(v)) or v.min() < kmin or v.max() > kmax:
+                return False
+    finally:
+        f.seek(0)
+
+
+def first_nonfinite(x, start_frame):
+    bad = np.argwhere(~np.isfinite(x))[0]
+    return start_frame + int(bad[0]), int(bad[1]), ("NaN" if np.isnan(x[tuple(bad)]) else "infinite")
+
+
+class BlockReader:
+    """Iterate over (start_frame, block) read ahead on a background thread.
+
+    Parameters
+    ----------
+    f : soundfile.SoundFile
+        Open for reading, positioned at the start.
+    block_frames : int
+    dtype : str
+        'float32' or 'float64'.
+    depth : int
+        Blocks read ahead.
+
+    Notes
+    -----
+    Each yielded block stays valid until the next iteration step.
+    """
+
+    def __init__(self, f, block_frames, dtype, depth=2):
+        self._f = f
+        self._n = block_frames
+        self._free = queue.Queue()
+        self._full = queue.Queue()
+        for _ in range(depth + 1):
+            self._free.put(np.empty((block_frames, f.channels), dtype=dtype))
+        self._dtype = dtype
+        self._stop = False
+        self._thread = threading.Thread(target=self._run, name="requant-reader", daemon=True)
+        self._thread.start()
+
+    def _run(self):
+        try:
+            start = 0
+            while not self._stop:
+                buf = self._free.get()
+                if buf is None:
+                    break
+                x = self._f.read(self._n, dtype=self._dtype, out=buf)
+                if x.shape[0] == 0:
+                    break
+                self._full.put((start, x, buf))
+                start += x.shape[0]
+        except BaseException as exc:  # handed to the consumer
+            self._full.put(exc)
+            return
+        self._full.put(_END)
+
+    def __iter__(self):
+        prev = None
+        try:
+            while True:
+                if prev is not None:
+                    self._free.put(prev)
+                    prev = None
+                item = self._full.get()
+                if item is _END:
+                    return
+                if isinstance(item, BaseException):
+                    raise item
+                start, x, prev = item
+                yield start, x
+        finally:
+            self.close()
+
+    def close(self):
+        """Stop the thread (safe to call twice)."""
+        self._stop = True
+        self._free.put(None)
+        self._thread.join()
+
+
+def read_blocks(f, block_frames, dtype):
+    """Plain, same-thread counterpart of :class:`BlockReader` (for short files)."""
+    buf = np.empty((block_frames, f.channels), dtype=dtype)
+    start = 0
+    while True:
+        x = f.read(block_frames, dtype=dtype, out=buf)
+        if x.shape[0] == 0:
+            return
+        yield start, x
+        start += x.shape[0]
+
+

@@ -1,0 +1,197 @@
+"""Planning a batch: what each file needs, the run seed, claims, the lock, dry runs.
+
+A file is skipped ("up to date") when its latest ``converted`` event has the same
+``settings_id`` and output name and the output still has the recorded SHA-256. Before
+any work starts, the outputs this run may write are *claimed* in
+``DST/requant-batch.json`` (written atomically, with the run seed). An output that
+exists but was neither claimed nor recorded is somebody else's file: it is refused
+unless ``overwrite``. So a run killed between writing an output and recording it
+leaves a claimed output that the next run converts again, to the same bytes.
+"""
+
+import json
+import os
+import time
+
+from requant.errors import OutputError, RequantError, UsageError
+from requant.library.manifest import MANIFEST_NAME, latest_by_source, read_manifest, sha256_file
+from requant.library.settings import DEFAULT_SETTINGS, derive_seed, settings_id
+from requant.library.summary import public_settings
+from requant.library.tree import output_name, walk_tree
+from requant.recipe import SEED_MAX
+
+__all__ = ["STATE_NAME", "LOCK_NAME", "plan_tasks", "plan_dry_run", "choose_run_seed", "take_lock", "remove_stale_temps", "read_state"]
+
+
+STATE_NAME = "requant-batch.json"
+
+
+LOCK_NAME = ".requant-batch.lock"
+
+
+def read_state(dst):
+    try:
+        with open(os.path.join(dst, STATE_NAME), "rb") as fh:
+            state = json.loads(fh.read())
+        if isinstance(state, dict):
+            return state
+    except (OSError, ValueError):
+        pass
+    return {}
+
+
+def _is_stale_temp(name):
+    return name.startswith(".") and (name.endswith(".requant-part")
+                                     or (".requant-part." in name and name.endswith(".part")))
+
+
+def remove_stale_temps(dst):
+    removed = []
+    for root, dirs, files in os.walk(dst, followlinks=False):
+        for name in files:
+            if _is_stale_temp(name):
+                try:
+                    os.unlink(os.path.join(root, name))
+                    removed.append(os.path.relpath(os.path.join(root, name), dst))
+                except OSError:
+                    pass
+    return removed
+
+
+def plan_tasks(src, dst, settings, *, prune, run_seed, sid, overwrite, events):
+    """Decide, per file, what to do. Returns (tasks, parent_events, info)."""
+    entries, excluded = walk_tree(src, include=settings["include"], exclude=settings["exclude"],
+                                  prune=prune)
+    _, converted, seen_outputs = latest_by_source(events)
+    claims = set(read_state(dst).get("claimed_outputs") or ())
+    ours = seen_outputs | claims
+    task_settings = {k: settings[k] for k in DEFAULT_SETTINGS if k != "format"}
+
+    audio = [e for e in entries if e["kind"] == "audio"]
+    outs = {}
+    for e in audio:
+        e["output"], e["note"] = output_name(e["source"], settings["format"])
+        outs.setdefault(e["output"], []).append(e["source"])
+    tasks, parent_events = [], []
+    for e in entries:
+        if e["kind"] == "other":
+            parent_events.append({"source": e["source"], "output": None, "status": "skipped",
+                                  "reason": e["reason"]})
+            continue
+        if e["kind"] == "unreadable-folder":
+            parent_events.append({"source": e["source"], "output": None, "status": "failed",
+                                  "error": e["reason"]})
+            continue
+        rel_out = e["output"]
+        others = [s for s in outs[rel_out] if s != e["source"]]
+        out_path = os.path.join(dst, *rel_out.split("/"))
+        src_path = os.path.join(src, *e["source"].split("/"))
+        seed = derive_seed(run_seed, e["source"])
+        if others:
+            parent_events.append({
+                "source": e["source"], "output": rel_out, "status": "failed", "seed": seed,
+                "error": f"{src_path!r} and {others[0]!r} would both be written to {rel_out!r}; "
+                         "rename one of them, or choose --format same"})
+            continue
+        prev = converted.get(e["source"])
+        expect, reason = None, "new"
+        if prev is not None:
+            if prev.get("settings_id") != sid:
+                reason = "settings changed"
+            elif prev.get("output") != rel_out:
+                reason = "output name changed"
+            else:
+                expect, reason = prev.get("output_sha256"), "output missing"
+        exists = os.path.lexists(out_path)
+        mine = overwrite or rel_out in ours
+        if exists and not mine:
+            parent_events.append({
+                "source": e["source"], "output": rel_out, "status": "failed", "seed": seed,
+                "error": f"{out_path!r} already exists and was not written by requant batch; "
+                         "move it away or pass --overwrite to replace it"})
+            continue
+        # Every task may replace its output: the output is claimed for this run (STATE_NAME)
+        # before any work starts, and a task run again after its worker died (a local pool's
+        # retry, a cluster's rescheduling) finds what the lost worker renamed into place.
+        tasks.append({"source": e["source"], "output": rel_out, "source_path": src_path,
+                      "output_path": out_path, "seed": seed, "settings": task_settings,
+                      "overwrite": True, "expect_sha256": expect,
+                      "reason": reason, "note": e["note"], "size": e["size"],
+                      "previous": prev if expect else None})
+    info = {"entries": len(entries), "excluded": excluded, "claims": claims}
+    return tasks, parent_events, info
+
+
+def choose_run_seed(settings, dst):
+    from requant.dsp.quantizer import new_seed
+
+    if settings["seed"] is not None:
+        return int(settings["seed"]), "given"
+    prev = read_state(dst).get("run_seed")
+    if isinstance(prev, int) and not isinstance(prev, bool) and 0 <= prev <= SEED_MAX:
+        return prev, "previous run"
+    return new_seed(), "fresh"
+
+
+def take_lock(dst):
+    import fcntl
+
+    path = os.path.join(dst, LOCK_NAME)
+    try:
+        fd = os.open(path, os.O_RDWR | os.O_CREAT, 0o644)
+    except OSError as exc:
+        raise OutputError(f"cannot write in the destination {dst!r} ({exc.strerror or exc}); "
+                          "choose a writable folder") from None
+    deadline = time.monotonic() + 3.0  # workers of a killed run may still be cleaning up
+    while True:
+        try:
+            fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+            return fd
+        except OSError:
+            if time.monotonic() > deadline:
+                os.close(fd)
+                raise UsageError(f"another requant batch is writing to {dst!r}; wait for it to "
+                                 "finish or choose another destination") from None
+            time.sleep(0.05)
+
+
+def plan_dry_run(src, dst, settings, *, prune, overwrite, reporter):
+    events = read_manifest(os.path.join(dst, MANIFEST_NAME))[0] if os.path.isdir(dst) else []
+    run_seed, origin = choose_run_seed(settings, dst)
+    if origin == "fresh":  # the real run draws its own
+        run_seed = None
+    sid = settings_id(settings, run_seed if run_seed is not None else 0)
+    tasks, parent_events, info = plan_tasks(src, dst, settings, prune=prune, run_seed=run_seed or 0,
+                                       sid=sid, overwrite=overwrite, events=events)
+    from requant.audio_io.reader import open_input
+
+    items = []
+    for ev in parent_events:
+        items.append({"source": ev["source"], "output": ev.get("output"),
+                      "action": "fail" if ev["status"] == "failed" else "skip",
+                      "reason": ev.get("error") or ev.get("reason")})
+    for t in tasks:
+        action, reason = "convert", t["reason"]
+        if t["expect_sha256"] and os.path.isfile(t["output_path"]):
+            if sha256_file(t["output_path"]) == t["expect_sha256"]:
+                action, reason = "skip", "up to date"
+            else:
+                reason = "output changed since it was written"
+        if action == "convert":
+            try:
+                open_input(t["source_path"]).close()
+            except RequantError as exc:
+                action, reason = "fail", str(exc)
+        if action == "convert" and t["note"]:
+            reason = f"{reason}; {t['note']}"
+        items.append({"source": t["source"], "output": t["output"], "action": action,
+                      "reason": reason})
+    items.sort(key=lambda d: d["source"])
+    counts = {k: sum(1 for i in items if i["action"] == k) for k in ("convert", "skip", "fail")}
+    result = {"dry_run": True, "src": src, "dst": dst, "items": items, "counts": counts,
+              "excluded": info["excluded"], "run_seed": run_seed, "seed_origin": origin,
+              "settings": public_settings(settings), "settings_id": sid if run_seed else None}
+    reporter.finished(result)
+    return result
+
+

@@ -1,0 +1,220 @@
+"""One file of a batch: :func:`convert_task`, plain dict in, plain dict (an event) out.
+
+It never raises for a bad file: it returns ``status: failed`` with the one-line
+message the user sees, so any executor can run it, in this process, in a worker
+process or on a cluster.
+"""
+
+import datetime as _dt
+import os
+import socket
+import sys
+import time
+
+from requant.errors import InputError, OutputError, RequantError
+from requant.audio_io.metadata import CarryMetadata, is_riff_wave, source_tags
+from requant.library.executors.base import WORKER, Terminated
+from requant.library.manifest import sha256_file
+
+__all__ = ["convert_task", "task_payloads", "now_iso", "worker_label"]
+
+
+HOST = socket.gethostname()
+
+
+def now_iso():
+    return _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="milliseconds")
+
+
+def worker_label():
+    return f"{HOST}:{os.getpid()}"
+
+
+def _classify(report, meta):
+    """Warning kinds of a converted file, from its report and metadata record."""
+    m = report["measured"]
+    kinds = []
+    if m.get("clipped_samples") or m.get("over_full_scale_samples"):
+        kinds.append("clipping")
+    s, out = report["settings"], report["output"]
+    if "signal_correlated" in m:  # measured (analyze=True)
+        if m["signal_correlated"]:
+            kinds.append("correlated-error")
+    elif s.get("dither_applied") == "none" and not out.get("passthrough") and out["bits"] < 24:
+        kinds.append("correlated-error")  # by rule: undithered requantization
+    tp = m.get("output_true_peak_dbtp")
+    if tp is not None and tp > 0.0:
+        kinds.append("true-peak")
+    if m.get("shaping_overloads"):
+        kinds.append("shaping-overload")
+    if m.get("error_peak_dbfs") is not None and m["error_peak_dbfs"] > -20.0:
+        kinds.append("loud-error")
+    if meta.get("dropped"):
+        kinds.append("metadata-dropped")
+    if meta.get("error"):
+        kinds.append("metadata-error")
+    return kinds
+
+
+def _figures(report):
+    m, p, i, o, s = (report["measured"], report["predicted"], report["input"], report["output"],
+                     report["settings"])
+    return {
+        "sample_rate": i["sample_rate"], "channels": i["channels"], "frames": i["frames"],
+        "input_format": i["format"], "input_subtype": i["subtype"],
+        "output_format": o["format"], "output_subtype": o["subtype"], "bits": o["bits"],
+        "passthrough": o["passthrough"], "dither_applied": s["dither_applied"],
+        "shaping": s["shaping"],
+        "snr_predicted_db": p.get("snr_db"),
+        "error_power_lsb2": m.get("error_power_lsb2"),
+        "error_power_predicted_lsb2": p.get("error_power_lsb2"),
+        "error_peak_dbfs": m.get("error_peak_dbfs"),
+        "signal_rms_dbfs": m.get("signal_rms_dbfs"),
+        "clipped_samples": m.get("clipped_samples"),
+        "over_full_scale_samples": m.get("over_full_scale_samples"),
+        "shaping_overloads": m.get("shaping_overloads"),
+        "correlated_error_fraction": m.get("correlated_error_fraction"),
+        "a_weighted_noise_dbfs": m.get("a_weighted_noise_dbfs"),
+        "a_weighted_noise_predicted_dbfs": p.get("a_weighted_noise_dbfs"),
+        "output_true_peak_dbtp": m.get("output_true_peak_dbtp"),
+    }
+
+
+def _convert_one(task):
+    from requant.audio_io.atomic import pending_path
+    from requant.convert import convert_file
+    from requant.audio_io.formats import format_for_path
+
+    src, out = task["source_path"], task["output_path"]
+    for path in (src, out):
+        try:
+            path.encode(sys.getfilesystemencoding())
+        except UnicodeEncodeError:
+            raise InputError(f"{path!r}: the name is not valid {sys.getfilesystemencoding()}, "
+                             "so the audio library cannot open it; rename the file") from None
+    expect = task.get("expect_sha256")
+    reason = task.get("reason")
+    if expect and os.path.isfile(out) and not os.path.islink(out):
+        digest = sha256_file(out)
+        if digest == expect:
+            return {"status": "skipped", "reason": "up to date", "output_sha256": digest}
+        reason = "output changed since it was written"
+    folder = os.path.dirname(out)
+    try:
+        if not os.path.isdir(folder):
+            os.makedirs(folder, exist_ok=True)
+    except OSError as exc:
+        raise OutputError(f"cannot create the folder {folder!r} ({exc.strerror or exc}); check "
+                          "that the destination is writable") from None
+    if not task["overwrite"] and os.path.lexists(out):
+        raise OutputError(f"{out!r} already exists and was not written by requant batch; "
+                          "move it away or pass --overwrite to replace it")
+    s = task["settings"]
+    out_fmt = format_for_path(out)
+    is_wav = is_riff_wave(src)
+    tags = {} if (out_fmt == "WAV" and is_wav) else source_tags(src)
+    fin = CarryMetadata(src, out, s, tags, is_wav)
+    report = convert_file(src, out, bits=s["bits"], quantizer=s["quantizer"], dither=s["dither"],
+                          shaping=s["shaping"], shaping_order=s["shaping_order"],
+                          shaping_limit_db=s["shaping_limit_db"], seed=task["seed"],
+                          overwrite=task["overwrite"], force_dither=s["force_dither"],
+                          block_frames=s["block_frames"], tags=tags or None, finalize=fin,
+                          analyze=s["analyze"])
+    meta = report["output"].get("metadata") or {}
+    warnings = list(report["warnings"])
+    kinds = _classify(report, meta)
+    if "correlated-error" in kinds and "signal_correlated" not in report["measured"]:
+        warnings.append("Without dither the error follows the signal (signal-correlated error); "
+                        "add dither, or measure it with --analyze.")
+    if meta.get("dropped") and out_fmt != "WAV":
+        warnings.append(f"the WAV chunks {', '.join(repr(c) for c in meta['dropped'])} cannot be "
+                        f"stored in {out_fmt} and were dropped; choose --format wav to keep them")
+    if meta.get("error"):
+        warnings.append(meta["error"])
+    notes = list(report["notes"])
+    if task.get("note"):
+        notes.append(task["note"])
+    return {
+        "status": "converted",
+        "reason": reason,
+        "output_sha256": sha256_file(pending_path(out)),  # a CommitGroup may hold it
+        "snr_db": report["measured"]["snr_db"],
+        "duration_s": report["input"]["duration_s"],
+        "warnings": warnings,
+        "warning_kinds": kinds,
+        "notes": notes,
+        "metadata": meta,
+        "figures": _figures(report),
+    }
+
+
+def convert_task(task):
+    """Convert one file of a batch; never raises for a bad file.
+
+    Parameters
+    ----------
+    task : dict
+        Plain data: ``source``/``output`` (relative, POSIX), ``source_path``
+        and ``output_path`` (absolute str), ``seed`` (int), ``settings``
+        (dict), ``overwrite`` (bool), ``expect_sha256`` (str or None: skip
+        when the output still has this hash), ``reason`` and ``note``
+        (str or None).
+
+    Returns
+    -------
+    dict
+        An event: ``source``, ``output``, ``status`` (``converted``,
+        ``skipped``, ``failed``, or ``interrupted`` when a worker was asked
+        to stop), ``error`` (the one-line message), ``seed``, ``seconds``,
+        ``worker`` (host:pid) and, when converted, ``output_sha256``,
+        ``snr_db``, ``duration_s``, ``warnings``, ``warning_kinds``,
+        ``notes``, ``metadata`` and ``figures``.
+
+    Notes
+    -----
+    In a worker process (set up by :class:`ProcessExecutor`), SIGINT stops
+    the conversion in progress (its temporary files are removed) and the
+    event says ``interrupted``; in the calling process KeyboardInterrupt
+    propagates as usual.
+    """
+    t0 = time.perf_counter()
+    base = {"source": task["source"], "output": task["output"], "seed": task["seed"]}
+    st = WORKER
+    st["in_task"], st["interrupted"] = True, False
+    try:
+        try:
+            event = _convert_one(task)
+        finally:
+            st["in_task"] = False
+    except KeyboardInterrupt:
+        if not st["worker"]:
+            raise
+        event = {"status": "interrupted", "error": "interrupted before it finished"}
+    except Terminated:
+        os._exit(143)  # convert_file has removed its temporary files on the way out
+    except RequantError as exc:
+        event = {"status": "failed", "error": str(exc)}
+    except MemoryError:
+        event = {"status": "failed", "error": f"{task['source_path']!r} ran out of memory; "
+                                              "use fewer --jobs"}
+    except Exception as exc:  # a bug or an unforeseen library error: isolate it
+        event = {"status": "failed",
+                 "error": f"{task['source_path']!r} failed with an unexpected "
+                          f"{type(exc).__name__} ({exc}); the batch went on; please report "
+                          "this with the file"}
+    base.update(event)
+    base["seconds"] = time.perf_counter() - t0
+    base["worker"] = worker_label()
+    return base
+
+
+TASK_KEYS = ("source", "output", "source_path", "output_path", "seed", "settings", "overwrite",
+              "expect_sha256", "reason", "note", "size")
+
+
+def task_payloads(tasks):
+    """Only the plain data a worker needs (no previous event)."""
+    for t in tasks:
+        yield {k: t[k] for k in TASK_KEYS}
+
+
