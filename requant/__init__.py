@@ -8,10 +8,15 @@ The public names are re-exported lazily (PEP 562), so ``import requant`` and
 [0.5, -0.5]
 """
 
-__version__ = "0.1.0"
+__version__ = "0.2.0"
+
+from requant._lazy import lazy_exports
 
 _EXPORTS = {
+    "Recipe": "requant.recipe",
+    "Shaping": "requant.recipe",
     "convert_file": "requant.convert",
+    "Outputs": "requant.convert",
     "Requantizer": "requant.dsp.quantizer",
     "requantize": "requant.dsp.quantizer",
     "predicted_error_power_lsb2": "requant.dsp.quantizer",
@@ -19,8 +24,11 @@ _EXPORTS = {
     "design_hearing": "requant.dsp.shaping",
     "resolve_shaping": "requant.dsp.shaping",
     "analyze_arrays": "requant.dsp.analysis",
-    "run_batch": "requant.library",
-    "make_listening_kit": "requant.listen",
+    "BatchSettings": "requant.library.settings",
+    "resolve_settings": "requant.library.settings",
+    "run_batch": "requant.library.run",
+    "make_listening_kit": "requant.listening.kit",
+    "Excerpt": "requant.listening.excerpt",
     "RequantError": "requant.errors",
     "UsageError": "requant.errors",
     "InputError": "requant.errors",
@@ -28,18 +36,4 @@ _EXPORTS = {
 }
 
 __all__ = ["__version__", *_EXPORTS]
-
-
-def __getattr__(name):
-    module = _EXPORTS.get(name)
-    if module is None:
-        raise AttributeError(f"module 'requant' has no attribute {name!r}")
-    import importlib
-
-    value = getattr(importlib.import_module(module), name)
-    globals()[name] = value
-    return value
-
-
-def __dir__():
-    return sorted(__all__)
+__getattr__, __dir__ = lazy_exports(__name__, _EXPORTS)

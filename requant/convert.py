@@ -1,444 +1,379 @@
-"""Streaming file conversion: read blocks, requantize, write codes, error
-signal and report.
+"""Convert one file: read blocks, requantize, write codes, the error signal and reports.
 
-Memory stays flat: one block buffer is reused for the whole file. Outputs
-are written to temporary files and renamed at the end (:mod:`requant.audio_io.atomic`),
-so a failed or interrupted run leaves nothing partial behind.
+:func:`convert_file` takes a :class:`~requant.recipe.Recipe` (what decides the
+output bits) and an :class:`Outputs` (where and how they are written). Memory
+stays flat: a handful of block buffers is reused for the whole file. Outputs
+are written to temporary files and renamed at the end
+(:mod:`requant.audio_io.atomic`), so a failed or interrupted run leaves nothing
+partial behind.
+
+The steps, in order: :func:`_targets` checks every output before anything is
+read; :func:`_open_source` reads the input's facts; :func:`_requantizer`
+resolves the shaping for the file's rate and decides whether the input is
+already on the target grid; :func:`_stream` runs the blocks through the
+requantizer and the writers (and the analyzer, when a report wants it);
+:func:`requant.report.build.build_report` turns the running sums into the
+report; :func:`_finish` carries metadata, writes the reports and commits.
 """
 
-import datetime as _dt
-import math
+from __future__ import annotations
+
 import os
 import sys
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 
-from requant import __version__
 from requant.audio_io.atomic import AtomicOutputs, check_outputs
+from requant.audio_io.formats import (DEFAULT_BLOCK_FRAMES, MAX_BLOCK_FRAMES, RF64_THRESHOLD,
+                                      check_block_frames, container_bits_of, format_for_path,
+                                      read_dtype_for, subtype_for)
 from requant.audio_io.reader import BlockReader, first_nonfinite, on_grid, open_input, read_blocks
 from requant.audio_io.writers import BlockWriter, SyncWriter, open_output, wrap_write_error
+from requant.dsp.quantizer import Requantizer, new_seed
+from requant.dsp.shaping import coefficients_for
 from requant.errors import InputError, UsageError
-from requant.audio_io.formats import (RF64_THRESHOLD, container_bits_of, format_for_path, read_dtype_for,
-                      subtype_for)
-from requant.dsp.figures import measured_figures, predicted_figures
-from requant.dsp.quantizer import Requantizer, check_settings, new_seed, predicted_error_power_lsb2
+from requant.recipe import Recipe
+from requant.report.build import build_report, merge_analysis
 
-__all__ = ["convert_file", "resolve_shaping_spec", "DEFAULT_BLOCK_FRAMES"]
-
-DEFAULT_BLOCK_FRAMES = 65536
+__all__ = ["convert_file", "Outputs", "DEFAULT_BLOCK_FRAMES", "MAX_BLOCK_FRAMES",
+           "check_block_frames"]
 
 _ERROR_FORMATS = {".wav": "WAV", ".wave": "WAV", ".aif": "AIFF", ".aiff": "AIFF", ".aifc": "AIFF"}
 _REPORT_KINDS = (".json", ".html", ".htm", ".md")
 
 
-def resolve_shaping_spec(spec, sample_rate, *, order=None, limit_db=None):
-    """Turn a shaping spec into (name, coefficients).
+@dataclass(frozen=True)
+class Outputs:
+    """Where and how a conversion writes; nothing here changes the output codes.
 
-    ``spec`` is 'none', 'first-order', 'hearing', a JSON file of coefficients
-    or a comma list. Everything but 'none' is handled by
-    :mod:`requant.dsp.shaping` (imported only when needed).
+    Parameters
+    ----------
+    error : path, optional
+        Write the error signal (output minus input) as 32-bit float, ``.wav``
+        or ``.aiff``.
+    report : path or sequence of paths, optional
+        Write the report: ``.json``, ``.html`` (one self-contained page) or
+        ``.md`` (pictures beside it); several paths write several forms.
+    overwrite : bool, default False
+        Replace existing outputs (never the input, not even through a link).
+    container : {'WAV', 'FLAC', 'AIFF'}, optional
+        The output container; default: from the output's extension.
+    metadata : bool, default False
+        Carry the source's metadata over: a WAV's chunks into a WAV output
+        (``bext`` with a coding-history row appended), text tags into FLAC and
+        AIFF; what cannot be carried is listed in the report.
     """
-    if spec is None or spec == "none":
-        return "none", np.zeros(0)
-    from requant.dsp import shaping
 
-    kwargs = {}
-    if order is not None:
-        kwargs["order"] = order
-    if limit_db is not None:
-        kwargs["max_gain_db"] = limit_db
-    name, h = shaping.resolve_shaping(spec, sample_rate, **kwargs)
-    return name, np.asarray(h, dtype=np.float64)
+    error: str | os.PathLike | None = None
+    report: str | os.PathLike | Sequence[str | os.PathLike] | None = None
+    overwrite: bool = False
+    container: str | None = None
+    metadata: bool = False
+
+    @property
+    def reports(self) -> tuple[str, ...]:
+        """The report paths, as strings."""
+        if self.report is None:
+            return ()
+        if isinstance(self.report, (str, os.PathLike)):
+            return (os.fspath(self.report),)
+        return tuple(os.fspath(p) for p in self.report)
 
 
-def convert_file(in_path, out_path, *, bits=16, quantizer="round", dither="tpdf", shaping="none",
-                 shaping_order=None, shaping_limit_db=None, seed=None, error_path=None,
-                 report_path=None, overwrite=False, force_dither=False,
-                 block_frames=DEFAULT_BLOCK_FRAMES, out_format=None, progress=None, tags=None,
-                 finalize=None, analyze=None, keep_analyzer=False):
+@dataclass(frozen=True)
+class _Targets:
+    """Every output of one conversion, checked before anything is read."""
+
+    src: str
+    dst: str
+    fmt: str
+    subtype: str
+    error: str | None
+    error_fmt: str | None
+    reports: tuple[str, ...]
+
+
+@dataclass(frozen=True)
+class _Source:
+    """The input's facts, from its header."""
+
+    rate: int
+    channels: int
+    frames: int
+    subtype: str
+    format: str
+    dtype: str
+
+
+def _targets(src, dst, recipe, outputs):
+    """Check names, formats and clashes of every output; nothing is written yet."""
+    src, dst = os.fspath(src), os.fspath(dst)
+    fmt = outputs.container or format_for_path(dst)
+    subtype = subtype_for(fmt, recipe.bits)
+    error = err_fmt = None
+    if outputs.error is not None:
+        error = os.fspath(outputs.error)
+        err_fmt = _ERROR_FORMATS.get(os.path.splitext(error)[1].lower())
+        if err_fmt is None:
+            raise UsageError(f"{error!r}: the error signal is 32-bit float; name it .wav or .aiff")
+    reports = outputs.reports
+    pictures = []
+    for path in reports:
+        if os.path.splitext(path)[1].lower() not in _REPORT_KINDS:
+            raise UsageError(f"{path!r}: name the report .json, .html or .md")
+        if path.lower().endswith(".md"):
+            from requant.report.render import picture_paths
+
+            pictures.extend(picture_paths(path).values())
+    check_outputs([src], [dst, error, *reports, *pictures], overwrite=outputs.overwrite)
+    return _Targets(src, dst, fmt, subtype, error, err_fmt, reports)
+
+
+def _open_source(f):
+    return _Source(rate=f.samplerate, channels=f.channels, frames=f.frames, subtype=f.subtype,
+                   format=f.format, dtype=read_dtype_for(f.subtype))
+
+
+def _requantizer(f, source, recipe, targets, block_frames):
+    """The requantizer for this file, its coefficients, and whether the input is on the grid.
+
+    Input already on the target grid (and in range) is written unchanged: no
+    dither, no shaping, unless the recipe forces dither.
+    """
+    coeffs = coefficients_for(recipe.shaping, source.rate)
+    scale = float(2 ** (recipe.bits - 1))
+    passthrough = (not recipe.force_dither) and source.frames > 0 and on_grid(
+        f, dtype=source.dtype, scale=scale, kmin=-(2 ** (recipe.bits - 1)),
+        kmax=2 ** (recipe.bits - 1) - 1, block_frames=min(block_frames, 65536),
+        subtype=source.subtype)
+    applied = recipe.replace(dither="none", shaping="none") if passthrough else recipe
+    rq = Requantizer.from_recipe(applied, source.channels,
+                                 coeffs=np.zeros(0) if passthrough else coeffs,
+                                 container_bits=container_bits_of(targets.subtype))
+    return rq, coeffs, passthrough
+
+
+def _containers(source, targets, rq):
+    """WAV outputs too large for RIFF's 32-bit sizes become RF64 (EBU Tech 3306)."""
+    cbytes = container_bits_of(targets.subtype) // 8
+    out_fmt = targets.fmt
+    if out_fmt == "WAV" and source.frames * source.channels * cbytes > RF64_THRESHOLD:
+        out_fmt = "RF64"
+    e_fmt = targets.error_fmt
+    if e_fmt == "WAV" and source.frames * source.channels * 4 > RF64_THRESHOLD:
+        e_fmt = "RF64"
+    return out_fmt, e_fmt
+
+
+def _open_files(outs, source, targets, out_fmt, e_fmt, tags):
+    """The output and error files, as temporaries of ``outs``."""
+    import soundfile as sf
+
+    tmp_out = outs.path_for(targets.dst)
+    tmp_err = outs.path_for(targets.error) if targets.error else None
+    try:
+        wout = open_output(tmp_out, source.rate, source.channels, targets.subtype, out_fmt,
+                           plain=not tags)
+    except (sf.LibsndfileError, RuntimeError, OSError) as exc:
+        raise wrap_write_error(exc, targets.dst) from None
+    try:
+        werr = (open_output(tmp_err, source.rate, source.channels, "FLOAT", e_fmt, plain=True)
+                if tmp_err else None)
+    except (sf.LibsndfileError, RuntimeError, OSError) as exc:
+        wout.close()
+        raise wrap_write_error(exc, targets.error) from None
+    for key, value in (tags or {}).items():
+        try:
+            setattr(wout, key, value)
+        except (sf.LibsndfileError, RuntimeError, AttributeError, TypeError):
+            pass
+    return tmp_out, [wout] if werr is None else [wout, werr]
+
+
+def _analyzer(rq, source, applied_dither, coeffs, block_frames):
+    """The report's streaming analysis and the writer's consumer that feeds it."""
+    from requant.dsp.analysis import ErrorAnalyzer
+
+    analyzer = ErrorAnalyzer(source.channels, source.rate, bits=rq.bits, quantizer=rq.quantizer,
+                             dither=applied_dither, coeffs=coeffs, total_frames=source.frames,
+                             own_sums=False)
+
+    def consumer(bufs, n):
+        analyzer.feed(bufs[2][:n], bufs[1][:n])
+
+    return analyzer, consumer
+
+
+def _stream(f, rq, files, *, source, targets, analysis, block_frames, progress):
+    """Run every block through the requantizer and the writers; return the frames done.
+
+    ``analysis`` is ``(analyzer, consumer)`` or None. One-block files are done
+    inline (threads would cost more than they save); longer ones overlap
+    reading, requantizing and writing on three threads.
+    """
+    import soundfile as sf
+
+    nch = source.channels
+    layouts = [((block_frames, nch), rq.code_dtype), ((block_frames, nch), np.float32)]
+    consumer = None
+    if analysis is not None:
+        consumer = analysis[1]
+        layouts.append(((block_frames, nch), source.dtype))
+    else:
+        layouts = layouts[:len(files)]
+    want_err = len(files) > 1 or analysis is not None
+    if source.frames <= block_frames:
+        writer = SyncWriter(files, layouts, consumer=consumer)
+        blocks = read_blocks(f, block_frames, source.dtype)
+    else:
+        # the analysis thread runs in bursts (true peak); deeper queues keep the
+        # kernel from waiting on it: report vs none 1.49x -> 1.45x (median of 7)
+        writer = BlockWriter(files, layouts, depth=4 if consumer else 2, consumer=consumer)
+        blocks = None
+    done = 0
+    try:
+        f.seek(0)
+        for start, x in blocks or BlockReader(f, block_frames, source.dtype):
+            n = x.shape[0]
+            bufs = writer.buffers()
+            rq.process(x, codes=bufs[0], error=want_err, err_out=bufs[1] if want_err else None)
+            if analysis is not None:
+                bufs[2][:n] = x
+            if rq.acc[:, 6].any():
+                frame, ch, kind = first_nonfinite(x, start)
+                raise InputError(f"{targets.src!r} has a {kind} sample at {frame / source.rate:.6f} "
+                                 f"s (frame {frame}, channel {ch + 1}); repair the source and run "
+                                 "again")
+            writer.submit(bufs, n)
+            done += n
+            if progress is not None:
+                progress(done, source.frames)
+        writer.close()
+    except (sf.LibsndfileError, RuntimeError, OSError) as exc:
+        raise wrap_write_error(exc, targets.dst) from None
+    finally:
+        _close_quietly(writer, files, targets)
+    return done
+
+
+def _close_quietly(writer, files, targets):
+    """Close the writer and files; a close that fails matters only if nothing else did."""
+    import soundfile as sf
+
+    try:
+        writer.close()
+    except BaseException:
+        pass
+    try:
+        for fh in files:
+            fh.close()
+    except (sf.LibsndfileError, RuntimeError, OSError) as exc:
+        if sys.exc_info()[0] is None:
+            raise wrap_write_error(exc, targets.dst) from None
+
+
+def _metadata_carrier(src, dst, recipe, fmt):
+    """(tags to write, finalize callback) when carrying the source's metadata."""
+    from requant.audio_io.metadata import CarryMetadata, is_riff_wave, source_tags
+
+    is_wav = is_riff_wave(src)
+    tags = {} if (fmt == "WAV" and is_wav) else source_tags(src)
+    return tags, CarryMetadata(src, dst, recipe, tags, is_wav)
+
+
+def convert_file(src, dst, recipe: Recipe | None = None, *, outputs: Outputs | None = None,
+                 block_frames: int = DEFAULT_BLOCK_FRAMES, analyze: bool | None = None,
+                 progress: Callable[[int, int], Any] | None = None) -> dict:
     """Requantize one audio file.
 
     Parameters
     ----------
-    in_path : path
+    src : path
         Any file libsndfile reads: integer or float, any channels and rate.
-    out_path : path
+    dst : path
         The container follows the extension (.wav, .flac, .aiff) unless
-        ``out_format`` is given.
-    bits : int, 1..32, default 16
-        Target word length.
-    quantizer : {'round', 'truncate'}, default 'round'
-    dither : {'none', 'rpdf', 'tpdf', 'tpdf-hp'}, default 'tpdf'
-    shaping : str, default 'none'
-        'none', 'first-order', 'hearing', a JSON file or a comma list of h_k.
-    shaping_order, shaping_limit_db : int, float, optional
-        Order and total-gain limit (dB) of the 'hearing' design.
-    seed : int, optional
-        Without it a fresh seed is drawn; it is recorded in the report.
-    error_path : path, optional
-        Write the error signal (output minus input) as 32-bit float.
-    report_path : path, optional
-        Write the report as JSON.
-    overwrite : bool, default False
-        Replace existing outputs (never the input).
-    force_dither : bool, default False
-        Dither even when the input already lies on the target grid.
-    block_frames : int, default 65536
+        ``outputs.container`` is given.
+    recipe : Recipe, optional
+        What decides the output bits (default ``Recipe()``: 16 bits, round,
+        TPDF, no shaping). Without a seed, a fresh one is drawn and recorded in
+        the report.
+    outputs : Outputs, optional
+        Error signal, reports, overwrite, container, metadata.
+    block_frames : int, 1..4194304, default 65536
         Frames per block; the output does not depend on it.
-    out_format : {'WAV', 'FLAC', 'AIFF'}, optional
-    progress : callable(frames_done, frames_total), optional
-    tags : dict, optional
-        Text tags to store (soundfile's names: title, artist, comment, ...).
-    finalize : callable(tmp_output_path, output_format, report) -> dict or None, optional
-        Called on the finished temporary output before it is renamed into
-        place (batch uses it to copy WAV chunks). Its dict goes into
-        ``report['output']['metadata']``. An exception aborts the conversion
-        and leaves nothing behind.
     analyze : bool, optional
-        Measure weighted noise, error spectrum, signal-correlated error,
-        the quietest passage and true peak (:mod:`requant.dsp.analysis`).
+        Measure weighted noise, error spectrum, signal-correlated error, the
+        quietest passage and true peak (:mod:`requant.dsp.analysis`).
         Default: when a report is written.
-    keep_analyzer : bool, default False
-        Put the :class:`~requant.dsp.analysis.ErrorAnalyzer` (with the arrays the
-        pictures need) in ``report['_analyzer']``; callers remove it before
-        writing JSON.
+    progress : callable(frames_done, frames_total), optional
 
     Returns
     -------
     dict
-        The report (see README, "The report").
+        The report (docs/theory.md, "The report").
 
     Raises
     ------
     UsageError, InputError, OutputError
         With a one-sentence message saying what to do.
     """
-    import soundfile as sf
+    import soundfile as sf  # noqa: F401  (fail here, not half-way, if it is missing)
 
-    check_settings(bits, quantizer, dither)
-    if isinstance(block_frames, bool) or not isinstance(block_frames, int) or block_frames < 1:
-        raise UsageError(f"block_frames={block_frames!r} must be a positive integer")
-    in_path = os.fspath(in_path)
-    out_path = os.fspath(out_path)
-    fmt = out_format or format_for_path(out_path)
-    subtype = subtype_for(fmt, bits)
-    err_fmt = None
-    if error_path is not None:
-        error_path = os.fspath(error_path)
-        ext = os.path.splitext(error_path)[1].lower()
-        if ext not in _ERROR_FORMATS:
-            raise UsageError(f"{error_path!r}: the error signal is 32-bit float; name it .wav or .aiff")
-        err_fmt = _ERROR_FORMATS[ext]
-    if report_path is not None:
-        report_path = os.fspath(report_path)
-        if os.path.splitext(report_path)[1].lower() not in _REPORT_KINDS:
-            raise UsageError(f"{report_path!r}: name the report .json, .html or .md")
-    extra = []
-    if report_path is not None and report_path.lower().endswith(".md"):
-        from requant.report.render import picture_paths
-
-        extra = list(picture_paths(report_path).values())
-    check_outputs([in_path], [out_path, error_path, report_path, *extra], overwrite=overwrite)
-    seed = new_seed() if seed is None else int(seed)
-
-    with open_input(in_path) as f:
-        rate, nch, frames = f.samplerate, f.channels, f.frames
-        in_subtype, in_format = f.subtype, f.format
-        shaping_name, coeffs = resolve_shaping_spec(shaping, rate, order=shaping_order,
-                                                    limit_db=shaping_limit_db)
-        dtype = read_dtype_for(in_subtype)
-        scale = float(2 ** (bits - 1))
-        kmin, kmax = -(2 ** (bits - 1)), 2 ** (bits - 1) - 1
-        passthrough = (not force_dither) and frames > 0 and on_grid(
-            f, dtype=dtype, scale=scale, kmin=kmin, kmax=kmax,
-            block_frames=min(block_frames, 65536), subtype=in_subtype)
-        eff_dither, eff_coeffs = ("none", np.zeros(0)) if passthrough else (dither, coeffs)
-        cbits = container_bits_of(subtype)
-        rq = Requantizer(nch, bits=bits, quantizer=quantizer, dither=eff_dither, coeffs=eff_coeffs,
-                         seed=seed, container_bits=cbits)
-        out_fmt = fmt
-        if fmt == "WAV" and frames * nch * (cbits // 8) > RF64_THRESHOLD:
-            out_fmt = "RF64"
-        e_fmt = err_fmt
-        if err_fmt == "WAV" and frames * nch * 4 > RF64_THRESHOLD:
-            e_fmt = "RF64"
-
+    recipe = Recipe() if recipe is None else recipe
+    if not isinstance(recipe, Recipe):
+        raise TypeError(f"recipe must be a requant.Recipe, not {type(recipe).__name__}")
+    outputs = Outputs() if outputs is None else outputs
+    check_block_frames(block_frames)
+    targets = _targets(src, dst, recipe, outputs)
+    if recipe.seed is None:
+        recipe = recipe.with_seed(new_seed())
+    if analyze is None:
+        analyze = bool(targets.reports)
+    with open_input(targets.src) as f:
+        source = _open_source(f)
+        rq, coeffs, passthrough = _requantizer(f, source, recipe, targets, block_frames)
+        out_fmt, e_fmt = _containers(source, targets, rq)
+        tags, finalize = (_metadata_carrier(targets.src, targets.dst, recipe, targets.fmt)
+                          if outputs.metadata else (None, None))
         outs = AtomicOutputs()
         try:
-            tmp_out = outs.path_for(out_path)
-            tmp_err = outs.path_for(error_path) if error_path else None
-            try:
-                wout = open_output(tmp_out, rate, nch, subtype, out_fmt, plain=not tags)
-                werr = (open_output(tmp_err, rate, nch, "FLOAT", e_fmt, plain=True)
-                        if tmp_err else None)
-            except (sf.LibsndfileError, RuntimeError, OSError) as exc:
-                raise wrap_write_error(exc, out_path) from None
-            for key, value in (tags or {}).items():
-                try:
-                    setattr(wout, key, value)
-                except (sf.LibsndfileError, RuntimeError, AttributeError, TypeError):
-                    pass
-            files = [wout] if werr is None else [wout, werr]
-            if analyze is None:
-                analyze = report_path is not None
-            analyzer = consumer = None
-            layouts = [((block_frames, nch), rq.code_dtype), ((block_frames, nch), np.float32)]
-            if analyze:
-                from requant.dsp.analysis import ErrorAnalyzer
-
-                analyzer = ErrorAnalyzer(nch, rate, bits=bits, quantizer=quantizer,
-                                         dither=eff_dither, coeffs=eff_coeffs,
-                                         total_frames=frames, own_sums=False)
-                layouts.append(((block_frames, nch), dtype))
-
-                def consumer(bufs, n):
-                    analyzer.feed(bufs[2][:n], bufs[1][:n])
-            else:
-                layouts = layouts[:len(files)]
-            want_err = werr is not None or analyzer is not None
-            short = frames <= block_frames
-            if short:  # one block: threads would cost more than they save
-                writer = SyncWriter(files, layouts, consumer=consumer)
-                blocks = read_blocks(f, block_frames, dtype)
-            else:
-                # the analysis thread runs in bursts (true peak); deeper queues keep the
-                # kernel from waiting on it: report vs none 1.49x -> 1.45x (median of 7)
-                writer = BlockWriter(files, layouts, depth=4 if consumer else 2,
-                                     consumer=consumer)
-                blocks = None
-            done = 0
-            try:
-                f.seek(0)
-                for start, x in blocks or BlockReader(f, block_frames, dtype):
-                    n = x.shape[0]
-                    bufs = writer.buffers()
-                    rq.process(x, codes=bufs[0], error=want_err,
-                               err_out=bufs[1] if want_err else None)
-                    if analyzer is not None:
-                        bufs[2][:n] = x
-                    if rq.acc[:, 6].any():
-                        frame, ch, kind = first_nonfinite(x, start)
-                        raise InputError(
-                            f"{in_path!r} has a {kind} sample at {frame / rate:.6f} s "
-                            f"(frame {frame}, channel {ch + 1}); repair the source and run again"
-                        )
-                    writer.submit(bufs, n)
-                    done += n
-                    if progress is not None:
-                        progress(done, frames)
-                writer.close()
-            except (sf.LibsndfileError, RuntimeError, OSError) as exc:
-                raise wrap_write_error(exc, out_path) from None
-            finally:
-                try:
-                    writer.close()
-                except BaseException:
-                    pass
-                try:
-                    wout.close()
-                    if werr is not None:
-                        werr.close()
-                except (sf.LibsndfileError, RuntimeError, OSError) as exc:
-                    if sys.exc_info()[0] is None:
-                        raise wrap_write_error(exc, out_path) from None
-            if done != frames:
-                short_note = (f"{in_path!r} holds {done} frames although its header declares "
-                              f"{frames}; the frames that are there were converted.")
-            else:
-                short_note = None
-            report = _build_report(
-                rq, in_path=in_path, in_format=in_format, in_subtype=in_subtype, rate=rate,
-                frames=done, out_path=out_path, out_format=out_fmt, subtype=subtype, cbits=cbits,
-                error_path=error_path, e_fmt=e_fmt, shaping_name=shaping_name, coeffs=coeffs,
-                dither=dither, passthrough=passthrough, force_dither=force_dither,
-                block_frames=block_frames)
-            if short_note:
-                report["warnings"].append(short_note)
-            if analyzer is not None:
-                t = rq.totals()
-                analyzer.use_sums(sum_x=t["sum_x"], sum_e=t["sum_e"] / rq.scale,
-                                  sum_xe=t["sum_xe"] / rq.scale, sum_x2=t["sum_x2"],
-                                  sum_e2=t["sum_e2"] / rq.scale**2)
-                _merge_analysis(report, analyzer.finish())
-                if keep_analyzer:
-                    report["_analyzer"] = analyzer
-            if finalize is not None:
-                report["output"]["metadata"] = finalize(tmp_out, out_fmt, report)
-            if report_path is not None:
-                from requant.report.write import write_report
-
-                write_report(report, analyzer, report_path, outs)
-            try:
-                outs.commit()
-            except OSError as exc:
-                raise wrap_write_error(exc, out_path) from None
+            tmp_out, files = _open_files(outs, source, targets, out_fmt, e_fmt, tags)
+            analysis = (_analyzer(rq, source, rq.dither, rq.coeffs, block_frames)
+                        if analyze else None)
+            done = _stream(f, rq, files, source=source, targets=targets, analysis=analysis,
+                           block_frames=block_frames, progress=progress)
+            report = build_report(rq, recipe=recipe, coeffs=coeffs, source=source, frames=done,
+                                  targets=targets, out_format=out_fmt, error_format=e_fmt,
+                                  passthrough=passthrough, block_frames=block_frames)
+            _finish(report, rq, analysis, outs, tmp_out=tmp_out, out_fmt=out_fmt,
+                    finalize=finalize, targets=targets)
         except BaseException:
             outs.discard()
             raise
     return report
 
 
-def _merge_analysis(report, res):
-    """Fold the analyzer's figures into the report's sections."""
-    from requant.dsp.analysis import correlated_summary
+def _finish(report, rq, analysis, outs, *, tmp_out, out_fmt, finalize, targets):
+    """Fold in the analysis, carry metadata, write the reports and commit every output."""
+    analyzer = None
+    if analysis is not None:
+        analyzer = analysis[0]
+        t = rq.totals()
+        analyzer.use_sums(sum_x=t["sum_x"], sum_e=t["sum_e"] / rq.scale,
+                          sum_xe=t["sum_xe"] / rq.scale, sum_x2=t["sum_x2"],
+                          sum_e2=t["sum_e2"] / rq.scale**2)
+        merge_analysis(report, analyzer.finish())
+    if finalize is not None:
+        report["output"]["metadata"] = finalize(tmp_out, out_fmt, report)
+    if targets.reports:
+        from requant.report.write import write_report
 
-    report["measured"].update(res["measured"])
-    report["predicted"].update(res["predicted"])
-    if "true_peak" in res:
-        report["measured"]["input_true_peak_dbtp"] = res["true_peak"]["input_dbtp"]
-        report["measured"]["output_true_peak_dbtp"] = res["true_peak"]["output_dbtp"]
-    for c, row in enumerate(res["channels"]):
-        ch = report["channels"][c]
-        ch["measured"]["a_weighted_noise_dbfs"] = row["a"]
-        ch["measured"]["itu468_noise_dbfs"] = row["itu468"]
-        ch["measured"]["correlated_error_fraction"] = max(row["tonal_fraction"],
-                                                          row["correlation_fraction"])
-        ch["measured"]["input_dc_offset"] = res["dc_offset"]["input"][c]
-        ch["measured"]["output_dc_offset"] = res["dc_offset"]["output"][c]
-        if "true_peak" in res:
-            ch["measured"]["input_true_peak_dbtp"] = res["true_peak"]["input_dbtp_per_channel"][c]
-            ch["measured"]["output_true_peak_dbtp"] = res["true_peak"]["output_dbtp_per_channel"][c]
-        ch["predicted"]["a_weighted_noise_dbfs"] = res["predicted"]["a_weighted_noise_dbfs"]
-        ch["predicted"]["itu468_noise_dbfs"] = res["predicted"]["itu468_noise_dbfs"]
-    if report["output"]["passthrough"]:
-        # written unchanged: no error, nothing to predict, nothing to warn about
-        for key in ("a_weighted_noise_dbfs", "itu468_noise_dbfs"):
-            report["predicted"][key] = None
-            for ch in report["channels"]:
-                ch["predicted"][key] = None
-        summary = {"correlated_error_fraction": 0.0, "signal_correlated": False, "warnings": []}
-    else:
-        summary = correlated_summary(res)
-    report["measured"]["correlated_error_fraction"] = summary["correlated_error_fraction"]
-    report["measured"]["signal_correlated"] = summary["signal_correlated"]
-    report["warnings"].extend(summary["warnings"])
-    tp = report["measured"].get("output_true_peak_dbtp")
-    if tp is not None and tp > 0.0:
-        report["warnings"].append(
-            f"The output's true peak is {tp:+.2f} dBTP (above 0 dBTP): converters and lossy "
-            "encoders downstream may clip; lower the gain before delivery."
-        )
-    report["analysis"] = {k: res[k] for k in ("method", "spectrum", "quietest_passage",
-                                              "histogram", "true_peak", "dc_offset") if k in res}
-    report["notes"].extend(_difference_notes(report))
-
-
-def _difference_notes(report):
-    """Why measured and predicted figures differ, when they do (> 0.5 dB)."""
-    m, p = report["measured"], report["predicted"]
-    notes = []
-    if m.get("error_power_lsb2") and p.get("error_power_lsb2"):
-        diff = 10 * math.log10(m["error_power_lsb2"] / p["error_power_lsb2"])
-        if abs(diff) > 0.5:
-            why = []
-            if m.get("clipped_samples"):
-                why.append("clipping adds error the model leaves out")
-            if report["settings"]["dither_applied"] == "none":
-                why.append("without dither the error depends on the signal (the Δ²/12 model "
-                           "assumes a busy signal)")
-            if report["analysis"].get("quietest_passage") is None and m.get("signal_rms_dbfs") is None:
-                why.append("the input is digital silence")
-            if not why:
-                why.append("the signal is too short or too quiet for the statistics")
-            notes.append(f"The measured error power is {diff:+.1f} dB from the prediction: "
-                         + "; ".join(why) + ".")
-    return notes
-
-
-def _build_report(rq, *, in_path, in_format, in_subtype, rate, frames, out_path, out_format,
-                  subtype, cbits, error_path, e_fmt, shaping_name, coeffs, dither, passthrough,
-                  force_dither, block_frames):
-    t = rq.totals()
-    nch = rq.channels
-    power = predicted_error_power_lsb2(rq.quantizer, rq.dither, rq.coeffs)
-    if passthrough:
-        power = 0.0
-    channels = []
-    for c in range(nch):
-        meas = measured_figures(sum_x2=t["sum_x2"][c], sum_e=t["sum_e"][c], sum_e2=t["sum_e2"][c],
-                                frames=frames, scale=rq.scale, clipped=t["clipped"][c],
-                                max_abs_e=t["max_abs_e"][c])
-        pred = predicted_figures(power_lsb2=power, sum_x2=t["sum_x2"][c], frames=frames,
-                                 scale=rq.scale)
-        channels.append({"channel": c + 1, "measured": meas, "predicted": pred})
-    total = measured_figures(sum_x2=float(t["sum_x2"].sum()), sum_e=float(t["sum_e"].sum()),
-                             sum_e2=float(t["sum_e2"].sum()), frames=frames * nch,
-                             scale=rq.scale, clipped=t["clipped"].sum(),
-                             max_abs_e=float(t["max_abs_e"].max()))
-    total["over_full_scale_samples"] = int(t["over_full_scale"].sum())
-    total["shaping_overloads"] = int(t["overloads"].sum())
-    pred_total = predicted_figures(power_lsb2=power, sum_x2=float(t["sum_x2"].sum()),
-                                   frames=frames * nch, scale=rq.scale)
-    warnings, notes = [], []
-    if passthrough:
-        notes.append(
-            f"The input already lies on the {rq.bits}-bit grid: it was written unchanged, "
-            "without dither (pass --force-dither to dither anyway)."
-        )
-    if total["over_full_scale_samples"]:
-        warnings.append(
-            f"{total['over_full_scale_samples']} input samples lie beyond full scale and were "
-            "clipped; lower the gain before requantizing."
-        )
-    if total["clipped_samples"]:
-        warnings.append(
-            f"{total['clipped_samples']} output samples were clipped at the end of the "
-            f"{rq.bits}-bit range; the measured error includes the clipping, so it exceeds "
-            "the prediction. Leave more headroom."
-        )
-    if total["shaping_overloads"]:
-        warnings.append(
-            f"The noise-shaping loop overloaded {total['shaping_overloads']} times (its fed-back "
-            "error was bounded to keep it stable); use more bits, less shaping or more headroom."
-        )
-    if dither == "none" and not passthrough and rq.bits < 24:
-        notes.append(
-            "Without dither the error follows the signal; the predicted Δ²/12 holds only for "
-            "busy signals, not for quiet passages or fades."
-        )
-    peak_db = total["error_peak_dbfs"]
-    if peak_db is not None and peak_db > -20.0:
-        warnings.append(
-            f"The error signal peaks at {peak_db:.1f} dBFS: it is loud; start playback at a low "
-            "level."
-        )
-    return {
-        "requant_version": __version__,
-        "created": _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
-        "settings": {
-            "bits": rq.bits,
-            "quantizer": rq.quantizer,
-            "dither": dither,
-            "dither_applied": rq.dither,
-            "shaping": shaping_name,
-            "shaping_coeffs": [float(v) for v in coeffs],
-            "seed": rq.seed,
-            "force_dither": bool(force_dither),
-            "block_frames": block_frames,
-        },
-        "input": {
-            "path": in_path,
-            "format": in_format,
-            "sample_rate": rate,
-            "channels": nch,
-            "frames": frames,
-            "duration_s": frames / rate if rate else 0.0,
-            "subtype": in_subtype,
-        },
-        "output": {
-            "path": out_path,
-            "format": out_format,
-            "subtype": subtype,
-            "bits": rq.bits,
-            "container_bits": cbits,
-            "passthrough": bool(passthrough),
-        },
-        "error_signal": None if error_path is None else {"path": error_path, "format": e_fmt,
-                                                         "subtype": "FLOAT"},
-        "lsb": 1.0 / rq.scale,
-        "measured": total,
-        "predicted": pred_total,
-        "channels": channels,
-        "warnings": warnings,
-        "notes": notes,
-    }
+        for path in targets.reports:
+            write_report(report, analyzer, path, outs)
+    try:
+        outs.commit()
+    except OSError as exc:
+        raise wrap_write_error(exc, targets.dst) from None

@@ -19,6 +19,10 @@ from pathlib import Path
 
 import numpy as np
 
+from requant.convert import Outputs, convert_file
+from requant.errors import InputError
+from requant.recipe import Recipe
+
 __all__ = ["synthesize_demo_audio", "run_demo", "DEMO_FILES", "default_demo_dir"]
 
 DEMO_FILES = {
@@ -171,24 +175,24 @@ def synthesize_demo_audio(folder, *, seed=20261201):
     return sorted(DEMO_FILES)
 
 
-#: The demo's jobs: (source, output name, settings).
+#: The demo's jobs: (source, output name, recipe).
 _JOBS = [
-    ("tidewater_master.flac", "tidewater_16bit_tpdf.flac", dict(bits=16, dither="tpdf")),
+    ("tidewater_master.flac", "tidewater_16bit_tpdf.flac", Recipe(bits=16, dither="tpdf")),
     ("tidewater_master.flac", "tidewater_16bit_tpdf_hearing.flac",
-     dict(bits=16, dither="tpdf", shaping="hearing")),
+     Recipe(bits=16, dither="tpdf", shaping="hearing")),
     ("tidewater_master.flac", "tidewater_16bit_truncated.flac",
-     dict(bits=16, dither="none", quantizer="truncate")),
-    ("coin.wav", "coin_8bit_tpdf.wav", dict(bits=8, dither="tpdf")),
-    ("door_thud.wav", "door_thud_8bit_tpdf.wav", dict(bits=8, dither="tpdf")),
-    ("chime.wav", "chime_8bit_tpdf.wav", dict(bits=8, dither="tpdf")),
-    ("chime.wav", "chime_8bit_round.wav", dict(bits=8, dither="none")),
+     Recipe(bits=16, dither="none", quantizer="truncate")),
+    ("coin.wav", "coin_8bit_tpdf.wav", Recipe(bits=8, dither="tpdf")),
+    ("door_thud.wav", "door_thud_8bit_tpdf.wav", Recipe(bits=8, dither="tpdf")),
+    ("chime.wav", "chime_8bit_tpdf.wav", Recipe(bits=8, dither="tpdf")),
+    ("chime.wav", "chime_8bit_round.wav", Recipe(bits=8, dither="none")),
 ]
 
 
-def _method(settings):
-    parts = [settings.get("quantizer", "round"), settings.get("dither", "tpdf")]
-    if settings.get("shaping", "none") != "none":
-        parts.append(settings["shaping"])
+def _method(recipe):
+    parts = [recipe.quantizer, recipe.dither]
+    if recipe.shaping.kind != "none":
+        parts.append(recipe.shaping.kind)
     return "+".join(parts)
 
 
@@ -200,9 +204,6 @@ def run_demo(out, *, source=None, seed=2026):
     str
         A table of measured against predicted figures.
     """
-    from requant.convert import convert_file
-    from requant.errors import InputError
-
     src = Path(source) if source is not None else default_demo_dir()
     missing = [name for name in DEMO_FILES if not (src / name).is_file()]
     if missing:
@@ -212,20 +213,15 @@ def run_demo(out, *, source=None, seed=2026):
         )
     out = Path(out)
     out.mkdir(parents=True, exist_ok=True)
-    from requant.audio_io.atomic import AtomicOutputs
-    from requant.report.write import write_report
-
     rows = []
-    for i, (name, out_name, settings) in enumerate(_JOBS):
+    for i, (name, out_name, recipe) in enumerate(_JOBS):
         stem = os.path.splitext(out_name)[0]
-        rep = convert_file(src / name, out / out_name, seed=seed + i, overwrite=True,
-                           error_path=out / f"{stem}_error.wav",
-                           report_path=out / f"{stem}_report.json", keep_analyzer=True,
-                           **settings)
-        # the same figures as a page with pictures
-        with AtomicOutputs() as outs:
-            write_report(rep, rep.pop("_analyzer"), out / f"{stem}_report.html", outs)
-        rows.append((out_name, settings["bits"], _method(settings), rep))
+        # the figures as JSON, and the same as a page with pictures
+        outputs = Outputs(error=out / f"{stem}_error.wav", overwrite=True,
+                          report=(out / f"{stem}_report.json", out / f"{stem}_report.html"))
+        rep = convert_file(src / name, out / out_name, recipe.with_seed(seed + i),
+                           outputs=outputs)
+        rows.append((out_name, recipe.bits, _method(recipe), rep))
     head = (f"{'output':36} {'bits':>4} {'method':21} {'SNR dB':>6} {'pred':>6} "
             f"{'err LSB²':>8} {'pred':>6} {'A-wtd dBFS':>10} {'pred':>7}  follows signal")
     lines = [f"requant demo: results in {out}/", head, "-" * len(head)]

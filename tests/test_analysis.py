@@ -16,10 +16,11 @@ import numpy as np
 import pytest
 import soundfile as sf
 
+from requant.convert import Outputs, convert_file
 from requant.dsp.analysis import analyze_arrays, error_pdf
-from requant.convert import convert_file
 from requant.dsp.quantizer import requantize
 from requant.dsp.shaping import design_hearing, ntf_response
+from requant.recipe import Recipe
 
 
 def busy(tmp_path, fs=48000, seconds=6.0, channels=2, seed=0, name="busy.wav"):
@@ -35,8 +36,7 @@ def test_weighted_noise_measured_matches_predicted(tmp_path, shaping):
     # Measured (Welch PSD of the error × weighting) within 0.3 dB of predicted
     # (σ²·mean(W²|NTF|²), [LWV92], [Z], [IEC], [468]) on a busy signal.
     src = busy(tmp_path)
-    rep = convert_file(src, tmp_path / "o.wav", bits=16, dither="tpdf", shaping=shaping, seed=3,
-                       report_path=tmp_path / "r.json")
+    rep = convert_file(src, tmp_path / "o.wav", Recipe(bits=16, dither="tpdf", shaping=shaping, seed=3), outputs=Outputs(report=tmp_path / "r.json"))
     m, p = rep["measured"], rep["predicted"]
     for key in ("a_weighted_noise_dbfs", "itu468_noise_dbfs"):
         assert abs(m[key] - p[key]) < 0.3, (key, m[key], p[key])
@@ -95,7 +95,7 @@ def test_shaped_spectrum_matches_ntf_in_octave_bands(fs):
 def test_shaped_error_power_matches_prediction(tmp_path, fs, shaping):
     # (Δ²/4)·Σ n_k² [Z], within 5 % on a short busy signal, at the edges of the rate range
     src = busy(tmp_path, fs=fs, seconds=max(1.0, 200000 / fs), channels=1)
-    rep = convert_file(src, tmp_path / "o.wav", bits=16, shaping=shaping, seed=1)
+    rep = convert_file(src, tmp_path / "o.wav", Recipe(bits=16, shaping=shaping, seed=1))
     n = np.concatenate(([1.0], -np.asarray(rep["settings"]["shaping_coeffs"])))
     assert rep["predicted"]["error_power_lsb2"] == pytest.approx(0.25 * np.sum(n * n))
     assert rep["measured"]["error_power_lsb2"] == pytest.approx(0.25 * np.sum(n * n), rel=0.05)
@@ -104,8 +104,7 @@ def test_shaped_error_power_matches_prediction(tmp_path, fs, shaping):
 
 def test_report_carries_shaping_and_predicted_spectrum(tmp_path):
     src = busy(tmp_path, seconds=2.0)
-    rep = convert_file(src, tmp_path / "o.wav", bits=16, shaping="hearing", seed=1,
-                       report_path=tmp_path / "r.json")
+    rep = convert_file(src, tmp_path / "o.wav", Recipe(bits=16, shaping="hearing", seed=1), outputs=Outputs(report=tmp_path / "r.json"))
     assert rep["settings"]["shaping"] == "hearing"
     assert len(rep["settings"]["shaping_coeffs"]) == 9
     spec = rep["analysis"]["spectrum"]
@@ -136,8 +135,7 @@ def test_signal_correlated_warning(tmp_path, dither, fires):
     # two moments are independent of the signal [LWV92], so no warning.
     p = tmp_path / "quiet.wav"
     sf.write(p, tone(48000, 3.0, -70.0).astype(np.float32), 48000, subtype="FLOAT")
-    rep = convert_file(p, tmp_path / "o.wav", bits=16, dither=dither, seed=1,
-                       report_path=tmp_path / "r.json")
+    rep = convert_file(p, tmp_path / "o.wav", Recipe(bits=16, dither=dither, seed=1), outputs=Outputs(report=tmp_path / "r.json"))
     has = any("signal-correlated error" in w for w in rep["warnings"])
     assert has is fires
     assert rep["measured"]["signal_correlated"] is fires
@@ -196,7 +194,7 @@ def test_true_peak_and_dc_in_report(tmp_path):
     x = (x * ramp + 0.01).reshape(-1, 1)
     p = tmp_path / "tp.wav"
     sf.write(p, x, fs, subtype="DOUBLE")
-    rep = convert_file(p, tmp_path / "o.wav", bits=24, seed=1, report_path=tmp_path / "r.json")
+    rep = convert_file(p, tmp_path / "o.wav", Recipe(bits=24, seed=1), outputs=Outputs(report=tmp_path / "r.json"))
     assert rep["measured"]["input_true_peak_dbtp"] == pytest.approx(20 * np.log10(1.01), abs=0.06)
     assert rep["channels"][0]["measured"]["input_dc_offset"] == pytest.approx(np.mean(x), abs=1e-9)
 

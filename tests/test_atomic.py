@@ -15,9 +15,11 @@ import pytest
 import soundfile as sf
 
 from requant import library as batch
-from requant.library.executors.base import run_chunk
 from requant.audio_io import atomic
 from requant.audio_io.atomic import AtomicOutputs, CommitGroup, pending_path
+from requant.library.executors.base import run_chunk
+from requant.library.settings import BatchSettings
+from requant.library.task import task_settings
 
 
 def _write(outs, final, text):
@@ -98,7 +100,7 @@ def _clip_tasks(tmp_path, n=3):
                  subtype="FLOAT")
     tasks = [{"source": f"c{i}.wav", "output": f"c{i}.wav",
               "source_path": str(src / f"c{i}.wav"), "output_path": str(dst / f"c{i}.wav"),
-              "seed": i, "settings": dict(batch.DEFAULT_SETTINGS), "overwrite": False,
+              "seed": i, "settings": task_settings(BatchSettings()), "overwrite": False,
               "expect_sha256": None, "reason": "new", "note": None, "size": 0}
              for i in range(n)]
     return dst, tasks

@@ -13,7 +13,6 @@ import re
 import signal
 import struct
 import subprocess
-import sys
 import time
 from pathlib import Path
 
@@ -21,57 +20,26 @@ import numpy as np
 import pytest
 import soundfile as sf
 
-from requant import library as B
-from requant.library import (DEFAULT_SETTINGS, ProcessExecutor, WorkerLost, derive_seed,
-                           read_manifest, resolve_settings, run_batch, settings_id)
-from requant.errors import UsageError
-
-RUNNER = """
-import sys
-from requant import cli
-if not any(getattr(c, "name", None) == "batch" for c in cli.app.registered_commands):
-    from requant.cli_batch import register
-    register(cli.app)
-sys.exit(cli.main(sys.argv[1:]))
-"""
-
-
-def run_cli(*args, timeout=120):
-    """Run requant's CLI in a fresh process; return (code, stdout, stderr)."""
-    proc = subprocess.run([sys.executable, "-c", RUNNER, *map(str, args)], capture_output=True,
-                          text=True, timeout=timeout)
-    return proc.returncode, proc.stdout, proc.stderr
-
-
 # --------------------------------------------------------------------------- byte builders
+from helpers import chunk, cli_command, fmt_pcm, pcm24, run_cli, u32  # noqa: E402
+from helpers import riff_wave as _riff_wave  # noqa: E402
 
-def u32(v):
-    return struct.pack("<I", v)
-
-
-def chunk(cid, payload):
-    # RIFF 1991 (IBM & Microsoft, Multimedia Programming Interface and Data
-    # Specifications 1.0): ckID, ckSize (little-endian, pad byte not counted),
-    # ckData, then one zero pad byte when ckSize is odd.
-    return cid + u32(len(payload)) + payload + b"\0" * (len(payload) & 1)
+from requant import library as B
+from requant.errors import UsageError
+from requant.library import (
+    DEFAULT_SETTINGS,
+    ProcessExecutor,
+    WorkerLost,
+    derive_seed,
+    read_manifest,
+    resolve_settings,
+    run_batch,
+    settings_id,
+)
 
 
 def riff_wave(chunks):
-    # RIFF 1991: 'RIFF', size of everything after the size field, form type 'WAVE'.
-    body = b"WAVE" + b"".join(chunk(cid, payload) for cid, payload in chunks)
-    return b"RIFF" + u32(len(body)) + body
-
-
-def fmt_pcm(channels, rate, bits):
-    # RIFF 1991 WAVEFORMAT + PCM: wFormatTag=1, nChannels, nSamplesPerSec,
-    # nAvgBytesPerSec, nBlockAlign, wBitsPerSample.
-    align = channels * ((bits + 7) // 8)
-    return struct.pack("<HHIIHH", 1, channels, rate, rate * align, align, bits)
-
-
-def pcm24(codes):
-    # RIFF 1991: 17..24-bit PCM samples take 3 bytes, little-endian, channels interleaved.
-    return codes.astype("<i4").view(np.uint8).reshape(-1, 4)[:, :3].tobytes()
+    return _riff_wave(chunks)[0]
 
 
 def smpl_payload():
@@ -391,7 +359,7 @@ def test_resume_does_nothing_twice(tree, tmp_path):
     assert latest["drums/snare.flac"]["reason"] == "output changed since it was written"
     assert sha(kick) == kick_hash  # same seed, same bits
 
-    changed = run_batch(tree, dst, dict(s, bits=12), jobs=1)
+    changed = run_batch(tree, dst, s.replace(bits=12), jobs=1)
     assert changed["counts"]["converted"] == first["counts"]["converted"]
     assert changed["settings_id"] != first["settings_id"]
     assert {e["reason"] for e in latest_by_source(dst)[0].values()
@@ -524,17 +492,18 @@ def test_custom_executor_protocol(tree, tmp_path):
 def test_settings_id_tracks_output_settings(tmp_path):
     base = resolve_settings({})
     sid = settings_id(base, 1)
-    assert settings_id(dict(base, block_frames=7), 1) == sid  # does not change the bits
+    assert settings_id(base.replace(block_frames=7), 1) == sid  # does not change the bits
     assert settings_id(base, 2) != sid
     for key, value in [("bits", 12), ("quantizer", "truncate"), ("dither", "rpdf"),
                        ("shaping", "first-order"), ("force_dither", True), ("format", "flac")]:
-        assert settings_id(dict(base, **{key: value}), 1) != sid, key
+        assert settings_id(base.replace(**{key: value}), 1) != sid, key
     coeffs = tmp_path / "h.json"
     coeffs.write_text("[0.5]")
     s = resolve_settings({"shaping": str(coeffs)})
     before = settings_id(s, 1)
     coeffs.write_text("[0.25]")
-    assert settings_id(s, 1) != before  # the file's content counts, not its name
+    again = resolve_settings({"shaping": str(coeffs)})  # the next run reads the file again
+    assert settings_id(again, 1) != before  # the file's content counts, not its name
 
 
 def test_derive_seed_is_order_free():
@@ -548,12 +517,14 @@ def test_defaults_match_convert_file():
     import inspect
 
     from requant.convert import convert_file
+    from requant.recipe import Recipe
 
     params = inspect.signature(convert_file).parameters
-    for key in ("bits", "quantizer", "dither", "shaping", "shaping_order", "force_dither",
-                "block_frames"):
-        assert DEFAULT_SETTINGS[key] == params[key].default, key
-    assert DEFAULT_SETTINGS["shaping_limit_db"] == params["shaping_limit_db"].default
+    assert params["recipe"].default is None  # convert_file's None means Recipe()
+    recipe = Recipe().to_dict()
+    for key in recipe:
+        assert DEFAULT_SETTINGS[key] == recipe[key], key
+    assert DEFAULT_SETTINGS["block_frames"] == params["block_frames"].default
 
 
 @pytest.mark.parametrize("options, match", [
@@ -734,7 +705,7 @@ def _many_clips(root, n=240):
 
 
 def _start(src, dst, jobs):
-    return subprocess.Popen([sys.executable, "-c", RUNNER, "batch", str(src), str(dst),
+    return subprocess.Popen([*cli_command("batch", src, dst),
                              "--seed", "99", "--jobs", str(jobs), "-q"],
                             stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
                             start_new_session=True)

@@ -9,6 +9,7 @@ import sys
 import numpy as np
 import pytest
 import soundfile as sf
+from helpers import run_cli
 
 from requant.cli import main
 
@@ -19,13 +20,6 @@ def src(tmp_path):
     t = np.arange(24000) / 48000
     sf.write(p, 0.5 * np.sin(2 * np.pi * 997 * t), 48000, subtype="FLOAT")
     return p
-
-
-def run_cli(*args):
-    """Run the installed entry point as a user would; return (code, stdout, stderr)."""
-    proc = subprocess.run([sys.executable, "-m", "requant", *map(str, args)],
-                          capture_output=True, text=True, timeout=120)
-    return proc.returncode, proc.stdout, proc.stderr
 
 
 def test_convert_writes_everything(tmp_path, src):
@@ -104,23 +98,26 @@ def test_debug_shows_traceback(tmp_path):
 
 
 def test_cli_defaults_match_library_defaults():
-    # the CLI must not drift from convert_file's defaults (python-soundfile's meta-test idea)
+    # the CLI must not drift from the library's defaults (python-soundfile's meta-test idea)
     import typer.main
 
     from requant.cli import app
-    from requant.convert import convert_file
+    from requant.convert import Outputs, convert_file
+    from requant.recipe import Recipe, Shaping
 
     cmd = typer.main.get_command(app).commands["convert"]
-    cli_defaults = {p.name: p.default for p in cmd.params}
+    cli = {p.name: getattr(p.default, "value", p.default) for p in cmd.params}
+    recipe, outputs = Recipe(), Outputs()
+    for name in ("bits", "quantizer", "dither", "seed", "force_dither"):
+        assert cli[name] == getattr(recipe, name), name
+    assert cli["shaping"] == recipe.shaping.kind
+    hearing = Shaping("hearing")  # None on the command line means the design's defaults
+    assert (cli["shaping_order"], cli["shaping_limit"]) == (None, None)
+    assert Shaping.parse("hearing", order=None, limit_db=None) == hearing
+    assert cli["overwrite"] == outputs.overwrite and cli["error"] == outputs.error
+    assert cli["report"] in (None, []) and outputs.report is None
     lib = inspect.signature(convert_file).parameters
-    pairs = {"bits": "bits", "quantizer": "quantizer", "dither": "dither", "shaping": "shaping",
-             "seed": "seed", "overwrite": "overwrite", "force_dither": "force_dither",
-             "block_frames": "block_frames", "error": "error_path", "report": "report_path",
-             "shaping_order": "shaping_order", "shaping_limit": "shaping_limit_db"}
-    for cli_name, lib_name in pairs.items():
-        d = cli_defaults[cli_name]
-        d = getattr(d, "value", d)
-        assert d == lib[lib_name].default, cli_name
+    assert cli["block_frames"] == lib["block_frames"].default
 
 
 def test_help_does_not_import_heavy_modules():

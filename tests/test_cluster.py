@@ -29,6 +29,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 import soundfile as sf
+from helpers import cli_command, run_cli_timed
 
 from requant import library as B
 from requant.library import WorkerLost, read_manifest, resolve_settings, run_batch
@@ -36,14 +37,6 @@ from requant.library import WorkerLost, read_manifest, resolve_settings, run_bat
 HERE = Path(__file__).parent
 BIN = Path(sys.executable).parent
 ADDRESS_RE = re.compile(r"^tcp://127\.0\.0\.1:\d+$")
-
-
-def run_cli(*args, timeout=120, env=None):
-    """requant's CLI in a fresh process: (code, stdout, stderr, seconds)."""
-    t0 = time.monotonic()
-    proc = subprocess.run([sys.executable, "-m", "requant.cli", *map(str, args)],
-                          capture_output=True, text=True, timeout=timeout, env=env)
-    return proc.returncode, proc.stdout, proc.stderr, time.monotonic() - t0
 
 
 def sha(path):
@@ -204,9 +197,9 @@ def big_library(tmp_path_factory):
 
 def test_cluster_run_matches_local_run(cluster, library, tmp_path):
     workers = set(cluster.ready())
-    code_c, out_c, err_c, _ = run_cli("batch", library, tmp_path / "c", "--seed", 99,
+    code_c, out_c, err_c, _ = run_cli_timed("batch", library, tmp_path / "c", "--seed", 99,
                                       "--cluster", cluster.address)
-    code_l, out_l, err_l, _ = run_cli("batch", library, tmp_path / "l", "--seed", 99,
+    code_l, out_l, err_l, _ = run_cli_timed("batch", library, tmp_path / "l", "--seed", 99,
                                       "--jobs", 1)
     assert code_c == code_l == 1, (err_c, err_l)  # the broken file fails in both
     assert f"dask cluster at {cluster.address} (2 workers, 2 threads)" in out_c
@@ -244,7 +237,7 @@ def test_cluster_run_matches_local_run(cluster, library, tmp_path):
     assert not list((tmp_path / "c").glob(".requant-cluster-check-*"))  # removed at the end
 
     # resume through the cluster: nothing converted twice
-    code, out, err, _ = run_cli("batch", library, tmp_path / "c", "--cluster", cluster.address)
+    code, out, err, _ = run_cli_timed("batch", library, tmp_path / "c", "--cluster", cluster.address)
     assert code == 1, err  # the broken file still fails
     assert "converted 0, up to date 40, failed 1" in out
 
@@ -266,7 +259,7 @@ def _children(pid):
 @pytest.mark.parametrize("where", ["cluster", "local"])
 def test_killed_worker_mid_batch(where, request, big_library, tmp_path):
     dst = tmp_path / "out"
-    args = [sys.executable, "-m", "requant.cli", "batch", str(big_library), str(dst), "--seed", 3,
+    args = [*cli_command("batch", big_library, dst), "--seed", 3,
             "--block-frames", 128, "--quiet"]
     if where == "cluster":
         cluster = request.getfixturevalue("cluster")
@@ -346,7 +339,7 @@ def test_unreachable_scheduler_is_one_line(case, library, tmp_path):
         port = listener.getsockname()[1]
         reason = "no dask answer within 10 s"
     try:
-        code, out, err, seconds = run_cli("batch", library, tmp_path / "out", "--cluster",
+        code, out, err, seconds = run_cli_timed("batch", library, tmp_path / "out", "--cluster",
                                           f"tcp://127.0.0.1:{port}", timeout=60)
     finally:
         if listener is not None:
@@ -394,7 +387,7 @@ def test_cli_stays_free_of_dask():
 
 
 def test_jobs_and_cluster_do_not_combine(library, tmp_path):
-    code, out, err, _ = run_cli("batch", library, tmp_path / "out", "--jobs", 2, "--cluster",
+    code, out, err, _ = run_cli_timed("batch", library, tmp_path / "out", "--jobs", 2, "--cluster",
                                 "tcp://127.0.0.1:8786")
     assert code == 2 and "--jobs" in err and len(err.strip().splitlines()) == 1
 
@@ -415,8 +408,8 @@ def test_parse_address(given, expected):
 @pytest.mark.parametrize("given", ["", "tcp://", "http://host:80", "host:0", "host:99999",
                                    "tcp://a b:1", "host:port"])
 def test_parse_address_refuses(given):
-    from requant.library.executors.cluster import parse_address
     from requant.errors import UsageError
+    from requant.library.executors.cluster import parse_address
 
     with pytest.raises(UsageError, match="--cluster"):
         parse_address(given)
@@ -491,7 +484,7 @@ def test_scheduler_without_requant_is_one_line(library, tmp_path):
     c = Cluster(tmp_path)
     try:
         c.start(workers=1, scheduler_env={"PYTHONPATH": str(hide)})
-        code, out, err, _ = run_cli("batch", library, tmp_path / "out", "--cluster", c.address,
+        code, out, err, _ = run_cli_timed("batch", library, tmp_path / "out", "--cluster", c.address,
                                     timeout=90)
     finally:
         c.stop()

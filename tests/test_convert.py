@@ -12,8 +12,9 @@ import numpy as np
 import pytest
 import soundfile as sf
 
-from requant.convert import convert_file
+from requant.convert import Outputs, convert_file
 from requant.errors import InputError, OutputError, UsageError
+from requant.recipe import Recipe
 
 
 def sine(fs=48000, seconds=1.0, amp=0.5, f=997.0, channels=2):
@@ -51,7 +52,7 @@ def test_integer_codes_round_trip_every_container(tmp_path, ext, bits, subtype):
     src = tmp_path / "src.wav"
     sf.write(src, x, 48000, subtype="DOUBLE")
     out = tmp_path / f"out.{ext}"
-    rep = convert_file(src, out, bits=bits, dither="none", seed=1)
+    rep = convert_file(src, out, Recipe(bits=bits, dither="none", seed=1))
     info = sf.info(out)
     assert info.subtype == subtype
     assert rep["output"]["subtype"] == subtype
@@ -64,7 +65,7 @@ def test_integer_codes_round_trip_every_container(tmp_path, ext, bits, subtype):
 
 def test_error_signal_reproduces_output(tmp_path, float_wav):
     out, err = tmp_path / "o.wav", tmp_path / "e.wav"
-    convert_file(float_wav, out, bits=8, dither="tpdf", seed=3, error_path=err)
+    convert_file(float_wav, out, Recipe(bits=8, dither="tpdf", seed=3), outputs=Outputs(error=err))
     x = sf.read(float_wav, dtype="float64")[0]
     y = sf.read(out, dtype="float64")[0]
     e, rate = sf.read(err, dtype="float64")
@@ -76,7 +77,7 @@ def test_error_signal_reproduces_output(tmp_path, float_wav):
 
 def test_report_keys_and_consistency(tmp_path, float_wav):
     rep_path = tmp_path / "r.json"
-    rep = convert_file(float_wav, tmp_path / "o.flac", bits=16, report_path=rep_path, seed=5)
+    rep = convert_file(float_wav, tmp_path / "o.flac", Recipe(bits=16, seed=5), outputs=Outputs(report=rep_path))
     on_disk = json.loads(rep_path.read_text())
     assert on_disk["settings"]["seed"] == 5
     for key in ("bits", "quantizer", "dither", "shaping", "seed"):
@@ -109,11 +110,9 @@ def test_file_blocks_equal_whole(tmp_path, block, shaping):
     src = tmp_path / "in.wav"
     sf.write(src, sine(seconds=0.25) + 1e-4, 48000, subtype="FLOAT")
     ref = tmp_path / "ref.wav"
-    convert_file(src, ref, bits=12, seed=9, block_frames=65536, shaping=shaping,
-                 error_path=tmp_path / "ref_e.wav")
+    convert_file(src, ref, Recipe(bits=12, seed=9, shaping=shaping), outputs=Outputs(error=tmp_path / "ref_e.wav"), block_frames=65536)
     out = tmp_path / "o.wav"
-    convert_file(src, out, bits=12, seed=9, block_frames=block, shaping=shaping,
-                 error_path=tmp_path / "o_e.wav")
+    convert_file(src, out, Recipe(bits=12, seed=9, shaping=shaping), outputs=Outputs(error=tmp_path / "o_e.wav"), block_frames=block)
     assert ref.read_bytes() == out.read_bytes()
     # the float error file's PEAK chunk carries a time stamp: compare its samples
     e_ref = sf.read(tmp_path / "ref_e.wav", dtype="float32")[0]
@@ -122,16 +121,16 @@ def test_file_blocks_equal_whole(tmp_path, block, shaping):
 
 
 def test_rerun_with_same_seed_is_bit_identical(tmp_path, float_wav):
-    convert_file(float_wav, tmp_path / "a.wav", bits=16, seed=123)
-    convert_file(float_wav, tmp_path / "b.wav", bits=16, seed=123)
-    convert_file(float_wav, tmp_path / "c.wav", bits=16, seed=124)
+    convert_file(float_wav, tmp_path / "a.wav", Recipe(bits=16, seed=123))
+    convert_file(float_wav, tmp_path / "b.wav", Recipe(bits=16, seed=123))
+    convert_file(float_wav, tmp_path / "c.wav", Recipe(bits=16, seed=124))
     assert (tmp_path / "a.wav").read_bytes() == (tmp_path / "b.wav").read_bytes()
     assert (tmp_path / "a.wav").read_bytes() != (tmp_path / "c.wav").read_bytes()
 
 
 def test_fresh_seed_is_recorded_and_reproduces(tmp_path, float_wav):
-    rep = convert_file(float_wav, tmp_path / "a.wav", bits=16)
-    convert_file(float_wav, tmp_path / "b.wav", bits=16, seed=rep["settings"]["seed"])
+    rep = convert_file(float_wav, tmp_path / "a.wav", Recipe(bits=16))
+    convert_file(float_wav, tmp_path / "b.wav", Recipe(bits=16, seed=rep["settings"]["seed"]))
     assert (tmp_path / "a.wav").read_bytes() == (tmp_path / "b.wav").read_bytes()
 
 
@@ -141,13 +140,13 @@ def test_passthrough_when_on_grid(tmp_path):
     codes = (rng.integers(-30000, 30000, (5000, 2)).astype(np.int32) << 16)
     src = tmp_path / "in24.wav"
     sf.write(src, codes, 44100, subtype="PCM_24")
-    rep = convert_file(src, tmp_path / "o.wav", bits=16, seed=1)
+    rep = convert_file(src, tmp_path / "o.wav", Recipe(bits=16, seed=1))
     assert rep["output"]["passthrough"] is True
     assert rep["settings"]["dither_applied"] == "none"
     assert np.array_equal(read_codes(tmp_path / "o.wav"), codes)
     assert rep["measured"]["error_power_lsb2"] == 0.0
     assert any("unchanged" in n for n in rep["notes"])
-    forced = convert_file(src, tmp_path / "f.wav", bits=16, seed=1, force_dither=True)
+    forced = convert_file(src, tmp_path / "f.wav", Recipe(bits=16, seed=1, force_dither=True))
     assert forced["output"]["passthrough"] is False
     assert not np.array_equal(read_codes(tmp_path / "f.wav"), codes)
 
@@ -155,7 +154,7 @@ def test_passthrough_when_on_grid(tmp_path):
 def test_integer_container_narrower_than_target_is_passthrough(tmp_path):
     src = tmp_path / "in16.flac"
     sf.write(src, (np.arange(-500, 500, dtype=np.int16) * 7).reshape(-1, 1), 48000, subtype="PCM_16")
-    rep = convert_file(src, tmp_path / "o24.wav", bits=24, seed=2)
+    rep = convert_file(src, tmp_path / "o24.wav", Recipe(bits=24, seed=2))
     assert rep["output"]["passthrough"] is True
     assert rep["measured"]["error_power_lsb2"] == 0.0
 
@@ -164,7 +163,7 @@ def test_float_over_full_scale_is_clipped_and_counted(tmp_path):
     x = np.array([0.0, 1.5, -2.0, 0.5, 1.0, -1.0], dtype=np.float32).reshape(-1, 1)
     src = tmp_path / "hot.wav"
     sf.write(src, x, 48000, subtype="FLOAT")
-    rep = convert_file(src, tmp_path / "o.wav", bits=16, dither="none")
+    rep = convert_file(src, tmp_path / "o.wav", Recipe(bits=16, dither="none"))
     # 1.5 -> 32767, -2.0 -> -32768, 1.0 -> 32767 (above the largest code 1 - Δ)
     assert read_codes(tmp_path / "o.wav")[:, 0].tolist() == [
         0, 32767 << 16, -32768 << 16, 16384 << 16, 32767 << 16, -32768 << 16]
@@ -180,8 +179,7 @@ def test_nonfinite_input_refused_with_time(tmp_path, bad, kind):
     src = tmp_path / "bad.wav"
     sf.write(src, x, 48000, subtype="FLOAT")
     with pytest.raises(InputError, match=rf"{kind} sample at 0\.750000 s \(frame 36000, channel 2\)"):
-        convert_file(src, tmp_path / "o.wav", bits=16, error_path=tmp_path / "e.wav",
-                     report_path=tmp_path / "r.json", block_frames=1000)
+        convert_file(src, tmp_path / "o.wav", Recipe(bits=16), outputs=Outputs(error=tmp_path / "e.wav", report=tmp_path / "r.json"), block_frames=1000)
     assert sorted(os.listdir(tmp_path)) == ["bad.wav"]  # nothing partial left behind
 
 
@@ -191,7 +189,7 @@ def test_existing_output_is_kept_without_overwrite(tmp_path, float_wav):
     with pytest.raises(OutputError, match="--overwrite"):
         convert_file(float_wav, out)
     assert out.read_bytes() == b"keep me"
-    convert_file(float_wav, out, overwrite=True)
+    convert_file(float_wav, out, outputs=Outputs(overwrite=True))
     assert sf.info(out).subtype == "PCM_16"
 
 
@@ -206,13 +204,13 @@ def test_never_writes_onto_input(tmp_path, float_wav, link):
         target = tmp_path / "hard.wav"
         os.link(float_wav, target)
     with pytest.raises(OutputError, match="is the input"):
-        convert_file(float_wav, target, overwrite=True)
+        convert_file(float_wav, target, outputs=Outputs(overwrite=True))
     assert float_wav.read_bytes() == before
 
 
 def test_error_path_may_not_be_input(tmp_path, float_wav):
     with pytest.raises(OutputError, match="is the input"):
-        convert_file(float_wav, tmp_path / "o.wav", error_path=float_wav, overwrite=True)
+        convert_file(float_wav, tmp_path / "o.wav", outputs=Outputs(error=float_wav, overwrite=True))
 
 
 @pytest.mark.parametrize("name, message", [
@@ -225,7 +223,7 @@ def test_refused_output_names(tmp_path, float_wav, name, message):
 
 def test_flac_cannot_hold_32_bits(tmp_path, float_wav):
     with pytest.raises(UsageError, match="at most 24 bits"):
-        convert_file(float_wav, tmp_path / "o.flac", bits=32)
+        convert_file(float_wav, tmp_path / "o.flac", Recipe(bits=32))
 
 
 def test_unreadable_and_missing_inputs(tmp_path):
@@ -247,7 +245,7 @@ def test_zero_and_one_frame_files(tmp_path):
     for n in (0, 1):
         src = tmp_path / f"n{n}.wav"
         sf.write(src, np.full((n, 2), 0.25), 48000, subtype="FLOAT")
-        rep = convert_file(src, tmp_path / f"o{n}.wav", bits=16, seed=1)
+        rep = convert_file(src, tmp_path / f"o{n}.wav", Recipe(bits=16, seed=1))
         assert sf.info(tmp_path / f"o{n}.wav").frames == n
         assert rep["input"]["frames"] == n
         json.dumps(rep, allow_nan=False)
@@ -258,7 +256,7 @@ def test_many_channels_and_odd_rate(tmp_path):
     x = rng.uniform(-0.5, 0.5, (2000, 64)).astype(np.float32)
     src = tmp_path / "multi.wav"
     sf.write(src, x, 8000, subtype="FLOAT")
-    rep = convert_file(src, tmp_path / "o.wav", bits=16, seed=4)
+    rep = convert_file(src, tmp_path / "o.wav", Recipe(bits=16, seed=4))
     assert len(rep["channels"]) == 64
     info = sf.info(tmp_path / "o.wav")
     assert info.channels == 64 and info.samplerate == 8000
@@ -274,8 +272,7 @@ def test_memory_stays_flat_in_file_length(tmp_path):
         src = tmp_path / f"s{seconds}.wav"
         sf.write(src, sine(seconds=seconds).astype(np.float32), 48000, subtype="FLOAT")
         tracemalloc.start()
-        convert_file(src, tmp_path / f"o{seconds}.wav", bits=16, seed=1,
-                     error_path=tmp_path / f"e{seconds}.wav", block_frames=8192)
+        convert_file(src, tmp_path / f"o{seconds}.wav", Recipe(bits=16, seed=1), outputs=Outputs(error=tmp_path / f"e{seconds}.wav"), block_frames=8192)
         peaks.append(tracemalloc.get_traced_memory()[1])
         tracemalloc.stop()
     assert peaks[1] < 1.5 * peaks[0] + 1_000_000
@@ -285,7 +282,7 @@ def test_passthrough_report_has_no_error_and_no_warning(tmp_path):
     codes = (np.arange(-2000, 2000, dtype=np.int32) * 9 << 16).reshape(-1, 1)
     src = tmp_path / "in24.wav"
     sf.write(src, np.concatenate([codes] * 30), 48000, subtype="PCM_24")
-    rep = convert_file(src, tmp_path / "o.wav", bits=16, report_path=tmp_path / "r.json")
+    rep = convert_file(src, tmp_path / "o.wav", Recipe(bits=16), outputs=Outputs(report=tmp_path / "r.json"))
     assert rep["output"]["passthrough"] is True
     assert rep["warnings"] == []
     assert rep["predicted"]["a_weighted_noise_dbfs"] is None
@@ -294,6 +291,6 @@ def test_passthrough_report_has_no_error_and_no_warning(tmp_path):
 def test_markdown_pictures_are_not_overwritten_silently(tmp_path, float_wav):
     (tmp_path / "r_error_spectrum.png").write_bytes(b"mine")
     with pytest.raises(OutputError, match="already exists"):
-        convert_file(float_wav, tmp_path / "o.wav", report_path=tmp_path / "r.md")
+        convert_file(float_wav, tmp_path / "o.wav", outputs=Outputs(report=tmp_path / "r.md"))
     assert (tmp_path / "r_error_spectrum.png").read_bytes() == b"mine"
     assert not (tmp_path / "o.wav").exists()

@@ -15,8 +15,8 @@ import sys
 import numpy as np
 import pytest
 
-from requant.dsp import native
 from requant.dsp import kernel as _kernel
+from requant.dsp import native
 from requant.dsp.quantizer import Requantizer, compiled_kernel
 
 SHAPER9 = (2.412, -3.370, 3.937, -4.174, 3.353, -2.205, 1.281, -0.569, 0.0847)

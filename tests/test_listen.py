@@ -6,24 +6,25 @@ import html.parser
 import json
 import math
 import os
-import subprocess
-import sys
 
 import numpy as np
 import pytest
 import soundfile as sf
+from helpers import run_cli
 
 from requant.errors import InputError, OutputError, UsageError
-from requant.listen import (
+from requant.listening import (
     CAP_DBFS,
     ERROR_TARGET_DBFS,
+    Excerpt,
     find_quiet_passage,
     level_match,
     make_listening_kit,
     parse_method,
     parse_methods,
 )
-from requant.score import guessing_p_value, score_results
+from requant.listening.score import guessing_p_value, score_results
+from requant.recipe import Recipe
 
 FS = 48000
 ALL_METHODS = ["truncate", "round", "rpdf", "tpdf", "tpdf-hp", "tpdf+hearing", "tpdf+first-order"]
@@ -35,23 +36,6 @@ TEXTBOOK_POWER = {("round", "none"): 1 / 12, ("truncate", "none"): 1 / 3,
                   ("round", "rpdf"): 1 / 6, ("round", "tpdf"): 1 / 4, ("round", "tpdf-hp"): 1 / 4}
 
 
-def _cli_base():
-    """How to run the CLI: ``python -m requant`` once cli.py registers the commands;
-    until then a one-line shim that registers them the same way."""
-    from requant.cli import app
-    from requant.cli_listen import _command_names
-
-    if {"listen", "score"} <= _command_names(app):
-        return [sys.executable, "-m", "requant"]
-    shim = ("import sys; from requant.cli import app, main; "
-            "from requant.cli_listen import register; register(app); sys.exit(main(sys.argv[1:]))")
-    return [sys.executable, "-c", shim]
-
-
-def run_cli(*args):
-    proc = subprocess.run([*_cli_base(), *map(str, args)], capture_output=True, text=True,
-                          timeout=180)
-    return proc.returncode, proc.stdout, proc.stderr
 
 
 def tones(seconds, *, level_db=-12.0, channels=2, seed=1):
@@ -111,8 +95,7 @@ def kit16(tmp_path_factory):
     src = d / "source.wav"
     sf.write(src, np.concatenate([steady, np.repeat(fade, 2, axis=1)]), FS, subtype="FLOAT")
     out = d / "kit"
-    kit = make_listening_kit(src, out, bits=16, methods=ALL_METHODS, quiet_passage=True,
-                             quiet_seconds=0.5, seed=11)
+    kit = make_listening_kit(src, out, recipe=Recipe(bits=16, seed=11), quiet=0.5, methods=ALL_METHODS)
     return src, out, kit
 
 
@@ -205,8 +188,7 @@ def test_no_error_render_exceeds_cap_at_few_bits(tmp_path, bits, method):
     loud = 0.999 * np.sign(np.sin(2 * np.pi * 110 * t)) * np.abs(np.sin(2 * np.pi * 55 * t)) ** 0.1
     src = tmp_path / "loud.wav"
     sf.write(src, loud, FS, subtype="FLOAT")
-    kit = make_listening_kit(src, tmp_path / "k", bits=bits, methods=[method], seed=3,
-                             quiet_passage=True, quiet_seconds=0.5)
+    kit = make_listening_kit(src, tmp_path / "k", recipe=Recipe(bits=bits, seed=3), quiet=0.5, methods=[method])
     m = kit["methods"][0]
     for name in (m["error_file"], m["quiet"]["file"], "original_quiet.wav"):
         e = read(tmp_path / "k" / name)
@@ -223,7 +205,7 @@ def test_cap_engages_on_clipped_source(tmp_path, bits):
     t = np.arange(int(0.6 * FS)) / FS
     src = tmp_path / "loud.wav"
     sf.write(src, 1.5 * np.sin(2 * np.pi * 440 * t), FS, subtype="FLOAT")
-    kit = make_listening_kit(src, tmp_path / "k", bits=bits, methods=["tpdf"], seed=4)
+    kit = make_listening_kit(src, tmp_path / "k", recipe=Recipe(bits=bits, seed=4), methods=["tpdf"])
     m = kit["methods"][0]
     e = read(tmp_path / "k" / m["error_file"])
     assert peak_dbfs(e) <= CAP_DBFS
@@ -287,8 +269,7 @@ def test_quiet_passage_in_kit_is_raised_after_requantization(tmp_path):
     x, level_at = fade_source(steady=1.0, fade=2.0, silence=0.5, top_db=-20.0)
     src = tmp_path / "fade.wav"
     sf.write(src, x, FS, subtype="FLOAT")
-    kit = make_listening_kit(src, tmp_path / "k", bits=12, methods=["truncate", "tpdf"],
-                             quiet_passage=True, quiet_seconds=0.5, seed=8)
+    kit = make_listening_kit(src, tmp_path / "k", recipe=Recipe(bits=12, seed=8), quiet=0.5, methods=["truncate", "tpdf"])
     q = kit["quiet_passage"]
     assert q["found"]
     # the silence floor sits 20 dB below 12-bit rounding noise: 6.0206·12 + 1.7609 dB below
@@ -369,28 +350,27 @@ def test_excerpt_start_and_duration(tmp_path):
     x = tones(2.0)
     src = tmp_path / "in.wav"
     sf.write(src, x, FS, subtype="FLOAT")
-    kit = make_listening_kit(src, tmp_path / "k", bits=8, methods=["tpdf"], start_s=0.5,
-                             duration_s=0.75, seed=1)
+    kit = make_listening_kit(src, tmp_path / "k", recipe=Recipe(bits=8, seed=1), excerpt=Excerpt(start_s=0.5, duration_s=0.75), methods=["tpdf"])
     assert kit["excerpt"]["start_frame"] == 24000 and kit["excerpt"]["frames"] == 36000
     got = read(tmp_path / "k" / "original.wav")
     w = sin2_fade(36000, kit["excerpt"]["fade_frames"])[:, None]
     x = read(src)  # as stored (float32)
     assert np.array_equal(got, (x[24000:60000] * w).astype(np.float32).astype(np.float64))
     with pytest.raises(UsageError, match="past the end"):
-        make_listening_kit(src, tmp_path / "k2", methods=["tpdf"], start_s=5.0)
+        make_listening_kit(src, tmp_path / "k2", excerpt=Excerpt(start_s=5.0), methods=["tpdf"])
     with pytest.raises(UsageError, match="at least 0.5 s"):
-        make_listening_kit(src, tmp_path / "k3", methods=["tpdf"], start_s=1.8)
+        make_listening_kit(src, tmp_path / "k3", excerpt=Excerpt(start_s=1.8), methods=["tpdf"])
     with pytest.raises(UsageError, match="duration=0.1"):
-        make_listening_kit(src, tmp_path / "k4", methods=["tpdf"], duration_s=0.1)
+        make_listening_kit(src, tmp_path / "k4", excerpt=Excerpt(duration_s=0.1), methods=["tpdf"])
 
 
 def test_existing_kit_needs_overwrite_and_input_is_never_replaced(tmp_path):
     src = tmp_path / "in.wav"
     sf.write(src, tones(0.6), FS, subtype="FLOAT")
-    make_listening_kit(src, tmp_path / "k", methods=["tpdf"], seed=1)
+    make_listening_kit(src, tmp_path / "k", recipe=Recipe(seed=1), methods=["tpdf"])
     with pytest.raises(OutputError, match="--overwrite"):
-        make_listening_kit(src, tmp_path / "k", methods=["tpdf"], seed=1)
-    make_listening_kit(src, tmp_path / "k", methods=["tpdf"], seed=1, overwrite=True)
+        make_listening_kit(src, tmp_path / "k", recipe=Recipe(seed=1), methods=["tpdf"])
+    make_listening_kit(src, tmp_path / "k", recipe=Recipe(seed=1), methods=["tpdf"], overwrite=True)
     own = tmp_path / "k" / "original.wav"  # a source that sits where the kit writes
     with pytest.raises(OutputError, match="is the input"):
         make_listening_kit(own, tmp_path / "k", methods=["tpdf"], overwrite=True)
@@ -414,23 +394,22 @@ def test_cli_listen_writes_kit_and_prints_caution(tmp_path):
 
 
 def test_cli_defaults_match_library():
+    # the CLI must not drift from the library's defaults (python-soundfile's meta-test idea)
     import inspect
 
-    import typer
+    import typer.main
 
-    from requant.cli_listen import DEFAULT_METHODS, register
+    from requant.cli import app
+    from requant.listening import DEFAULT_METHODS, Excerpt
+    from requant.listening.excerpt import QUIET_SECONDS
+    from requant.recipe import Recipe
 
-    app = typer.Typer()
-    register(app)
-    register(app)  # a second call adds nothing
-    assert len(app.registered_commands) == 2
-    cmd = next(c for c in app.registered_commands if c.name == "listen")
-    cli = {k: v.default.default for k, v in inspect.signature(cmd.callback).parameters.items()
-           if hasattr(v.default, "default")}
+    cmd = typer.main.get_command(app).commands["listen"]
+    cli = {p.name: p.default for p in cmd.params}
     lib = inspect.signature(make_listening_kit).parameters
-    assert cli["bits"] == lib["bits"].default
-    assert cli["quiet_seconds"] == lib["quiet_seconds"].default
-    assert cli["start"] == lib["start_s"].default
+    assert cli["bits"] == Recipe().bits
+    assert cli["quiet_seconds"] == QUIET_SECONDS
+    assert cli["start"] == Excerpt().start_s
     assert tuple(DEFAULT_METHODS) == tuple(lib["methods"].default)
 
 
@@ -466,7 +445,7 @@ HOSTILE = "<b>take&1 \"quoted\" 'single'.wav"
 def test_hostile_file_name_is_escaped(tmp_path):
     src = tmp_path / HOSTILE
     sf.write(src, tones(0.6), FS, subtype="FLOAT")
-    kit = make_listening_kit(src, tmp_path / "k", methods=["tpdf"], seed=1)
+    kit = make_listening_kit(src, tmp_path / "k", recipe=Recipe(seed=1), methods=["tpdf"])
     page = (tmp_path / "k" / "index.html").read_text(encoding="utf-8")
     assert "<b>" not in page and "\"quoted\"" not in page
     assert "&lt;b&gt;take&amp;1" in page

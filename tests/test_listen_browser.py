@@ -10,15 +10,16 @@ import json
 import os
 import shutil
 import subprocess
-import sys
 import tempfile
 import time
 
 import numpy as np
 import pytest
 import soundfile as sf
+from helpers import cli_command
 
-from requant.listen import make_listening_kit
+from requant.listening import make_listening_kit
+from requant.recipe import Recipe
 
 FS = 48000
 CHROMIUM = shutil.which("chromium") or shutil.which("chromium-browser")
@@ -40,17 +41,6 @@ window.addEventListener('unhandledrejection', function (e) {
   window.__pageErrors.push('unhandled rejection: ' + String(e.reason));
 });
 """
-
-
-def _cli_base():
-    from requant.cli import app
-    from requant.cli_listen import _command_names
-
-    if {"listen", "score"} <= _command_names(app):
-        return [sys.executable, "-m", "requant"]
-    shim = ("import sys; from requant.cli import app, main; "
-            "from requant.cli_listen import register; register(app); sys.exit(main(sys.argv[1:]))")
-    return [sys.executable, "-c", shim]
 
 
 @pytest.fixture(scope="module")
@@ -133,8 +123,7 @@ def kit(tmp_path_factory):
     src = d / "tone.wav"
     sf.write(src, np.stack([x, 0.8 * x], axis=1), FS, subtype="FLOAT")
     out = d / "kit"
-    make_listening_kit(src, out, bits=12, methods=["truncate", "tpdf+hearing"],
-                       quiet_passage=True, quiet_seconds=0.5, seed=9)
+    make_listening_kit(src, out, recipe=Recipe(bits=12, seed=9), quiet=0.5, methods=["truncate", "tpdf+hearing"])
     return out
 
 
@@ -205,7 +194,7 @@ def test_page_plays_runs_blind_trials_exports_and_scores(browser, kit, tmp_path)
     assert saved["format"] == "requant-listening-results" and len(saved["trials"]) == 8
 
     # score it with the command line
-    proc = subprocess.run([*_cli_base(), "score", path], capture_output=True, text=True,
+    proc = subprocess.run(cli_command("score", path), capture_output=True, text=True,
                           timeout=120)
     assert proc.returncode == 0, proc.stderr
     lines = proc.stdout.splitlines()
@@ -240,7 +229,7 @@ def test_hostile_name_shown_as_text_in_browser(browser, tmp_path):
     src = tmp_path / name
     t = np.arange(int(0.6 * FS)) / FS
     sf.write(src, 0.2 * np.sin(2 * np.pi * 330 * t), FS, subtype="FLOAT")
-    make_listening_kit(src, tmp_path / "k", methods=["tpdf"], seed=2)
+    make_listening_kit(src, tmp_path / "k", recipe=Recipe(seed=2), methods=["tpdf"])
     open_page(browser, tmp_path / "k")
     assert browser.find_element("id", "source-name").text == name
     assert browser.execute_script("return document.querySelectorAll('b').length") == 0

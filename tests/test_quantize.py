@@ -13,8 +13,8 @@ import numpy as np
 import pytest
 
 from requant.dsp import kernel as _kernel
-from requant.errors import UsageError
 from requant.dsp.quantizer import Requantizer, predicted_error_power_lsb2, requantize
+from requant.errors import UsageError
 
 N_STAT = 1_000_000
 

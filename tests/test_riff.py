@@ -22,16 +22,15 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from requant.audio_io import riff
-from requant.errors import InputError, OutputError, UsageError
 from requant.audio_io.riff import (
     BEXT_FIXED_BYTES,
-    Chunk,
     ChunkError,
     coding_history_row,
     copy_metadata,
     read_chunks,
     wav_chunk_ids,
 )
+from requant.errors import InputError, OutputError, UsageError
 
 RATE = 48000
 CHANNELS = 2
@@ -42,65 +41,7 @@ DROPPED_IDS = {"fmt ", "data", "fact", "ds64", "JUNK", "junk", "PAD ", "FLLR", "
 
 # --------------------------------------------------------------------------- byte builders
 
-def u32(v: int) -> bytes:
-    return struct.pack("<I", v)
-
-
-def chunk(cid: bytes, payload: bytes) -> bytes:
-    # RIFF 1991 (IBM & Microsoft, Multimedia Programming Interface and Data
-    # Specifications 1.0): ckID FOURCC, ckSize DWORD little-endian (pad byte
-    # not counted), ckData, then one zero pad byte if ckSize is odd.
-    return cid + u32(len(payload)) + payload + b"\0" * (len(payload) & 1)
-
-
-def riff_wave(chunks: list[tuple[bytes, bytes]]) -> tuple[bytes, list[tuple[str, int, int]]]:
-    """RIFF 1991: 'RIFF', size of everything after the size field, 'WAVE', chunks.
-
-    Returns the file and, per chunk, (id, payload offset, payload size).
-    """
-    body = bytearray(b"WAVE")
-    where = []
-    for cid, payload in chunks:
-        where.append((cid.decode("ascii"), 8 + len(body) + 8, len(payload)))
-        body += chunk(cid, payload)
-    return b"RIFF" + u32(len(body)) + bytes(body), where
-
-
-def rf64_wave(chunks: list[tuple[bytes, bytes]], *, table: tuple[bytes, ...] = (),
-              sample_count: int = 0, form: bytes = b"RF64"
-              ) -> tuple[bytes, list[tuple[str, int, int]]]:
-    """EBU Tech 3306 RF64: 'RF64', 0xFFFFFFFF, 'WAVE', then ds64 first.
-
-    ds64 payload: riffSize u64, dataSize u64, sampleCount u64, tableLength u32,
-    then tableLength × (chunkId FOURCC, chunkSize u64). The data chunk and the
-    chunks named in `table` carry 0xFFFFFFFF in their own size fields.
-    """
-    ds_size = 28 + 12 * len(table)
-    body = bytearray(b"WAVE" + b"ds64" + u32(ds_size) + b"\0" * ds_size)
-    where = [("ds64", 20, ds_size)]
-    sizes = {}
-    for cid, payload in chunks:
-        marked = cid == b"data" or cid in table
-        where.append((cid.decode("ascii"), 8 + len(body) + 8, len(payload)))
-        size_field = 0xFFFFFFFF if marked else len(payload)
-        body += cid + u32(size_field) + payload + b"\0" * (len(payload) & 1)
-        sizes.setdefault(cid, len(payload))
-    ds64 = struct.pack("<QQQI", len(body), sizes[b"data"], sample_count, len(table))
-    ds64 += b"".join(cid + struct.pack("<Q", sizes[cid]) for cid in table)
-    body[12:12 + ds_size] = ds64
-    return form + u32(0xFFFFFFFF) + bytes(body), where
-
-
-def fmt_pcm(channels: int, rate: int, bits: int) -> bytes:
-    # RIFF 1991 WAVEFORMAT + PCM: wFormatTag=1, nChannels, nSamplesPerSec,
-    # nAvgBytesPerSec, nBlockAlign, wBitsPerSample.
-    block = channels * ((bits + 7) // 8)
-    return struct.pack("<HHIIHH", 1, channels, rate, rate * block, block, bits)
-
-
-def pcm24(codes: np.ndarray) -> bytes:
-    # RIFF 1991: PCM samples of 9..24 bits take 3 bytes, little-endian, channels interleaved.
-    return codes.astype("<i4").view(np.uint8).reshape(-1, 4)[:, :3].tobytes()
+from helpers import chunk, fmt_pcm, pcm24, rf64_wave, riff_wave, u32  # noqa: E402
 
 
 def smpl_payload() -> bytes:

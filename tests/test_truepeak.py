@@ -6,7 +6,6 @@ import pytest
 import scipy.signal
 
 from requant.dsp import truepeak
-from requant.errors import InputError, UsageError
 from requant.dsp.truepeak import (
     PHASES,
     TruePeakMeter,
@@ -14,6 +13,7 @@ from requant.dsp.truepeak import (
     true_peak,
     true_peak_dbtp,
 )
+from requant.errors import InputError, UsageError
 
 # ITU-R BS.1770-4 Annex 2, interpolation filter coefficients (typed here a second
 # time from /work/shared/REFERENCES.md section 5, independently of the module).

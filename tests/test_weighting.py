@@ -12,7 +12,6 @@ import numpy as np
 import pytest
 from scipy import integrate, optimize, signal
 
-from requant.errors import UsageError
 from requant.dsp.weighting import (
     THRESHOLD_CEILING_DB_SPL,
     UPPER_LIMIT_OF_HEARING_HZ,
@@ -27,6 +26,7 @@ from requant.dsp.weighting import (
     weighting_power,
     white_noise_weighting_offset_db,
 )
+from requant.errors import UsageError
 
 # IEC 61672-1:2013 Table 3, A-weighting and class-1 limits (REFERENCES.md §4):
 # (nominal Hz, table dB, tolerance +, tolerance -). Rows the reference lists

@@ -97,3 +97,20 @@ def read_dtype_for(subtype):
     if subtype in ("PCM_S8", "PCM_U8", "PCM_16", "PCM_24", "FLOAT", "ULAW", "ALAW"):
         return "float32"
     return "float64"
+
+
+#: Frames per block by default (how files are read and written; the output does not
+#: depend on it).
+DEFAULT_BLOCK_FRAMES = 65536
+#: Largest block: a few blocks of this many frames of a 64-channel file stay well under
+#: a gigabyte, and larger blocks buy no speed.
+MAX_BLOCK_FRAMES = 1 << 22
+
+
+def check_block_frames(block_frames):
+    """``block_frames`` as an int 1..MAX_BLOCK_FRAMES; :class:`UsageError` otherwise."""
+    if isinstance(block_frames, bool) or not isinstance(block_frames, int) or not (
+            1 <= block_frames <= MAX_BLOCK_FRAMES):
+        raise UsageError(f"block_frames={block_frames!r} must be an integer from 1 to "
+                         f"{MAX_BLOCK_FRAMES} (larger blocks only cost memory)")
+    return block_frames

@@ -8,9 +8,10 @@ AIFF outputs keep the text tags libsndfile exposes; what cannot be carried is li
 import struct
 
 from requant import __version__
+from requant.audio_io import riff
 from requant.errors import OutputError
 
-__all__ = ["CarryMetadata", "is_riff_wave", "source_tags"]
+__all__ = ["CarryMetadata", "is_riff_wave", "source_tags", "history_text"]
 
 
 # Source WAV chunks that are not metadata (see requant.audio_io.riff.copy_metadata).
@@ -19,6 +20,7 @@ _NOT_METADATA = frozenset({"fmt ", "data", "fact", "ds64", "JUNK", "junk", "PAD 
 
 
 def is_riff_wave(path):
+    """True when ``path`` starts like a RIFF/RF64/BW64 WAVE file."""
     try:
         with open(path, "rb") as fh:
             head = fh.read(12)
@@ -28,6 +30,7 @@ def is_riff_wave(path):
 
 
 def source_tags(path):
+    """The text tags libsndfile reads from ``path`` (title, artist, ...), without empty ones."""
     import soundfile as sf
 
     try:
@@ -37,28 +40,30 @@ def source_tags(path):
         return {}
 
 
-def _history_text(settings, dither_applied=None):
-    shaping = settings["shaping"]
-    if shaping not in ("none", "first-order", "hearing"):
-        shaping = "file" if shaping.lower().endswith(".json") else "custom"
-    dither = dither_applied or settings["dither"]
-    text = f"requant {__version__}; {settings['quantizer']}; dither {dither}; shaping {shaping}"
+def history_text(recipe, dither_applied=None):
+    """The free-text part of our coding-history row (printable ASCII, no commas)."""
+    dither = dither_applied or recipe.dither
+    text = (f"requant {__version__}; {recipe.quantizer}; dither {dither}; shaping "
+            f"{recipe.shaping.label}")
     return "".join(ch for ch in text if " " <= ch <= "~" and ch != ",")
 
 
 class CarryMetadata:
-    """convert_file's ``finalize``: carry WAV chunks over, or record what is lost."""
+    """Carry a source's WAV chunks over to a finished output, or record what is lost.
 
-    def __init__(self, source, out_path, settings, tags, source_is_wav):
+    Called by :func:`requant.convert.convert_file` on the temporary output
+    before it is renamed into place; returns the record that goes into the
+    report's ``output.metadata``.
+    """
+
+    def __init__(self, source, out_path, recipe, tags, source_is_wav):
         self.source = source
         self.out_path = out_path
-        self.settings = settings
+        self.recipe = recipe
         self.tags = tags
         self.source_is_wav = source_is_wav
 
     def __call__(self, tmp_out, out_format, report=None):
-        from requant.audio_io import riff  # noqa: F401
-
         meta = {"copied": [], "rewritten": [], "dropped": [], "tags": sorted(self.tags or {})}
         if not self.source_is_wav:
             return meta
@@ -80,9 +85,9 @@ class CarryMetadata:
         applied = None
         if report is not None:  # a convert_file that passes its report to finalize
             applied = report.get("settings", {}).get("dither_applied")
-        row = riff.coding_history_row(sample_rate=rate, bits=self.settings["bits"],
+        row = riff.coding_history_row(sample_rate=rate, bits=self.recipe.bits,
                                       channels=channels,
-                                      text=_history_text(self.settings, applied))
+                                      text=history_text(self.recipe, applied))
         try:
             got = riff.copy_metadata(self.source, tmp_out, coding_history_row=row)
         except riff.ChunkError as exc:

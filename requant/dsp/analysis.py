@@ -36,7 +36,7 @@ import math
 import numpy as np
 
 # the dither powers (LWV 1992) and the prediction live in one place: requant.dsp.quantizer
-from requant.dsp.quantizer import DITHER_POWER_LSB2, predicted_error_power_lsb2
+from requant.dsp.quantizer import DITHER_MODELS, DITHER_POWER_LSB2, predicted_error_power_lsb2
 
 __all__ = [
     "ErrorAnalyzer",
@@ -148,10 +148,11 @@ def error_pdf(lsb, *, quantizer, dither, coeffs=()):
     step = 1e-3
     grid = np.arange(-4.0, 4.0 + step / 2, step)
     uni = ((grid >= -0.5) & (grid < 0.5)).astype(float)
-    if dither == "none":
+    kind = DITHER_MODELS[dither].pdf
+    if kind == "none":
         pdf = uni
     else:
-        if dither == "rpdf":
+        if kind == "uniform":
             dpdf = uni
         else:  # triangular over (-1, 1): tpdf, and tpdf-hp's marginal
             dpdf = np.clip(1.0 - np.abs(grid), 0.0, None)

@@ -21,38 +21,64 @@ run from ``-2**(bits-1)`` to ``2**(bits-1) - 1``.
 
 import functools
 import secrets
+from typing import NamedTuple
 
 import numpy as np
 
-from requant.dsp import native
 from requant.dsp import kernel as _kernel
+from requant.dsp import native
 from requant.errors import UsageError
+from requant.recipe import DITHERS, QUANTIZERS, Recipe, check_dither_in_loop
 
 __all__ = [
     "QUANTIZERS",
     "DITHERS",
+    "DitherModel",
+    "DITHER_MODELS",
+    "DITHER_POWER_LSB2",
     "Requantizer",
     "requantize",
     "predicted_error_power_lsb2",
-    "DITHER_POWER_LSB2",
     "new_seed",
     "lsb",
 ]
 
-QUANTIZERS = ("round", "truncate")
-DITHERS = ("none", "rpdf", "tpdf", "tpdf-hp")
 
-_DITHER_MODE = {
-    "none": _kernel.DITHER_NONE,
-    "rpdf": _kernel.DITHER_RPDF,
-    "tpdf": _kernel.DITHER_TPDF,
-    "tpdf-hp": _kernel.DITHER_TPDF_HP,
+class DitherModel(NamedTuple):
+    """How one dither is made in the kernel and what theory predicts of it.
+
+    Attributes
+    ----------
+    mode : int
+        The kernel's code for it (:mod:`requant.dsp.kernel`).
+    power_lsb2 : float, LSB²
+        Mean-square total error with an ideal rounding quantizer (busy input).
+    pdf : {'none', 'uniform', 'triangular'}
+        The dither's own amplitude distribution (the total error's is this
+        convolved with the uniform rounding error).
+    """
+
+    mode: int
+    power_lsb2: float
+    pdf: str
+
+
+#: Every dither of :data:`requant.recipe.DITHERS`: its kernel mode and its model.
+#: Lipshitz, Wannamaker & Vanderkooy (1992), JAES 40(5): none 1/12 (busy signal),
+#: RPDF 1/6 (averaged over input), TPDF 1/4 (for every input); high-passed TPDF
+#: r[n] - r[n-1] has the marginal of TPDF and the same total power, 1/4.
+DITHER_MODELS = {
+    "none": DitherModel(_kernel.DITHER_NONE, 1.0 / 12.0, "none"),
+    "rpdf": DitherModel(_kernel.DITHER_RPDF, 1.0 / 6.0, "uniform"),
+    "tpdf": DitherModel(_kernel.DITHER_TPDF, 0.25, "triangular"),
+    "tpdf-hp": DitherModel(_kernel.DITHER_TPDF_HP, 0.25, "triangular"),
 }
+if tuple(DITHER_MODELS) != DITHERS:  # a dither named in one place only is a bug, not a default
+    raise ImportError(f"requant.recipe.DITHERS {DITHERS} and DITHER_MODELS "
+                      f"{tuple(DITHER_MODELS)} disagree; give every dither a model")
 
 #: Mean-square error of each dither with an ideal rounding quantizer, in LSB².
-#: Lipshitz, Wannamaker & Vanderkooy (1992), JAES 40(5): none 1/12 (busy
-#: signal), RPDF 1/6 (averaged over input), TPDF 1/4 (for every input).
-DITHER_POWER_LSB2 = {"none": 1.0 / 12.0, "rpdf": 1.0 / 6.0, "tpdf": 0.25, "tpdf-hp": 0.25}
+DITHER_POWER_LSB2 = {name: m.power_lsb2 for name, m in DITHER_MODELS.items()}
 
 #: Bound on the fed-back error in the shaping loop, in LSB. In normal
 #: operation |e| <= 1.5 (round + TPDF) or 2 (truncate + TPDF); anything larger
@@ -79,18 +105,6 @@ def lsb(bits):
 def new_seed():
     """A fresh 63-bit seed (recorded in reports so a run can be repeated)."""
     return secrets.randbits(63)
-
-
-def check_settings(bits, quantizer, dither):
-    """Validate the basic settings; raise :class:`UsageError` with the fix."""
-    if isinstance(bits, bool) or not isinstance(bits, (int, np.integer)):
-        raise TypeError(f"bits must be an int, not {type(bits).__name__}")
-    if not 1 <= bits <= 32:
-        raise UsageError(f"bits={bits!r} is out of range: choose a word length from 1 to 32")
-    if quantizer not in QUANTIZERS:
-        raise UsageError(f"quantizer={quantizer!r} is not known: choose one of {', '.join(QUANTIZERS)}")
-    if dither not in DITHERS:
-        raise UsageError(f"dither={dither!r} is not known: choose one of {', '.join(DITHERS)}")
 
 
 def predicted_error_power_lsb2(quantizer, dither, coeffs=()):
@@ -153,7 +167,9 @@ class Requantizer:
 
     def __init__(self, channels, *, bits, quantizer="round", dither="tpdf", coeffs=(),
                  seed=None, container_bits=None):
-        check_settings(bits, quantizer, dither)
+        Recipe(bits=bits, quantizer=quantizer, dither=dither, seed=seed)  # validates, or raises
+        coeffs = np.ascontiguousarray(coeffs, dtype=np.float64).reshape(-1)
+        check_dither_in_loop(dither, coeffs.size > 0)
         if channels < 1:
             raise UsageError(f"channels={channels!r} must be at least 1")
         if container_bits is None:
@@ -165,19 +181,13 @@ class Requantizer:
         self.quantizer = quantizer
         self.dither = dither
         self.seed = new_seed() if seed is None else int(seed)
-        self.coeffs = np.ascontiguousarray(coeffs, dtype=np.float64).reshape(-1)
-        if self.coeffs.size and dither == "tpdf-hp":
-            # the loop needs dither independent from sample to sample (Lipshitz, Wannamaker
-            # & Vanderkooy, "Dithered noise shapers and recursive digital filters", 2004)
-            raise UsageError("high-passed TPDF is not independent from sample to sample, so it "
-                             "does not belong inside a noise-shaping loop; use --dither tpdf "
-                             "with --shaping")
+        self.coeffs = coeffs
         self.scale = float(2 ** (bits - 1))
         self.kmin = -(2 ** (bits - 1))
         self.kmax = 2 ** (bits - 1) - 1
         self.code_dtype = np.int16 if container_bits <= 16 else np.int32
         self.shift = (16 if container_bits <= 16 else 32) - bits
-        self._mode = _DITHER_MODE[dither]
+        self._mode = DITHER_MODELS[dither].mode
         self._round_offset = 0.5 if quantizer == "round" else 0.0
         seqs = np.random.SeedSequence(self.seed).spawn(self.channels)
         # one SFC64 state per channel, seeded by numpy; the kernel advances it
@@ -190,6 +200,19 @@ class Requantizer:
         self.frames = 0
         self._no_err = np.zeros(1, dtype=np.float32)
         self._h = self.coeffs if self.coeffs.size else np.zeros(1)
+
+    @classmethod
+    def from_recipe(cls, recipe, channels, *, coeffs=(), container_bits=None):
+        """The requantizer a :class:`~requant.recipe.Recipe` describes.
+
+        ``coeffs`` are the recipe's shaping coefficients resolved for the
+        audio's sample rate (:func:`requant.dsp.shaping.coefficients_for`);
+        the recipe's seed must be set.
+        """
+        if recipe.seed is None:
+            raise UsageError("the recipe has no seed yet; draw one with recipe.with_seed(new_seed())")
+        return cls(channels, bits=recipe.bits, quantizer=recipe.quantizer, dither=recipe.dither,
+                   coeffs=coeffs, seed=recipe.seed, container_bits=container_bits)
 
     def process(self, x, *, codes=None, error=True, err_out=None, kernel=None):
         """Requantize the next block.

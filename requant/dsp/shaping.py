@@ -35,29 +35,28 @@ two regularisers:
 * above :data:`requant.dsp.weighting.UPPER_LIMIT_OF_HEARING_HZ` (about
   17.8 kHz, where Terhardt's threshold passes 100 dB SPL) the weight is 0:
   noise there is inaudible and may go there. What bounds it is a limit on
-  the total noise power gain ``Σ n_k² <= 10^(max_gain_db/10)``, enforced by
+  the total noise power gain ``Σ n_k² <= 10^(limit_db/10)``, enforced by
   adding the Lagrange multiplier λ to the autocorrelation at lag 0 (which
   adds ``λ·Σ n_k²`` to the cost), λ found by bisection. At 44.1 and 48 kHz
   only 4 to 6 kHz of the band is free; at 96 kHz and above most of it is,
   and the limit sets how much noise is moved there.
 
-Coefficient files are JSON: either a list of numbers or an object with a
-``"coefficients"`` list (other keys are ignored, except ``"sample_rate"``,
-which :func:`load_coefficients` can check).
+Coefficients typed by a user (a comma list or a JSON file) are read by
+:mod:`requant.recipe`; :func:`coefficients_for` turns a recipe's shaping into
+coefficients for one sample rate.
 """
 
 from __future__ import annotations
 
 import functools
-import json
 import math
 import os
-import tempfile
-from pathlib import Path
 
 import numpy as np
 
-from requant.errors import InputError, OutputError, UsageError
+from requant.errors import UsageError
+from requant.recipe import (DEFAULT_LIMIT_DB, DEFAULT_ORDER, MAX_TAPS, SHAPING_NAMES, Shaping,
+                            check_shaping_limit, check_shaping_order)
 from requant.dsp.weighting import (
     UPPER_LIMIT_OF_HEARING_HZ,
     WEIGHTINGS,
@@ -69,15 +68,16 @@ from requant.dsp.weighting import (
 
 __all__ = [
     "DEFAULT_ORDER",
-    "DEFAULT_MAX_GAIN_DB",
+    "DEFAULT_LIMIT_DB",
+    "coefficients_for",
+    "as_rate",
+    "as_taps",
     "DESIGN_FLOOR_DB",
     "MAX_TAPS",
     "SHAPING_NAMES",
     "design_hearing",
     "design_from_weight",
     "first_order",
-    "parse_coefficients",
-    "load_coefficients",
     "resolve_shaping",
     "ntf_taps",
     "ntf_response",
@@ -88,24 +88,13 @@ __all__ = [
     "is_minimum_phase",
     "weighted_gain_db",
     "describe",
-    "plot_ntf",
-    "export_json",
 ]
 
-#: Default filter order K of the ``hearing`` design.
-DEFAULT_ORDER = 9
-#: Default limit on the total noise power gain 10·log10 Σ n_k², dB.
-DEFAULT_MAX_GAIN_DB = 13.0
 #: Floor of the design weight below its 1 kHz value, dB (see module notes).
 DESIGN_FLOOR_DB = 20.0
-#: Most taps accepted for any shaping filter.
-MAX_TAPS = 64
-#: Shaping names other than user coefficients.
-SHAPING_NAMES = ("none", "first-order", "hearing")
 
 MIN_DESIGN_RATE_HZ = 8000.0
 MAX_DESIGN_RATE_HZ = 384000.0
-MAX_LIMIT_DB = 30.0
 
 # Grid intervals over 0..fs/2 for the design's autocorrelation, for weighted
 # figures and for the Gerzon-Craven integrals.
@@ -120,7 +109,7 @@ _MIN_LOADING = 1e-9
 # validation helpers
 
 
-def _as_rate(sample_rate, *, low=None, high=None):
+def as_rate(sample_rate, *, low=None, high=None):
     if isinstance(sample_rate, bool) or not isinstance(
         sample_rate, (int, float, np.integer, np.floating)
     ):
@@ -139,7 +128,7 @@ def _as_rate(sample_rate, *, low=None, high=None):
     return rate
 
 
-def _as_taps(h):
+def as_taps(h):
     """``h`` as a 1-D float64 array (may be empty), validated."""
     arr = np.asarray(h, dtype=np.float64)
     if arr.ndim != 1:
@@ -164,7 +153,7 @@ def ntf_taps(h):
     ndarray of float
         The NTF taps, length K + 1.
     """
-    h = _as_taps(h)
+    h = as_taps(h)
     return np.concatenate(([1.0], -h))
 
 
@@ -191,7 +180,7 @@ def _levinson(r, order):
     return a, refl
 
 
-def design_from_weight(weight_power, *, order, max_gain_db=None):
+def design_from_weight(weight_power, *, order, limit_db=None):
     """Minimum-phase NTF that minimises the noise weighted by ``weight_power``.
 
     Parameters
@@ -201,7 +190,7 @@ def design_from_weight(weight_power, *, order, max_gain_db=None):
         over 0..fs/2 (both ends included), at least ``order + 2`` points.
     order : int, 1..64
         Number of feedback coefficients K.
-    max_gain_db : float, dB, > 0, optional
+    limit_db : float, dB, > 0, optional
         Limit on ``10·log10 Σ n_k²``. ``None`` leaves it unbounded.
 
     Returns
@@ -224,7 +213,7 @@ def design_from_weight(weight_power, *, order, max_gain_db=None):
     meets it; the gain falls monotonically as λ grows.
     """
     w = np.asarray(weight_power, dtype=np.float64)
-    order = _check_order(order)
+    order = check_shaping_order(order)
     if w.ndim != 1 or w.size < order + 2:
         raise UsageError(
             f"weight_power must be a 1-D grid of at least order + 2 = {order + 2} points, "
@@ -232,7 +221,7 @@ def design_from_weight(weight_power, *, order, max_gain_db=None):
         )
     if not np.all(np.isfinite(w)) or np.any(w < 0) or not np.any(w > 0):
         raise UsageError("weight_power must be finite, >= 0 and not all zero")
-    limit = None if max_gain_db is None else _check_limit(max_gain_db)
+    limit = None if limit_db is None else check_shaping_limit(limit_db)
     r = np.fft.irfft(w)[: order + 1]
     # Diagonal loading far below any effect on the design keeps the normal
     # equations well conditioned when W² is tiny over most of the band.
@@ -261,29 +250,6 @@ def design_from_weight(weight_power, *, order, max_gain_db=None):
     return -a[1:]
 
 
-def _check_order(order):
-    if isinstance(order, bool) or not isinstance(order, (int, np.integer)):
-        raise TypeError(f"order must be an int, got {type(order).__name__} {order!r}")
-    if not 1 <= order <= MAX_TAPS:
-        raise UsageError(f"order={order!r} must be between 1 and {MAX_TAPS}")
-    return int(order)
-
-
-def _check_limit(max_gain_db):
-    if isinstance(max_gain_db, bool) or not isinstance(
-        max_gain_db, (int, float, np.integer, np.floating)
-    ):
-        raise TypeError(
-            f"max_gain_db must be a number in dB, got {type(max_gain_db).__name__} "
-            f"{max_gain_db!r}"
-        )
-    if not (0.0 < float(max_gain_db) <= MAX_LIMIT_DB):
-        raise UsageError(
-            f"max_gain_db={max_gain_db!r} must be above 0 and at most {MAX_LIMIT_DB:g} dB"
-        )
-    return float(max_gain_db)
-
-
 def _design_weight(sample_rate, weighting):
     f = frequency_grid(sample_rate, points=_DESIGN_POINTS)
     w = np.asarray(weighting_power(weighting, f), dtype=np.float64)
@@ -293,9 +259,9 @@ def _design_weight(sample_rate, weighting):
 
 
 @functools.lru_cache(maxsize=128)
-def _design_cached(sample_rate, order, max_gain_db, weighting):
+def _design_cached(sample_rate, order, limit_db, weighting):
     h = design_from_weight(
-        _design_weight(sample_rate, weighting), order=order, max_gain_db=max_gain_db
+        _design_weight(sample_rate, weighting), order=order, limit_db=limit_db
     )
     return tuple(float(x) for x in h)
 
@@ -304,7 +270,7 @@ def design_hearing(
     sample_rate,
     *,
     order=DEFAULT_ORDER,
-    max_gain_db=DEFAULT_MAX_GAIN_DB,
+    limit_db=DEFAULT_LIMIT_DB,
     weighting="threshold",
 ):
     """Design the ``hearing`` noise shaper for a sample rate.
@@ -315,7 +281,7 @@ def design_hearing(
         Sample rate of the audio to be requantized.
     order : int, 1..64, default 9
         Number of error-feedback coefficients K.
-    max_gain_db : float, dB, (0, 30], default 13
+    limit_db : float, dB, (0, 30], default 13
         Limit on the total noise power gain ``10·log10 Σ n_k²``.
     weighting : {"threshold", "a", "itu468", "flat"}, default "threshold"
         What the design minimises: the noise weighted by the inverse of
@@ -343,9 +309,9 @@ def design_hearing(
     >>> h.shape, round(noise_gain_db(h), 2)
     ((9,), 13.0)
     """
-    rate = _as_rate(sample_rate, low=MIN_DESIGN_RATE_HZ, high=MAX_DESIGN_RATE_HZ)
-    order = _check_order(order)
-    limit = _check_limit(max_gain_db)
+    rate = as_rate(sample_rate, low=MIN_DESIGN_RATE_HZ, high=MAX_DESIGN_RATE_HZ)
+    order = check_shaping_order(order)
+    limit = check_shaping_limit(limit_db)
     if not isinstance(weighting, str) or weighting not in WEIGHTINGS:
         raise UsageError(
             f"unknown weighting {weighting!r}; use one of {', '.join(WEIGHTINGS)}"
@@ -366,202 +332,56 @@ def first_order():
     return np.array([1.0])
 
 
-# ---------------------------------------------------------------------------
-# coefficients from the user
-
-
-def _validate_values(values, source):
-    if not 1 <= len(values) <= MAX_TAPS:
-        raise UsageError(
-            f"{source} has {len(values)} coefficients; give between 1 and {MAX_TAPS}"
-        )
-    out = np.empty(len(values))
-    for i, v in enumerate(values):
-        if isinstance(v, bool) or not isinstance(v, (int, float)):
-            raise UsageError(
-                f"{source}: coefficient {i + 1} is {v!r}, not a number; "
-                "give numbers such as 1.2 or -0.4"
-            )
-        if not math.isfinite(v):
-            raise UsageError(f"{source}: coefficient {i + 1} is {v!r}; give finite numbers")
-        out[i] = v
-    return out
-
-
-def parse_coefficients(text):
-    """Parse a comma-separated list of feedback coefficients.
+def coefficients_for(shaping, sample_rate):
+    """The feedback coefficients of a recipe's shaping at one sample rate.
 
     Parameters
     ----------
-    text : str
-        For example ``"1.2, -0.4"``; 1 to 64 finite numbers.
+    shaping : requant.recipe.Shaping
+    sample_rate : float, Hz
+        Sample rate of the audio (``hearing`` is designed for it; coefficients
+        made for another rate are refused).
 
     Returns
     -------
     ndarray of float
-        The coefficients ``h``.
-
-    Raises
-    ------
-    TypeError
-        If ``text`` is not a string.
-    UsageError
-        If an entry is empty or not a finite number, or the count is out of
-        range.
-
-    Examples
-    --------
-    >>> parse_coefficients("1.2, -0.4")
-    array([ 1.2, -0.4])
+        ``h`` (empty for ``none``).
     """
-    if not isinstance(text, str):
-        raise TypeError(f"coefficients must be given as a str, got {type(text).__name__}")
-    items = [s.strip() for s in text.split(",")]
-    if items == [""]:
-        raise UsageError(
-            f"coefficient list {text!r} is empty; give numbers separated by commas, "
-            "e.g. '1.2,-0.4'"
-        )
-    values = []
-    for i, item in enumerate(items):
-        if not item:
-            raise UsageError(
-                f"coefficient list {text!r} has an empty entry at position {i + 1}; "
-                "give numbers separated by commas, e.g. '1.2,-0.4'"
-            )
-        try:
-            values.append(float(item))
-        except ValueError:
-            raise UsageError(
-                f"coefficient list {text!r}: entry {i + 1} ({item!r}) is not a number; "
-                "give numbers separated by commas, e.g. '1.2,-0.4'"
-            ) from None
-    return _validate_values(values, f"coefficient list {text!r}")
+    if shaping.kind == "none":
+        return np.zeros(0)
+    if shaping.kind == "first-order":
+        return first_order()
+    if shaping.kind == "hearing":
+        return design_hearing(sample_rate, order=shaping.order, limit_db=shaping.limit_db)
+    shaping.check_rate(as_rate(sample_rate))
+    return np.array(shaping.coeffs, dtype=np.float64)
 
 
-def load_coefficients(path, *, sample_rate=None):
-    """Read feedback coefficients from a JSON file.
-
-    Parameters
-    ----------
-    path : str or os.PathLike
-        A JSON file holding either a list of numbers or an object with a
-        ``"coefficients"`` list (as written by :func:`export_json`).
-    sample_rate : float, Hz, optional
-        If given and the file records a different ``"sample_rate"``, refuse:
-        a filter designed for one rate puts its noise at the wrong
-        frequencies at another.
-
-    Returns
-    -------
-    ndarray of float
-        The coefficients ``h`` (1 to 64 finite numbers).
-
-    Raises
-    ------
-    InputError
-        If the file cannot be read, is not JSON, or holds no coefficient list.
-    UsageError
-        If a coefficient is invalid, or the sample rate does not match.
-    """
-    p = Path(path)
-    try:
-        text = p.read_text(encoding="utf-8")
-    except (OSError, UnicodeDecodeError) as exc:
-        raise InputError(
-            f"cannot read shaping file {str(p)!r} ({exc.__class__.__name__}: "
-            f"{getattr(exc, 'strerror', None) or exc}); check the path"
-        ) from None
-    try:
-        data = json.loads(text)
-    except json.JSONDecodeError as exc:
-        raise InputError(
-            f"shaping file {str(p)!r} is not valid JSON (line {exc.lineno}, column "
-            f"{exc.colno}: {exc.msg}); write a list of numbers or "
-            '{"coefficients": [...]}'
-        ) from None
-    recorded_rate = None
-    if isinstance(data, dict):
-        if "coefficients" not in data:
-            raise InputError(
-                f"shaping file {str(p)!r} has no \"coefficients\" entry; write a list of "
-                'numbers or {"coefficients": [...]}'
-            )
-        recorded_rate = data.get("sample_rate")
-        data = data["coefficients"]
-    if not isinstance(data, list):
-        raise InputError(
-            f"shaping file {str(p)!r} holds {type(data).__name__} where a list of "
-            'coefficients belongs; write a list of numbers or {"coefficients": [...]}'
-        )
-    h = _validate_values(data, f"shaping file {str(p)!r}")
-    if sample_rate is not None and recorded_rate is not None:
-        rate = _as_rate(sample_rate)
-        if isinstance(recorded_rate, bool) or not isinstance(recorded_rate, (int, float)):
-            raise InputError(
-                f"shaping file {str(p)!r} has sample_rate {recorded_rate!r}; "
-                "it must be a number in Hz"
-            )
-        if float(recorded_rate) != rate:
-            raise UsageError(
-                f"shaping file {str(p)!r} was made for {recorded_rate:g} Hz but the audio "
-                f"is {rate:g} Hz; use 'hearing' to design for this rate, or remove "
-                '"sample_rate" from the file to use it anyway'
-            )
-    return h
-
-
-def resolve_shaping(
-    spec, sample_rate, *, order=DEFAULT_ORDER, max_gain_db=DEFAULT_MAX_GAIN_DB
-):
-    """Turn a shaping choice into a name and coefficients.
+def resolve_shaping(spec, sample_rate, *, order=None, limit_db=None):
+    """Turn what a user typed into a name and coefficients for one sample rate.
 
     Parameters
     ----------
     spec : str
         ``"none"``, ``"first-order"``, ``"hearing"``, a path ending in
-        ``.json``, or a comma-separated list of coefficients.
+        ``.json``, or a comma-separated list of coefficients
+        (:meth:`requant.recipe.Shaping.parse`).
     sample_rate : float, Hz
-        Sample rate of the audio.
-    order : int, default 9
-        Order of the ``hearing`` design.
-    max_gain_db : float, dB, default 13
-        Total-gain limit of the ``hearing`` design.
+    order, limit_db : optional
+        The ``hearing`` design's order (default 9) and total-gain limit (dB,
+        default 13).
 
     Returns
     -------
     name : str
-        ``"none"``, ``"first-order"``, ``"hearing"``, the file path as
-        given, or ``"custom"`` for a list.
+        ``"none"``, ``"first-order"``, ``"hearing"``, the file path, or
+        ``"custom"`` for a list.
     h : ndarray of float
-        Coefficients (empty for ``"none"``).
-
-    Raises
-    ------
-    UsageError, InputError
-        If the choice is not understood, or its coefficients are invalid.
     """
     if not isinstance(spec, (str, os.PathLike)):
         raise TypeError(f"shaping must be a str, got {type(spec).__name__} {spec!r}")
-    rate = _as_rate(sample_rate)
-    text = os.fspath(spec).strip()
-    if text == "none":
-        return "none", np.zeros(0)
-    if text == "first-order":
-        return "first-order", first_order()
-    if text == "hearing":
-        return "hearing", design_hearing(rate, order=order, max_gain_db=max_gain_db)
-    if text.lower().endswith(".json"):
-        return text, load_coefficients(text, sample_rate=rate)
-    try:
-        return "custom", parse_coefficients(text)
-    except UsageError as exc:
-        if any(c.isdigit() for c in text):
-            raise
-        raise UsageError(
-            f"unknown shaping {text!r}; use one of {', '.join(SHAPING_NAMES)}, a .json "
-            "file, or coefficients separated by commas"
-        ) from exc
+    shaping = Shaping.parse(spec, order=order, limit_db=limit_db)
+    return shaping.name, coefficients_for(shaping, sample_rate)
 
 
 # ---------------------------------------------------------------------------
@@ -586,7 +406,7 @@ def ntf_response(h, freqs, sample_rate):
         NTF values, shaped like ``freqs``.
     """
     n = ntf_taps(h)
-    rate = _as_rate(sample_rate)
+    rate = as_rate(sample_rate)
     zinv = np.exp(-2j * np.pi * np.asarray(freqs, dtype=np.float64) / rate)
     return np.polynomial.polynomial.polyval(zinv, n)
 
@@ -685,7 +505,7 @@ def gerzon_craven_bound_db(weighting, sample_rate):
     """
     if not isinstance(weighting, str) or weighting not in WEIGHTINGS:
         raise UsageError(f"unknown weighting {weighting!r}; use one of {', '.join(WEIGHTINGS)}")
-    return _gc_bound_cached(weighting, _as_rate(sample_rate))
+    return _gc_bound_cached(weighting, as_rate(sample_rate))
 
 
 def is_minimum_phase(h):
@@ -757,8 +577,8 @@ def describe(h, sample_rate):
         ``gerzon_craven_mean_log_db``, ``gerzon_craven_bound_db`` (per
         weighting) and ``minimum_phase``. Plain Python types, ready for JSON.
     """
-    h = _as_taps(h)
-    rate = _as_rate(sample_rate)
+    h = as_taps(h)
+    rate = as_rate(sample_rate)
     return {
         "sample_rate": rate,
         "order": int(h.size),
@@ -772,115 +592,3 @@ def describe(h, sample_rate):
         },
         "minimum_phase": bool(is_minimum_phase(h)),
     }
-
-
-# ---------------------------------------------------------------------------
-# output
-
-
-def plot_ntf(h, sample_rate, path, *, title=None):
-    """Write a PNG of ``|NTF|`` in dB beside the weighting curves.
-
-    Parameters
-    ----------
-    h : array_like of float
-        Feedback coefficients.
-    sample_rate : float, Hz
-        Sample rate.
-    path : str or os.PathLike
-        Output PNG file.
-    title : str, optional
-        Plot title; by default the order, rate and total gain.
-
-    Raises
-    ------
-    OutputError
-        If the file cannot be written.
-    """
-    from matplotlib.backends.backend_agg import FigureCanvasAgg
-    from matplotlib.figure import Figure
-
-    h = _as_taps(h)
-    rate = _as_rate(sample_rate)
-    f = np.geomspace(10.0, rate / 2.0, 2000)
-    ntf_db = 10.0 * np.log10(np.maximum(np.abs(ntf_response(h, f, rate)) ** 2, 1e-30))
-    # A bare Figure on the Agg canvas: no pyplot, no global backend change.
-    fig = Figure(figsize=(8, 4.5), dpi=100)
-    FigureCanvasAgg(fig)
-    ax = fig.subplots()
-    ax.semilogx(f, ntf_db, color="k", lw=2, label="|NTF|² (noise shaping)")
-    for name, label in (
-        ("threshold", "hearing-threshold weight (Terhardt 1979)"),
-        ("a", "A-weighting (IEC 61672-1)"),
-        ("itu468", "ITU-R BS.468-4 weighting"),
-    ):
-        ax.semilogx(f, weighting_db(name, f), lw=1, ls="--", label=label)
-    ax.axhline(0.0, color="0.6", lw=0.8)
-    ax.set_xlim(10.0, rate / 2.0)
-    ax.set_ylim(-60.0, 40.0)
-    ax.set_xlabel("frequency (Hz)")
-    ax.set_ylabel("dB")
-    ax.set_title(
-        title or f"order {h.size} at {rate:g} Hz, total noise gain {noise_gain_db(h):+.2f} dB"
-    )
-    ax.grid(True, which="both", alpha=0.3)
-    ax.legend(loc="upper left", fontsize=8)
-    fig.tight_layout()
-    _atomic_write(Path(path), lambda fh: fig.savefig(fh, format="png"), binary=True)
-
-
-def _atomic_write(path, write, *, binary=False):
-    """Write via a temporary file in the same folder, then rename."""
-    folder = path.parent if str(path.parent) else Path(".")
-    tmp = None
-    try:
-        fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=folder)
-        with os.fdopen(fd, "wb" if binary else "w", **({} if binary else {"encoding": "utf-8"})) as fh:
-            write(fh)
-        os.replace(tmp, path)
-        tmp = None
-    except OSError as exc:
-        raise OutputError(
-            f"cannot write {str(path)!r} ({exc.strerror or exc}); check the folder exists "
-            "and is writable"
-        ) from None
-    finally:
-        if tmp is not None and os.path.exists(tmp):
-            os.unlink(tmp)
-
-
-def export_json(h, sample_rate, path, *, name=None, design=None):
-    """Write a shaping filter and its figures to a JSON file.
-
-    Parameters
-    ----------
-    h : array_like of float
-        Feedback coefficients (1 to 64).
-    sample_rate : float, Hz
-        Sample rate the filter is meant for (recorded, and checked by
-        :func:`load_coefficients`).
-    path : str or os.PathLike
-        Output file.
-    name : str, optional
-        A label recorded in the file.
-    design : dict, optional
-        Design parameters to record (e.g. ``{"order": 9, "max_gain_db": 13}``).
-
-    Raises
-    ------
-    OutputError
-        If the file cannot be written.
-
-    Notes
-    -----
-    The file holds ``"coefficients"`` (h, for error feedback
-    ``u = x - Σ h_k e[n-k]``), ``"ntf"`` (n = [1, -h]) and the figures of
-    :func:`describe`; :func:`load_coefficients` reads it back.
-    """
-    h = _as_taps(h)
-    if h.size == 0:
-        raise UsageError("there are no coefficients to export (shaping 'none')")
-    info = describe(h, sample_rate)
-    doc = {"requant_shaping": 1, "name": name, "design": design, **info}
-    text = json.dumps(doc, indent=2) + "\n"
-    _atomic_write(Path(path), lambda fh: fh.write(text))

@@ -54,21 +54,22 @@ converted: :mod:`.executors.base`, :mod:`.executors.local`,
 HTML index) and :mod:`.run` (:func:`run_batch`, which puts them together).
 """
 
-from requant.library.executors.base import BatchReporter, Executor, Reporter, WorkerLost, chunk_items
-from requant.library.executors.local import ProcessExecutor, SerialExecutor, default_jobs
-from requant.library.manifest import MANIFEST_NAME, ManifestWriter, read_manifest, sha256_file
-from requant.library.plan import LOCK_NAME, STATE_NAME
-from requant.library.run import run_batch
-from requant.library.settings import (DEFAULT_SETTINGS, OUTPUT_SETTINGS, derive_seed,
-                                      resolve_settings, settings_id, validate_settings)
-from requant.library.summary import INDEX_NAME, SUMMARY_NAME
-from requant.library.task import convert_task
-from requant.library.tree import AUDIO_EXTENSIONS, output_name, walk_tree
+from requant._lazy import lazy_exports
 
-__all__ = [
-    "AUDIO_EXTENSIONS", "DEFAULT_SETTINGS", "OUTPUT_SETTINGS", "MANIFEST_NAME", "SUMMARY_NAME",
-    "INDEX_NAME", "STATE_NAME", "LOCK_NAME", "BatchReporter", "Executor", "Reporter",
-    "ManifestWriter", "SerialExecutor", "ProcessExecutor", "WorkerLost", "chunk_items",
-    "resolve_settings", "validate_settings", "settings_id", "derive_seed", "output_name",
-    "walk_tree", "read_manifest", "sha256_file", "convert_task", "run_batch", "default_jobs",
-]
+_EXPORTS = {
+    **dict.fromkeys(["BatchReporter", "Executor", "Reporter", "WorkerLost", "chunk_items"],
+                    "requant.library.executors.base"),
+    **dict.fromkeys(["ProcessExecutor", "SerialExecutor", "default_jobs"],
+                    "requant.library.executors.local"),
+    **dict.fromkeys(["MANIFEST_NAME", "ManifestWriter", "read_manifest", "sha256_file"],
+                    "requant.library.manifest"),
+    **dict.fromkeys(["LOCK_NAME", "STATE_NAME"], "requant.library.plan"),
+    "run_batch": "requant.library.run",
+    **dict.fromkeys(["DEFAULT_SETTINGS", "BatchSettings", "derive_seed", "resolve_settings",
+                     "settings_id"], "requant.library.settings"),
+    **dict.fromkeys(["INDEX_NAME", "SUMMARY_NAME"], "requant.library.summary"),
+    "convert_task": "requant.library.task",
+    **dict.fromkeys(["AUDIO_EXTENSIONS", "output_name", "walk_tree"], "requant.library.tree"),
+}
+__all__ = list(_EXPORTS)
+__getattr__, __dir__ = lazy_exports(__name__, _EXPORTS)

@@ -15,9 +15,10 @@ import time
 
 from requant.errors import OutputError, RequantError, UsageError
 from requant.library.manifest import MANIFEST_NAME, latest_by_source, read_manifest, sha256_file
-from requant.library.settings import DEFAULT_SETTINGS, derive_seed, settings_id
-from requant.library.summary import public_settings
+from requant.library.settings import derive_seed, settings_id
+from requant.library.task import task_settings
 from requant.library.tree import output_name, walk_tree
+from requant.dsp.quantizer import new_seed
 from requant.recipe import SEED_MAX
 
 __all__ = ["STATE_NAME", "LOCK_NAME", "plan_tasks", "plan_dry_run", "choose_run_seed", "take_lock", "remove_stale_temps", "read_state"]
@@ -60,17 +61,17 @@ def remove_stale_temps(dst):
 
 def plan_tasks(src, dst, settings, *, prune, run_seed, sid, overwrite, events):
     """Decide, per file, what to do. Returns (tasks, parent_events, info)."""
-    entries, excluded = walk_tree(src, include=settings["include"], exclude=settings["exclude"],
+    entries, excluded = walk_tree(src, include=settings.include, exclude=settings.exclude,
                                   prune=prune)
     _, converted, seen_outputs = latest_by_source(events)
     claims = set(read_state(dst).get("claimed_outputs") or ())
     ours = seen_outputs | claims
-    task_settings = {k: settings[k] for k in DEFAULT_SETTINGS if k != "format"}
+    shared = task_settings(settings)
 
     audio = [e for e in entries if e["kind"] == "audio"]
     outs = {}
     for e in audio:
-        e["output"], e["note"] = output_name(e["source"], settings["format"])
+        e["output"], e["note"] = output_name(e["source"], settings.format)
         outs.setdefault(e["output"], []).append(e["source"])
     tasks, parent_events = [], []
     for e in entries:
@@ -114,7 +115,7 @@ def plan_tasks(src, dst, settings, *, prune, run_seed, sid, overwrite, events):
         # before any work starts, and a task run again after its worker died (a local pool's
         # retry, a cluster's rescheduling) finds what the lost worker renamed into place.
         tasks.append({"source": e["source"], "output": rel_out, "source_path": src_path,
-                      "output_path": out_path, "seed": seed, "settings": task_settings,
+                      "output_path": out_path, "seed": seed, "settings": shared,
                       "overwrite": True, "expect_sha256": expect,
                       "reason": reason, "note": e["note"], "size": e["size"],
                       "previous": prev if expect else None})
@@ -123,10 +124,8 @@ def plan_tasks(src, dst, settings, *, prune, run_seed, sid, overwrite, events):
 
 
 def choose_run_seed(settings, dst):
-    from requant.dsp.quantizer import new_seed
-
-    if settings["seed"] is not None:
-        return int(settings["seed"]), "given"
+    if settings.recipe.seed is not None:
+        return settings.recipe.seed, "given"
     prev = read_state(dst).get("run_seed")
     if isinstance(prev, int) and not isinstance(prev, bool) and 0 <= prev <= SEED_MAX:
         return prev, "previous run"
@@ -190,7 +189,7 @@ def plan_dry_run(src, dst, settings, *, prune, overwrite, reporter):
     counts = {k: sum(1 for i in items if i["action"] == k) for k in ("convert", "skip", "fail")}
     result = {"dry_run": True, "src": src, "dst": dst, "items": items, "counts": counts,
               "excluded": info["excluded"], "run_seed": run_seed, "seed_origin": origin,
-              "settings": public_settings(settings), "settings_id": sid if run_seed else None}
+              "settings": settings.to_dict(), "settings_id": sid if run_seed else None}
     reporter.finished(result)
     return result
 

@@ -15,7 +15,7 @@ from requant.library.executors.local import ProcessExecutor, SerialExecutor, def
 from requant.library.manifest import MANIFEST_NAME, ManifestWriter, read_manifest
 from requant.library.plan import (STATE_NAME, choose_run_seed, plan_dry_run, plan_tasks,
                                   remove_stale_temps, take_lock)
-from requant.library.settings import resolve_settings, settings_id, validate_settings
+from requant.library.settings import BatchSettings, settings_id
 from requant.library.summary import INDEX_NAME, SUMMARY_NAME, summarize
 from requant.library.task import convert_task, now_iso, task_payloads, worker_label
 from requant.library.tree import check_folders
@@ -32,8 +32,9 @@ def run_batch(src, dst, settings=None, *, jobs=None, overwrite=False, dry_run=Fa
     src, dst : path
         Source and destination folders. ``dst`` is created if needed (not in
         a dry run). It may lie inside ``src`` (it is not walked).
-    settings : dict, optional
-        From :func:`resolve_settings` (default: library defaults).
+    settings : BatchSettings, optional
+        From :func:`~requant.library.settings.resolve_settings` (default: the
+        library defaults).
     jobs : int, optional
         Worker processes (default: every core); 1 converts in this process.
         Ignored when ``executor`` is given.
@@ -62,7 +63,10 @@ def run_batch(src, dst, settings=None, *, jobs=None, overwrite=False, dry_run=Fa
         Problems with single files never raise: they are recorded.
     """
     reporter = reporter or BatchReporter()
-    settings = validate_settings(settings or resolve_settings())
+    settings = settings if settings is not None else BatchSettings()
+    if not isinstance(settings, BatchSettings):
+        raise TypeError(f"settings must be a BatchSettings (see resolve_settings), not "
+                        f"{type(settings).__name__}")
     src, dst, prune = check_folders(src, dst)
     if dry_run:
         return plan_dry_run(src, dst, settings, prune=prune, overwrite=overwrite, reporter=reporter)

@@ -2,20 +2,15 @@
 
 from requant import __version__
 from requant.library.manifest import MANIFEST_NAME
-from requant.library.settings import DEFAULT_SETTINGS
 from requant.library.task import now_iso
 
-__all__ = ["SUMMARY_NAME", "INDEX_NAME", "public_settings", "summarize"]
+__all__ = ["SUMMARY_NAME", "INDEX_NAME", "summarize"]
 
 
 SUMMARY_NAME = "requant-summary.json"
 
 
 INDEX_NAME = "requant-index.html"
-
-
-def public_settings(settings):
-    return {k: settings[k] for k in list(DEFAULT_SETTINGS) + ["include", "exclude", "seed"]}
 
 
 def summarize(src, dst, settings, recorded, *, tasks, info, started, wall_s, run_seed,
@@ -59,7 +54,7 @@ def summarize(src, dst, settings, recorded, *, tasks, info, started, wall_s, run
         "jobs": executor.workers if executor is not None else 0,
         "executor": executor.description if executor is not None else "none",
         "profile": profile_path,
-        "settings": public_settings(settings),
+        "settings": settings.to_dict(),
         "settings_id": sid,
         "run_seed": run_seed,
         "seed_origin": seed_origin,

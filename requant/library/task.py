@@ -11,12 +11,15 @@ import socket
 import sys
 import time
 
+from requant.audio_io.atomic import pending_path
+from requant.audio_io.formats import format_for_path
+from requant.convert import Outputs, convert_file
 from requant.errors import InputError, OutputError, RequantError
-from requant.audio_io.metadata import CarryMetadata, is_riff_wave, source_tags
+from requant.recipe import Recipe
 from requant.library.executors.base import WORKER, Terminated
 from requant.library.manifest import sha256_file
 
-__all__ = ["convert_task", "task_payloads", "now_iso", "worker_label"]
+__all__ = ["convert_task", "task_settings", "task_payloads", "now_iso", "worker_label"]
 
 
 HOST = socket.gethostname()
@@ -28,6 +31,13 @@ def now_iso():
 
 def worker_label():
     return f"{HOST}:{os.getpid()}"
+
+
+def task_settings(settings):
+    """What every task of a batch carries of its settings, as plain data: the recipe
+    (its seed replaced by each file's own), the block size and whether to analyze."""
+    return {"recipe": settings.recipe.to_dict(), "block_frames": settings.block_frames,
+            "analyze": settings.analyze}
 
 
 def _classify(report, meta):
@@ -81,10 +91,6 @@ def _figures(report):
 
 
 def _convert_one(task):
-    from requant.audio_io.atomic import pending_path
-    from requant.convert import convert_file
-    from requant.audio_io.formats import format_for_path
-
     src, out = task["source_path"], task["output_path"]
     for path in (src, out):
         try:
@@ -110,16 +116,11 @@ def _convert_one(task):
         raise OutputError(f"{out!r} already exists and was not written by requant batch; "
                           "move it away or pass --overwrite to replace it")
     s = task["settings"]
+    recipe = Recipe.from_dict(s["recipe"]).with_seed(task["seed"])
     out_fmt = format_for_path(out)
-    is_wav = is_riff_wave(src)
-    tags = {} if (out_fmt == "WAV" and is_wav) else source_tags(src)
-    fin = CarryMetadata(src, out, s, tags, is_wav)
-    report = convert_file(src, out, bits=s["bits"], quantizer=s["quantizer"], dither=s["dither"],
-                          shaping=s["shaping"], shaping_order=s["shaping_order"],
-                          shaping_limit_db=s["shaping_limit_db"], seed=task["seed"],
-                          overwrite=task["overwrite"], force_dither=s["force_dither"],
-                          block_frames=s["block_frames"], tags=tags or None, finalize=fin,
-                          analyze=s["analyze"])
+    report = convert_file(src, out, recipe,
+                          outputs=Outputs(overwrite=task["overwrite"], metadata=True),
+                          block_frames=s["block_frames"], analyze=s["analyze"])
     meta = report["output"].get("metadata") or {}
     warnings = list(report["warnings"])
     kinds = _classify(report, meta)

@@ -12,7 +12,11 @@ import posixpath
 
 from requant.errors import InputError, UsageError
 
-__all__ = ["AUDIO_EXTENSIONS", "output_name", "walk_tree", "check_folders"]
+#: Allowed values of a batch's ``format`` (``same`` keeps WAV, FLAC and AIFF sources in
+#: their format and writes anything else as WAV).
+OUTPUT_CHOICES = ("same", "wav", "flac", "aiff")
+
+__all__ = ["OUTPUT_CHOICES", "AUDIO_EXTENSIONS", "output_name", "walk_tree", "check_folders"]
 
 
 #: Extensions (lower case) of files libsndfile reads; everything else is "not audio".

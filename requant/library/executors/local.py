@@ -208,7 +208,17 @@ class ProcessExecutor:
         if exc is not None:
             return [(item, exc) for item in chunk]
         results, pending = fut.result()
-        return list(zip(chunk, commit_chunk(chunk, results, pending)))
+        # take the pairs out of the stored result first, so a chunk processed again (after
+        # an interrupt during its commit) is not committed twice
+        pairs, pending[:] = list(pending), []
+        return list(zip(chunk, commit_chunk(chunk, results, pairs)))
+
+    def _finished(self, fut):
+        """A finished future's pairs; it leaves the in-flight set only once committed, so an
+        interrupt before that leaves it to :meth:`drain`."""
+        pairs = self._pairs(self._inflight[fut], fut)
+        del self._inflight[fut]
+        return pairs
 
     def _collect_broken(self):
         """After a worker death: results of finished chunks, and the items to retry."""
@@ -281,7 +291,7 @@ class ProcessExecutor:
                 if isinstance(fut.exception(), BrokenProcessPool):
                     broken = True
                     continue
-                yield from self._pairs(self._inflight.pop(fut), fut)
+                yield from self._finished(fut)
             if broken:
                 finished, retry = self._collect_broken()
                 yield from finished
@@ -316,7 +326,7 @@ class ProcessExecutor:
                 break
             done, _ = wait(list(self._inflight), timeout=left, return_when=FIRST_COMPLETED)
             for fut in done:
-                yield from self._pairs(self._inflight.pop(fut), fut)
+                yield from self._finished(fut)
 
     def close(self):
         """Stop the workers (waits for them)."""

@@ -1,0 +1,148 @@
+"""What every command shares: options declared once, the caution, one-line errors.
+
+Each option is declared here once (:data:`OPTIONS`: its flags, help and limits)
+and given to every command as an ``Annotated`` type, with its default taken
+from the library (:class:`~requant.recipe.Recipe`), so commands cannot drift
+apart. Commands that layer a profile under the options (``batch``) use the
+``Maybe...`` forms, whose default is None ("not given").
+
+This module imports only typer and requant's light modules, so ``requant
+--help`` stays fast.
+"""
+
+from __future__ import annotations
+
+import functools
+import sys
+from enum import Enum
+from pathlib import Path
+from typing import Annotated, List, Optional
+
+import typer
+
+from requant.audio_io.formats import DEFAULT_BLOCK_FRAMES, MAX_BLOCK_FRAMES
+from requant.recipe import DEFAULT_LIMIT_DB, DEFAULT_ORDER, DITHERS, MAX_TAPS, QUANTIZERS, SEED_MAX
+from requant.recipe import Recipe
+
+__all__ = ["CAUTION", "DEFAULTS", "err", "friendly", "set_debug", "Quantizer", "Dither",
+           "recipe_options", "OPTIONS", "Bits", "QuantizerOpt", "DitherOpt", "ShapingOpt",
+           "ShapingOrder", "ShapingLimit", "ShaperOrder", "ShaperLimit", "Seed", "ForceDither", "Overwrite", "Quiet",
+           "BlockFrames", "MaybeBits", "MaybeQuantizer", "MaybeDither", "MaybeShaping",
+           "MaybeForceDither", "MaybeBlockFrames", "ErrorPath", "ReportPaths"]
+
+#: The short caution printed after work that may be loud.
+CAUTION = ("Caution: few-bit outputs and error signals can be loud. Start playback at a low "
+           "level; your own judgement and local workplace rules on hearing come first.")
+
+#: The library's defaults, which every command's defaults come from.
+DEFAULTS = Recipe()
+
+_DEBUG = {"on": False}
+
+
+def set_debug(on):
+    """Show tracebacks instead of one-line errors (``requant --debug``)."""
+    _DEBUG["on"] = bool(on)
+
+
+def err(text):
+    """One error line on stderr."""
+    print(f"requant: error: {text}", file=sys.stderr)
+
+
+def friendly(fn):
+    """Turn domain errors into one line and an exit code (tracebacks with --debug)."""
+
+    @functools.wraps(fn)
+    def wrapper(*args, **kwargs):
+        from requant.errors import RequantError
+
+        try:
+            return fn(*args, **kwargs)
+        except RequantError as exc:
+            if _DEBUG["on"]:
+                raise
+            err(str(exc))
+            raise typer.Exit(code=exc.exit_code) from None
+        except KeyboardInterrupt:
+            if _DEBUG["on"]:
+                raise
+            err("interrupted; no partial output was left behind")
+            raise typer.Exit(code=130) from None
+
+    return wrapper
+
+
+Quantizer = Enum("Quantizer", {q: q for q in QUANTIZERS}, type=str)
+Quantizer.__doc__ = "The quantizers of requant.recipe.QUANTIZERS."
+Dither = Enum("Dither", {d.replace("-", "_"): d for d in DITHERS}, type=str)
+Dither.__doc__ = "The dithers of requant.recipe.DITHERS."
+
+#: Every shared option: flags, help, limits, and the default shown for layered forms.
+OPTIONS = {
+    "bits": (("--bits", "-b"), "Target word length.", {"min": 1, "max": 32}, DEFAULTS.bits),
+    "quantizer": (("--quantizer",), "round: nearest, ties up; truncate: toward minus infinity.",
+                  {}, DEFAULTS.quantizer),
+    "dither": (("--dither",), "Dither added before quantizing.", {}, DEFAULTS.dither),
+    "shaping": (("--shaping",), "Noise shaping: none, first-order, hearing, a JSON file of "
+                "coefficients, or a comma list h1,h2,...", {}, DEFAULTS.shaping.kind),
+    "shaping_order": (("--shaping-order",), "Order of the 'hearing' design "
+                      f"[default: {DEFAULT_ORDER}].", {"min": 1, "max": MAX_TAPS}, None),
+    "shaping_limit": (("--shaping-limit",), "Limit on the total noise gain of the "
+                      f"'hearing' design, dB [default: {DEFAULT_LIMIT_DB:g}].", {}, None),
+    "seed": (("--seed",), "Dither seed; the same seed gives the same bits. Default: fresh, "
+             "reported.", {"min": 0, "max": SEED_MAX}, None),
+    "force_dither": (("--force-dither/--no-force-dither",), "Dither even if the input already "
+                     "lies on the target grid.", {}, "no"),
+    "overwrite": (("--overwrite",), "Replace existing outputs (never the input).", {}, None),
+    "quiet": (("--quiet", "-q"), "Print only warnings and errors.", {}, None),
+    "block_frames": (("--block-frames",), "Frames per block (the output is the same for any "
+                     "value).", {"min": 1, "max": MAX_BLOCK_FRAMES}, DEFAULT_BLOCK_FRAMES),
+}
+
+
+def _option(key, *, layered=False, aliases=()):
+    decls, text, limits, shown = OPTIONS[key]
+    decls = (*decls, *aliases)
+    if layered and shown is not None:
+        text = f"{text} [default: {shown}]"
+    return typer.Option(*decls, help=text, show_default=not layered, **limits)
+
+
+Bits = Annotated[int, _option("bits")]
+QuantizerOpt = Annotated[Quantizer, _option("quantizer")]
+DitherOpt = Annotated[Dither, _option("dither")]
+ShapingOpt = Annotated[str, _option("shaping")]
+ShapingOrder = Annotated[Optional[int], _option("shaping_order")]
+ShapingLimit = Annotated[Optional[float], _option("shaping_limit")]
+#: ``shaper show`` also takes the short names it has always had.
+ShaperOrder = Annotated[Optional[int], _option("shaping_order", aliases=("--order",))]
+ShaperLimit = Annotated[Optional[float], _option("shaping_limit", aliases=("--limit",))]
+Seed = Annotated[Optional[int], _option("seed")]
+ForceDither = Annotated[bool, _option("force_dither")]
+Overwrite = Annotated[bool, _option("overwrite")]
+Quiet = Annotated[bool, _option("quiet")]
+BlockFrames = Annotated[int, _option("block_frames")]
+
+MaybeBits = Annotated[Optional[int], _option("bits", layered=True)]
+MaybeQuantizer = Annotated[Optional[Quantizer], _option("quantizer", layered=True)]
+MaybeDither = Annotated[Optional[Dither], _option("dither", layered=True)]
+MaybeShaping = Annotated[Optional[str], _option("shaping", layered=True)]
+MaybeForceDither = Annotated[Optional[bool], _option("force_dither", layered=True)]
+MaybeBlockFrames = Annotated[Optional[int], _option("block_frames", layered=True)]
+
+ErrorPath = Annotated[Optional[Path], typer.Option(
+    "--error", help="Write the error signal (output minus input), 32-bit float .wav or .aiff.")]
+ReportPaths = Annotated[Optional[List[Path]], typer.Option(
+    "--report", help="Write the report: .json, .html (one self-contained page) or .md "
+                     "(pictures beside it); repeat for several forms.")]
+
+
+def recipe_options(*, bits, quantizer, dither, shaping, shaping_order, shaping_limit, seed,
+                   force_dither):
+    """The recipe keys given on a command line (None: not given), as a flat dict."""
+    flat = {"bits": bits, "quantizer": getattr(quantizer, "value", quantizer),
+            "dither": getattr(dither, "value", dither), "shaping": shaping,
+            "shaping_order": shaping_order, "shaping_limit_db": shaping_limit, "seed": seed,
+            "force_dither": force_dither}
+    return {k: v for k, v in flat.items() if v is not None}

@@ -1,0 +1,105 @@
+"""``requant convert``: one file, its error signal and reports."""
+
+from __future__ import annotations
+
+import sys
+from pathlib import Path
+from typing import Annotated
+
+import typer
+
+from requant.cli.common import (CAUTION, DEFAULTS, BlockFrames, Bits, Dither, DitherOpt,
+                                    ErrorPath, ForceDither, Overwrite, Quantizer, QuantizerOpt,
+                                    Quiet, ReportPaths, Seed, ShapingLimit, ShapingOpt,
+                                    ShapingOrder, recipe_options)
+from requant.audio_io.formats import DEFAULT_BLOCK_FRAMES
+
+__all__ = ["convert", "summary_line"]
+
+
+def convert(
+    input: Annotated[Path, typer.Argument(help="Audio file to requantize (any PCM or float file).")],
+    output: Annotated[Path, typer.Argument(help="Output file: .wav, .flac or .aiff.")],
+    bits: Bits = DEFAULTS.bits,
+    quantizer: QuantizerOpt = Quantizer(DEFAULTS.quantizer),
+    dither: DitherOpt = Dither(DEFAULTS.dither),
+    shaping: ShapingOpt = DEFAULTS.shaping.kind,
+    shaping_order: ShapingOrder = None,
+    shaping_limit: ShapingLimit = None,
+    seed: Seed = DEFAULTS.seed,
+    error: ErrorPath = None,
+    report: ReportPaths = None,
+    overwrite: Overwrite = False,
+    force_dither: ForceDither = DEFAULTS.force_dither,
+    block_frames: BlockFrames = DEFAULT_BLOCK_FRAMES,
+    quiet: Quiet = False,
+):
+    """Requantize one file; optionally write its error signal and a report."""
+    from requant.convert import Outputs, convert_file
+    from requant.recipe import Recipe
+
+    recipe = Recipe.from_dict(recipe_options(
+        bits=bits, quantizer=quantizer, dither=dither, shaping=shaping,
+        shaping_order=shaping_order, shaping_limit=shaping_limit, seed=seed,
+        force_dither=force_dither))
+    outputs = Outputs(error=error, report=tuple(report or ()), overwrite=overwrite)
+    progress = _ProgressPrinter(quiet)
+    try:
+        rep = convert_file(input, output, recipe, outputs=outputs, block_frames=block_frames,
+                           progress=progress)
+    finally:
+        progress.close()
+    if not quiet:
+        print(summary_line(rep))
+        for note in rep["notes"]:
+            print(f"note: {note}")
+    for w in rep["warnings"]:
+        print(f"warning: {w}", file=sys.stderr)
+    if (bits <= 8 or error is not None) and not quiet:
+        print(CAUTION, file=sys.stderr)
+
+
+def _fmt(v, spec=".2f", none="n/a"):
+    return none if v is None else format(v, spec)
+
+
+def summary_line(rep):
+    """What a conversion did, in two lines: the output, then measured against predicted."""
+    m, p, s = rep["measured"], rep["predicted"], rep["settings"]
+    out = rep["output"]
+    method = (f"{s['quantizer']}, dither {s['dither_applied']}, shaping {s['shaping']}, "
+              f"seed {s['seed']}")
+    if out["passthrough"]:
+        return (f"wrote {out['path']} ({out['bits']}-bit {out['subtype']} {out['format']}): the "
+                f"input already lies on the {out['bits']}-bit grid, copied unchanged")
+    return (f"wrote {out['path']} ({out['bits']}-bit {out['subtype']} {out['format']}; {method})\n"
+            f"  SNR {_fmt(m['snr_db'])} dB measured, {_fmt(p['snr_db'])} dB predicted; "
+            f"error {_fmt(m['error_power_lsb2'], '.4f')} LSB² measured, "
+            f"{_fmt(p['error_power_lsb2'], '.4f')} LSB² predicted")
+
+
+class _ProgressPrinter:
+    """A rich progress bar on a terminal, for files longer than 30 s; nothing otherwise."""
+
+    def __init__(self, quiet):
+        self._bar = None
+        self._task = None
+        self._on = (not quiet) and sys.stderr.isatty()
+
+    def __call__(self, done, total):
+        if not self._on:
+            return
+        if self._bar is None:
+            if total < 48000 * 30:
+                self._on = False
+                return
+            from rich.progress import Progress
+
+            self._bar = Progress(transient=True)
+            self._bar.start()
+            self._task = self._bar.add_task("requantizing", total=total)
+        self._bar.update(self._task, completed=done)
+
+    def close(self):
+        if self._bar is not None:
+            self._bar.stop()
