@@ -7,7 +7,7 @@ BIN    := $(VENV)/bin
 STAMP  := $(VENV)/.installed-stamp
 BROWSER_STAMP := $(VENV)/.browser-stamp
 
-.PHONY: demo test bench clean
+.PHONY: demo test test-fast lint bench clean
 
 $(STAMP): pyproject.toml
 	$(PYTHON) -m venv $(VENV)
@@ -28,8 +28,17 @@ $(BROWSER_STAMP): $(STAMP)
 demo: $(STAMP)
 	$(BIN)/requant demo --out demo_output
 
-test: $(STAMP) $(BROWSER_STAMP)
+# The whole suite, after the linter (CI runs this).
+test: $(STAMP) $(BROWSER_STAMP) lint
 	$(BIN)/python -m pytest
+
+# The edit loop: everything but the tests marked slow (cluster, browser, process kills,
+# fresh kernel compiles); under a minute once the kernels are compiled.
+test-fast: $(STAMP)
+	$(BIN)/python -m pytest -m "not slow" -q
+
+lint: $(STAMP)
+	$(BIN)/ruff check requant tests benchmarks demo_audio
 
 bench: $(STAMP)
 	$(BIN)/python benchmarks/bench_convert.py

@@ -664,6 +664,7 @@ def test_unusual_names(tmp_path):
 
 # --------------------------------------------------------------------------- the command line
 
+@pytest.mark.slow
 def test_cli_exit_codes(tree, tmp_path):
     code, out, err = run_cli("batch", tree, tmp_path / "o1", "--seed", 1, "--jobs", 1)
     assert code == 1, err
@@ -721,6 +722,7 @@ def _wait_for_lines(proc, manifest, n, timeout=60):
     raise AssertionError("the manifest did not grow")
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("jobs", [1, 2])
 def test_sigkill_then_resume(tmp_path, jobs):
     src, dst = tmp_path / "src", tmp_path / "out"
@@ -757,6 +759,7 @@ def test_sigkill_then_resume(tmp_path, jobs):
     assert summary["counts"]["up_to_date"] >= 1
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("target, jobs", [("parent", 1), ("parent", 2), ("group", 2)])
 def test_sigint_stops_cleanly(tmp_path, target, jobs):
     src, dst = tmp_path / "src", tmp_path / "out"

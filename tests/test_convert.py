@@ -104,7 +104,7 @@ def test_report_keys_and_consistency(tmp_path, float_wav):
     assert rep["measured"]["error_power_lsb2"] == pytest.approx(0.25, rel=0.03)
 
 
-@pytest.mark.parametrize("block", [1, 7, 4096, 10007])
+@pytest.mark.parametrize("block", [pytest.param(1, marks=pytest.mark.slow), 7, 4096, 10007])
 @pytest.mark.parametrize("shaping", ["none", "1.2,-0.5"])
 def test_file_blocks_equal_whole(tmp_path, block, shaping):
     src = tmp_path / "in.wav"

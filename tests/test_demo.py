@@ -3,11 +3,13 @@
 import json
 
 import numpy as np
+import pytest
 import soundfile as sf
 
 from requant.demo import DEMO_FILES, default_demo_dir, run_demo, synthesize_demo_audio
 
 
+@pytest.mark.slow
 def test_bundled_audio_is_what_the_script_makes(tmp_path):
     # the demo audio is ours, synthesized by seeded code: regenerating it gives the same samples
     synthesize_demo_audio(tmp_path)
@@ -17,6 +19,7 @@ def test_bundled_audio_is_what_the_script_makes(tmp_path):
         assert ra == rb and np.array_equal(a, b), name
 
 
+@pytest.mark.slow
 def test_demo_runs_and_tells_dithered_from_undithered(tmp_path):
     table = run_demo(tmp_path / "out", seed=5)
     lines = table.splitlines()

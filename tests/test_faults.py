@@ -394,6 +394,7 @@ def wait_for(predicate, timeout=60.0):
     return False
 
 
+@pytest.mark.slow
 def test_sigint_during_convert_leaves_nothing(tmp_path):
     # a long enough file that the conversion is still running when the signal arrives
     rate = 48000
@@ -495,6 +496,7 @@ def test_batch_missing_source_and_same_folder(tmp_path):
     assert tree_state(tmp_path) == before
 
 
+@pytest.mark.slow
 def test_sigint_during_batch_leaves_nothing_partial(tmp_path):
     src = tmp_path / "lib"
     src.mkdir()

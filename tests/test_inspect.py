@@ -415,7 +415,7 @@ def _busy_file(tmp_path, subtype):
 
 
 @pytest.mark.parametrize("subtype", ["PCM_24", "FLOAT", "DOUBLE"])
-@pytest.mark.parametrize("block_frames", [1, 7, 400, 4096])
+@pytest.mark.parametrize("block_frames", [pytest.param(1, marks=pytest.mark.slow), 7, 400, 4096])
 def test_tiny_blocks_give_the_same_report(tmp_path, subtype, block_frames):
     path = _busy_file(tmp_path, subtype)
     ref = inspect_file(path)

@@ -25,11 +25,11 @@ FS = 48000
 CHROMIUM = shutil.which("chromium") or shutil.which("chromium-browser")
 CHROMEDRIVER = shutil.which("chromedriver") or "/usr/bin/chromedriver"
 
-pytestmark = pytest.mark.skipif(
+pytestmark = [pytest.mark.slow, pytest.mark.skipif(
     CHROMIUM is None,
     reason="chromium is not installed (apt-get install -y chromium chromium-driver); "
            "'make test' installs it",
-)
+)]
 
 # Installed before the page's own scripts run: records uncaught errors and rejections.
 ERROR_TRAP = """

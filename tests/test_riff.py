@@ -676,6 +676,7 @@ def _call_bounded(fn, *args, **kwargs):
 FUZZ = settings(max_examples=200, deadline=timedelta(seconds=5), derandomize=True, database=None)
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("form", ["riff", "rf64"])
 def test_fuzz_mutated_source(tmp_path_factory, form):
     base, size_fields, payload_ranges, codes = _fuzz_base(form)
@@ -725,6 +726,7 @@ def test_fuzz_mutated_source(tmp_path_factory, form):
     check()
 
 
+@pytest.mark.slow
 def test_fuzz_mutated_output(tmp_path_factory):
     base, _, _, codes = _fuzz_base("riff")
     folder = tmp_path_factory.mktemp("fuzz_out")

@@ -305,7 +305,7 @@ from requant.dsp.truepeak import DualTruePeakMeter, dual_peak_kernel_py  # noqa:
 
 
 @pytest.mark.parametrize("kind", ["noise", "bursts", "silence-then-tone"])
-@pytest.mark.parametrize("block", [7, 1000, 65536])
+@pytest.mark.parametrize("block", [pytest.param(7, marks=pytest.mark.slow), 1000, 65536])
 @pytest.mark.parametrize("dtype", [np.float64, np.float32])
 def test_dual_meter_equals_two_meters(kind, block, dtype):
     # The skip rule (gain × max|x| bounds every interpolated sample) must never change a

@@ -237,6 +237,9 @@ def batch(
         help="Convert on the workers of an existing dask.distributed scheduler (needs "
              "requant[cluster]); SRC and DST must be shared storage at the same paths on "
              "every worker.")] = None,
+    cluster_timeout: Annotated[float, typer.Option(
+        "--cluster-timeout", min=0.1, max=600.0,
+        help="Seconds to wait for the dask scheduler to answer.")] = 10.0,
     overwrite: Annotated[bool, typer.Option(
         "--overwrite", help="Replace outputs in DST that requant batch did not write.")] = False,
     dry_run: Annotated[bool, typer.Option(
@@ -265,7 +268,7 @@ def batch(
                     "exclude": exclude or None, "block_frames": block_frames,
                     "analyze": analyze})
     settings = resolve_settings(options, prof)
-    executor = _executor(cluster, jobs)
+    executor = _executor(cluster, jobs, cluster_timeout)
     reporter = ConsoleReporter(quiet=quiet)
     try:
         if executor is not None and not dry_run:
@@ -280,7 +283,7 @@ def batch(
     _report_outcome(result, settings, dry_run=dry_run, quiet=quiet)
 
 
-def _executor(cluster, jobs):
+def _executor(cluster, jobs, timeout_s):
     """The cluster executor when --cluster is given, else None (run_batch picks local)."""
     if cluster is None:
         return None
@@ -291,7 +294,7 @@ def _executor(cluster, jobs):
         raise UsageError("--jobs sets local worker processes and does not combine with "
                          "--cluster (the dask workers' --nworkers and --nthreads decide); "
                          "leave out --jobs")
-    return DaskExecutor(cluster)
+    return DaskExecutor(cluster, connect_timeout=timeout_s)
 
 
 def _report_outcome(result, settings, *, dry_run, quiet):

@@ -9,6 +9,7 @@ import threading
 import time
 
 from requant import __version__
+from requant.audio_io.writers import write_json_atomic
 from requant.errors import OutputError, RequantError
 from requant.library.executors.base import BatchReporter, WorkerLost
 from requant.library.executors.local import ProcessExecutor, SerialExecutor, default_jobs
@@ -16,7 +17,8 @@ from requant.library.manifest import MANIFEST_NAME, ManifestWriter, read_manifes
 from requant.library.plan import (STATE_NAME, choose_run_seed, plan_dry_run, plan_tasks,
                                   remove_stale_temps, take_lock)
 from requant.library.settings import BatchSettings, settings_id
-from requant.library.summary import INDEX_NAME, SUMMARY_NAME, summarize
+from requant.library.index import IndexBuilder
+from requant.library.summary import INDEX_NAME, SUMMARY_NAME, RunRecord, summarize
 from requant.library.task import convert_task, now_iso, task_payloads, worker_label
 from requant.library.tree import check_folders
 
@@ -79,85 +81,123 @@ def run_batch(src, dst, settings=None, *, jobs=None, overwrite=False, dry_run=Fa
                           "the path and permissions") from None
     lock_fd = take_lock(dst)
     try:
-        return _run_locked(src, dst, settings, prune=prune, jobs=jobs, overwrite=overwrite,
-                           reporter=reporter, executor=executor, profile_path=profile_path,
-                           t_start=t_start, started=started)
+        run = _Run(src, dst, settings, prune=prune, reporter=reporter, started=started)
+        run.plan(overwrite=overwrite)
+        run.start(executor, jobs)
+        try:
+            try:
+                run.convert()
+            finally:
+                run.stop()
+            return run.finish(wall_s=time.perf_counter() - t_start, profile_path=profile_path)
+        finally:
+            run.restore_signals()
     finally:
         os.close(lock_fd)
 
 
-def _run_locked(src, dst, settings, *, prune, jobs, overwrite, reporter, executor, profile_path,
-                t_start, started):
-    from requant.audio_io.writers import write_json_atomic
+class _Run:
+    """One batch run, in the steps :func:`run_batch` takes: plan, start, convert, stop, finish.
 
-    stale = remove_stale_temps(dst)
-    manifest_path = os.path.join(dst, MANIFEST_NAME)
-    events, bad_lines = read_manifest(manifest_path)
-    run_seed, seed_origin = choose_run_seed(settings, dst)
-    sid = settings_id(settings, run_seed)
-    tasks, parent_events, info = plan_tasks(src, dst, settings, prune=prune, run_seed=run_seed,
-                                       sid=sid, overwrite=overwrite, events=events)
-    del events
-    claims = info["claims"] | {t["output"] for t in tasks}
-    try:
-        write_json_atomic({"format": "requant-batch-state", "version": 1,
-                           "requant_version": __version__, "run_seed": run_seed,
-                           "updated": now_iso(), "claimed_outputs": sorted(claims)},
-                          os.path.join(dst, STATE_NAME))
-    except OSError as exc:
-        raise OutputError(f"cannot write in the destination {dst!r} ({exc.strerror or exc}); "
-                          "free some space or choose a writable folder") from None
-    # biggest first: long files start early and do not trail at the end
-    tasks.sort(key=lambda t: (-t["size"], t["source"]))
-    notes = []
-    if stale:
-        notes.append(f"removed {len(stale)} temporary file(s) left by an interrupted run")
-    if bad_lines:
-        notes.append(f"the manifest had {bad_lines} unreadable line(s) (a run was cut off); they "
-                     "were ignored")
+    It holds what the steps share: the plan, the executor, the manifest and index being
+    written, the events recorded and the progress totals.
+    """
 
-    run_id = f"{started}-{os.getpid()}"
-    n_workers = min(jobs or default_jobs(), max(1, len(tasks)))
-    own_executor = executor is None
-    if executor is None:
-        executor = SerialExecutor() if n_workers <= 1 else ProcessExecutor(n_workers)
-    if tasks:
-        executor.start()  # before the reporter may start a progress thread (fork safety)
+    def __init__(self, src, dst, settings, *, prune, reporter, started):
+        self.src, self.dst, self.settings, self.prune = src, dst, settings, prune
+        self.reporter, self.started = reporter, started
+        self.run_id = f"{started}-{os.getpid()}"
+        self.recorded = []
+        self.notes = []
+        self.interrupted = False
+        self.executor = None
+        self.own_executor = False
+        self._old_sigint = None
 
-    totals = {"files_done": 0, "files_total": len(tasks) + len(parent_events), "bytes_done": 0,
-              "bytes_total": sum(t["size"] for t in tasks), "audio_s_done": 0.0}
-    reporter.started({"src": src, "dst": dst, "files": totals["files_total"],
-                      "audio_files": len(tasks), "bytes": totals["bytes_total"],
-                      "jobs": executor.workers if tasks else 0,
-                      "executor": executor.description if tasks else "none",
-                      "threads_ok": not (tasks and getattr(executor, "forks", False)),
-                      "run_seed": run_seed, "seed_origin": seed_origin, "settings_id": sid})
-    for n in notes:
-        reporter.message("note", n)
+    # ------------------------------------------------------------------ plan
 
-    from requant.library.index import IndexBuilder
+    def plan(self, *, overwrite):
+        """Decide what each file needs, claim the outputs this run may write."""
+        stale = remove_stale_temps(self.dst)
+        self.manifest_path = os.path.join(self.dst, MANIFEST_NAME)
+        events, bad_lines = read_manifest(self.manifest_path)
+        self.run_seed, self.seed_origin = choose_run_seed(self.settings, self.dst)
+        self.sid = settings_id(self.settings, self.run_seed)
+        self.tasks, self.parent_events, self.info = plan_tasks(
+            self.src, self.dst, self.settings, prune=self.prune, run_seed=self.run_seed,
+            sid=self.sid, overwrite=overwrite, events=events)
+        del events
+        self._claim(self.info["claims"] | {t["output"] for t in self.tasks})
+        # biggest first: long files start early and do not trail at the end
+        self.tasks.sort(key=lambda t: (-t["size"], t["source"]))
+        self.by_source = {t["source"]: t for t in self.tasks}
+        if stale:
+            self.notes.append(f"removed {len(stale)} temporary file(s) left by an interrupted run")
+        if bad_lines:
+            self.notes.append(f"the manifest had {bad_lines} unreadable line(s) (a run was cut "
+                              "off); they were ignored")
 
-    manifest = ManifestWriter(manifest_path)
-    index = IndexBuilder()
-    recorded = []
-    parent_label = worker_label()
+    def _claim(self, claims):
+        try:
+            write_json_atomic({"format": "requant-batch-state", "version": 1,
+                               "requant_version": __version__, "run_seed": self.run_seed,
+                               "updated": now_iso(), "claimed_outputs": sorted(claims)},
+                              os.path.join(self.dst, STATE_NAME))
+        except OSError as exc:
+            raise OutputError(f"cannot write in the destination {self.dst!r} "
+                              f"({exc.strerror or exc}); free some space or choose a writable "
+                              "folder") from None
 
-    def record(ev, size=0):
+    # ------------------------------------------------------------------ start
+
+    def start(self, executor, jobs):
+        """Start the executor (before any thread of ours: fork safety), then the reporter."""
+        tasks = self.tasks
+        n_workers = min(jobs or default_jobs(), max(1, len(tasks)))
+        self.own_executor = executor is None
+        if executor is None:
+            executor = SerialExecutor() if n_workers <= 1 else ProcessExecutor(n_workers)
+        self.executor = executor
+        if tasks:
+            executor.start()
+        self.totals = {"files_done": 0, "files_total": len(tasks) + len(self.parent_events),
+                       "bytes_done": 0, "bytes_total": sum(t["size"] for t in tasks),
+                       "audio_s_done": 0.0}
+        self.reporter.started({
+            "src": self.src, "dst": self.dst, "files": self.totals["files_total"],
+            "audio_files": len(tasks), "bytes": self.totals["bytes_total"],
+            "jobs": executor.workers if tasks else 0,
+            "executor": executor.description if tasks else "none",
+            "threads_ok": not (tasks and getattr(executor, "forks", False)),
+            "run_seed": self.run_seed, "seed_origin": self.seed_origin, "settings_id": self.sid})
+        for n in self.notes:
+            self.reporter.message("note", n)
+        self.manifest = ManifestWriter(self.manifest_path)
+        self.index = IndexBuilder()
+        self.parent_label = worker_label()
+
+    # ------------------------------------------------------------------ convert
+
+    def record(self, ev, size=0):
+        """Append one event to the manifest and the index, and report it."""
         ev.setdefault("error", None)
-        ev["settings_id"] = sid
-        ev["run_id"] = run_id
+        ev["settings_id"] = self.sid
+        ev["run_id"] = self.run_id
         ev["timestamp"] = now_iso()
-        ev.setdefault("worker", parent_label)
-        manifest.append(ev)
-        recorded.append(ev)
-        index.add(ev)
-        totals["files_done"] += 1
-        totals["bytes_done"] += size
+        ev.setdefault("worker", self.parent_label)
+        self.manifest.append(ev)
+        self.recorded.append(ev)
+        self.index.add(ev)
+        t = self.totals
+        t["files_done"] += 1
+        t["bytes_done"] += size
         if ev["status"] in ("converted", "skipped") and ev.get("duration_s"):
-            totals["audio_s_done"] += ev["duration_s"]
-        reporter.file_done(ev, dict(totals))
+            t["audio_s_done"] += ev["duration_s"]
+        self.reporter.file_done(ev, dict(t))
 
-    def from_result(task, res):
+    @staticmethod
+    def event_from(task, res):
+        """The manifest event of a task's result (a dict, or the exception it ended in)."""
         if isinstance(res, BaseException):
             ev = {"source": task["source"], "output": task["output"], "seed": task["seed"],
                   "status": "failed",
@@ -175,51 +215,62 @@ def _run_locked(src, dst, settings, *, prune, jobs, overwrite, reporter, executo
             ev["converted_at"] = prev.get("timestamp")
         return ev
 
-    by_source = {t["source"]: t for t in tasks}
-    interrupted = False
-    old_sigint = None
-    try:
+    def convert(self):
+        """Record the planned outcomes, then every file's as it finishes; after Ctrl-C,
+        record what the executor gives back while it drains."""
         try:
-            for ev in parent_events:
-                record(ev)
-            for item, res in executor.imap_unordered(convert_task, task_payloads(tasks),
-                                                     tick=getattr(reporter, "tick", None)):
-                task = by_source[item["source"]]
-                ev = from_result(task, res)
+            for ev in self.parent_events:
+                self.record(ev)
+            for item, res in self.executor.imap_unordered(
+                    convert_task, task_payloads(self.tasks),
+                    tick=getattr(self.reporter, "tick", None)):
+                task = self.by_source[item["source"]]
+                ev = self.event_from(task, res)
                 if ev.get("status") == "interrupted":
                     raise KeyboardInterrupt
-                record(ev, task["size"])
+                self.record(ev, task["size"])
                 # the workers are busy now: load the index templates while they convert
-                index.prepare()
+                self.index.prepare()
         except KeyboardInterrupt:
-            interrupted = True
+            self.interrupted = True
             if threading.current_thread() is threading.main_thread():
-                old_sigint = signal.signal(signal.SIGINT, signal.SIG_IGN)
-            for item, res in executor.drain():
-                task = by_source[item["source"]]
-                ev = from_result(task, res)
+                # further Ctrl-C are ignored until the summary is written (restore_signals)
+                self._old_sigint = signal.signal(signal.SIGINT, signal.SIG_IGN)
+            for item, res in self.executor.drain():
+                task = self.by_source[item["source"]]
+                ev = self.event_from(task, res)
                 if ev.get("status") in ("converted", "failed", "skipped"):
-                    record(ev, task["size"])
-        finally:
-            manifest.close()
-            if own_executor and tasks:
-                executor.close()
-        summary = summarize(src, dst, settings, recorded, tasks=tasks, info=info,
-                           started=started, wall_s=time.perf_counter() - t_start,
-                           run_seed=run_seed, seed_origin=seed_origin, sid=sid,
-                           interrupted=interrupted, executor=executor if tasks else None,
-                           notes=notes, profile_path=profile_path, run_id=run_id)
+                    self.record(ev, task["size"])
+
+    def stop(self):
+        """Close the manifest and the executor this run started."""
+        self.manifest.close()
+        if self.own_executor and self.tasks:
+            self.executor.close()
+
+    # ------------------------------------------------------------------ finish
+
+    def finish(self, *, wall_s, profile_path):
+        """Write the summary and the index; give the summary to the reporter."""
+        summary = summarize(RunRecord(
+            src=self.src, dst=self.dst, settings=self.settings, recorded=self.recorded,
+            tasks=self.tasks, excluded=self.info["excluded"], started=self.started,
+            wall_s=wall_s, run_seed=self.run_seed, seed_origin=self.seed_origin,
+            sid=self.sid, interrupted=self.interrupted,
+            executor=self.executor if self.tasks else None, notes=self.notes,
+            profile_path=profile_path, run_id=self.run_id))
         try:
-            write_json_atomic(summary, os.path.join(dst, SUMMARY_NAME))
-            index.write(os.path.join(dst, INDEX_NAME), summary)
+            write_json_atomic(summary, os.path.join(self.dst, SUMMARY_NAME))
+            self.index.write(os.path.join(self.dst, INDEX_NAME), summary)
         except OSError as exc:
-            raise OutputError(f"cannot write the summary in {dst!r} ({exc.strerror or exc}); the "
-                              "manifest holds every file's result; free some space and run "
-                              "again") from None
-    finally:
-        if old_sigint is not None:
-            signal.signal(signal.SIGINT, old_sigint)
-    reporter.finished(summary)
-    return summary
+            raise OutputError(f"cannot write the summary in {self.dst!r} "
+                              f"({exc.strerror or exc}); the manifest holds every file's "
+                              "result; free some space and run again") from None
+        self.reporter.finished(summary)
+        return summary
 
-
+    def restore_signals(self):
+        """Give Ctrl-C back its handler (it is ignored while an interrupted run drains)."""
+        if self._old_sigint is not None:
+            signal.signal(signal.SIGINT, self._old_sigint)
+            self._old_sigint = None
