@@ -590,17 +590,7 @@ def copy_metadata(source: str | os.PathLike, output: str | os.PathLike, *,
     """
     source = Path(os.fspath(source))
     output = Path(os.fspath(output))
-    row = None
-    if coding_history_row is not None:
-        if not isinstance(coding_history_row, str):
-            raise TypeError(f"coding_history_row must be a str, not "
-                            f"{type(coding_history_row).__name__}")
-        if not coding_history_row.isascii() or not coding_history_row.endswith("\r\n") \
-                or any(ch in coding_history_row[:-2] for ch in "\r\n\0"):
-            raise UsageError(f"{coding_history_row=} must be one ASCII row ending in CR LF; "
-                             "build it with coding_history_row()")
-        row = coding_history_row.encode("ascii")
-
+    row = None if coding_history_row is None else _encoded_row(coding_history_row)
     tmp = None
     try:
         with _open(source) as fs, _open(output) as fo:
@@ -622,6 +612,18 @@ def copy_metadata(source: str | os.PathLike, output: str | os.PathLike, *,
         raise
     _fsync_dir(output.parent)
     return report
+
+
+def _encoded_row(coding_history_row: str) -> bytes:
+    """A coding-history row as bytes, after checking it is one ASCII row ending in CR LF."""
+    if not isinstance(coding_history_row, str):
+        raise TypeError(f"coding_history_row must be a str, not "
+                        f"{type(coding_history_row).__name__}")
+    if not coding_history_row.isascii() or not coding_history_row.endswith("\r\n") \
+            or any(ch in coding_history_row[:-2] for ch in "\r\n\0"):
+        raise UsageError(f"{coding_history_row=} must be one ASCII row ending in CR LF; "
+                         "build it with coding_history_row()")
+    return coding_history_row.encode("ascii")
 
 
 def _plan(fs, src: _Layout, source: Path, fo, out: _Layout, output: Path, row):

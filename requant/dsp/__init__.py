@@ -1,1 +1,11 @@
-"""requant.dsp."""
+"""Pure computation on arrays: no files, no printing.
+
+:mod:`.kernel` is the one hot loop (dither, error-feedback shaping,
+quantization, the integer cast) and :mod:`.native` loads it as cached machine
+code; :mod:`.quantizer` is the array API around it (``Requantizer``, the
+dither models and the predicted error power); :mod:`.shaping` designs and
+describes noise-shaping filters; :mod:`.weighting` holds the A, ITU-R BS.468-4
+and hearing-threshold curves; :mod:`.truepeak` the ITU-R BS.1770-4 true-peak
+meters; :mod:`.analysis` the report's streaming measurements; :mod:`.figures`
+turns running sums into SNR, LSB² and dBFS.
+"""
