@@ -17,6 +17,7 @@ _EXPORTS = {
     "Shaping": "requant.recipe",
     "convert_file": "requant.convert",
     "Outputs": "requant.convert",
+    "Report": "requant.report.model",
     "Requantizer": "requant.dsp.quantizer",
     "requantize": "requant.dsp.quantizer",
     "predicted_error_power_lsb2": "requant.dsp.quantizer",

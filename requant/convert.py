@@ -12,8 +12,10 @@ read; :func:`_open_source` reads the input's facts; :func:`_requantizer`
 resolves the shaping for the file's rate and decides whether the input is
 already on the target grid; :func:`_stream` runs the blocks through the
 requantizer and the writers (and the analyzer, when a report wants it);
-:func:`requant.report.build.build_report` turns the running sums into the
-report; :func:`_finish` carries metadata, writes the reports and commits.
+:func:`_finish` carries metadata, has
+:func:`requant.report.build.build_report` turn the running sums and the
+analysis into the typed :class:`~requant.report.model.Report`, writes the
+reports and commits.
 """
 
 from __future__ import annotations
@@ -36,7 +38,8 @@ from requant.dsp.quantizer import Requantizer, new_seed
 from requant.dsp.shaping import coefficients_for
 from requant.errors import InputError, UsageError
 from requant.recipe import Recipe
-from requant.report.build import build_report, merge_analysis
+from requant.report.build import Conversion, build_report
+from requant.report.model import Report
 
 __all__ = ["convert_file", "Outputs", "DEFAULT_BLOCK_FRAMES", "MAX_BLOCK_FRAMES",
            "check_block_frames"]
@@ -286,7 +289,7 @@ def _metadata_carrier(src, dst, recipe, fmt):
 
 def convert_file(src, dst, recipe: Recipe | None = None, *, outputs: Outputs | None = None,
                  block_frames: int = DEFAULT_BLOCK_FRAMES, analyze: bool | None = None,
-                 progress: Callable[[int, int], Any] | None = None) -> dict:
+                 progress: Callable[[int, int], Any] | None = None) -> Report:
     """Requantize one audio file.
 
     Parameters
@@ -312,8 +315,9 @@ def convert_file(src, dst, recipe: Recipe | None = None, *, outputs: Outputs | N
 
     Returns
     -------
-    dict
-        The report (docs/theory.md, "The report").
+    Report
+        The report (:mod:`requant.report.model`); ``report.to_dict()`` is the
+        JSON form (docs/theory.md, "The report").
 
     Raises
     ------
@@ -345,29 +349,36 @@ def convert_file(src, dst, recipe: Recipe | None = None, *, outputs: Outputs | N
                         if analyze else None)
             done = _stream(f, rq, files, source=source, targets=targets, analysis=analysis,
                            block_frames=block_frames, progress=progress)
-            report = build_report(rq, recipe=recipe, coeffs=coeffs, source=source, frames=done,
-                                  targets=targets, out_format=out_fmt, error_format=e_fmt,
-                                  passthrough=passthrough, block_frames=block_frames)
-            _finish(report, rq, analysis, outs, tmp_out=tmp_out, out_fmt=out_fmt,
-                    finalize=finalize, targets=targets)
+            conv = Conversion(recipe=recipe, coeffs=coeffs, source=source, targets=targets,
+                              frames=done, out_format=out_fmt, error_format=e_fmt,
+                              passthrough=passthrough, block_frames=block_frames)
+            report = _finish(rq, conv, analysis, outs, tmp_out=tmp_out, finalize=finalize)
         except BaseException:
             outs.discard()
             raise
     return report
 
 
-def _finish(report, rq, analysis, outs, *, tmp_out, out_fmt, finalize, targets):
-    """Fold in the analysis, carry metadata, write the reports and commit every output."""
-    analyzer = None
+def _finish(rq, conv, analysis, outs, *, tmp_out, finalize):
+    """Finish the analysis, carry metadata, build the report, write it and commit every output.
+
+    ``conv`` is what the conversion did (:class:`requant.report.build.Conversion`);
+    the report is built here, once, from it, the running sums, the analysis'
+    figures and the metadata record.
+    """
+    analyzer = res = None
     if analysis is not None:
         analyzer = analysis[0]
         t = rq.totals()
         analyzer.use_sums(sum_x=t["sum_x"], sum_e=t["sum_e"] / rq.scale,
                           sum_xe=t["sum_xe"] / rq.scale, sum_x2=t["sum_x2"],
                           sum_e2=t["sum_e2"] / rq.scale**2)
-        merge_analysis(report, analyzer.finish())
+        res = analyzer.finish()
+    meta = None
     if finalize is not None:
-        report["output"]["metadata"] = finalize(tmp_out, out_fmt, report)
+        meta = finalize(tmp_out, conv.out_format, dither_applied=rq.dither)
+    report = build_report(rq, conv, analysis=res, metadata=meta)
+    targets = conv.targets
     if targets.reports:
         from requant.report.write import write_report
 
@@ -377,3 +388,4 @@ def _finish(report, rq, analysis, outs, *, tmp_out, out_fmt, finalize, targets):
         outs.commit()
     except OSError as exc:
         raise wrap_write_error(exc, targets.dst) from None
+    return report

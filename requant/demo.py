@@ -226,14 +226,14 @@ def run_demo(out, *, source=None, seed=2026):
             f"{'err LSB²':>8} {'pred':>6} {'A-wtd dBFS':>10} {'pred':>7}  follows signal")
     lines = [f"requant demo: results in {out}/", head, "-" * len(head)]
     for out_name, bits, method, rep in rows:
-        m, p = rep["measured"], rep["predicted"]
+        m, p = rep.measured, rep.predicted
         f = lambda v, s: "n/a" if v is None else format(v, s)  # noqa: E731
-        corr = "YES" if m.get("signal_correlated") else "no"
+        corr = "YES" if m.signal_correlated else "no"
         lines.append(
-            f"{out_name:36} {bits:>4} {method:21} {f(m['snr_db'], '6.2f')} "
-            f"{f(p['snr_db'], '6.2f')} {f(m['error_power_lsb2'], '8.4f')} "
-            f"{f(p['error_power_lsb2'], '6.4f')} {f(m.get('a_weighted_noise_dbfs'), '10.2f')} "
-            f"{f(p.get('a_weighted_noise_dbfs'), '7.2f')}  {corr}"
+            f"{out_name:36} {bits:>4} {method:21} {f(m.snr_db, '6.2f')} "
+            f"{f(p.snr_db, '6.2f')} {f(m.error_power_lsb2, '8.4f')} "
+            f"{f(p.error_power_lsb2, '6.4f')} {f(m.a_weighted_noise_dbfs, '10.2f')} "
+            f"{f(p.a_weighted_noise_dbfs, '7.2f')}  {corr}"
         )
     lines.append("SNR in dB; error power per sample in LSB² of the target word length; A-wtd: "
                  "A-weighted noise (IEC 61672-1). 'follows signal': signal-correlated error "

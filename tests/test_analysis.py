@@ -37,11 +37,11 @@ def test_weighted_noise_measured_matches_predicted(tmp_path, shaping):
     # (σ²·mean(W²|NTF|²), [LWV92], [Z], [IEC], [468]) on a busy signal.
     src = busy(tmp_path)
     rep = convert_file(src, tmp_path / "o.wav", Recipe(bits=16, dither="tpdf", shaping=shaping, seed=3), outputs=Outputs(report=tmp_path / "r.json"))
-    m, p = rep["measured"], rep["predicted"]
+    m, p = rep.measured, rep.predicted
     for key in ("a_weighted_noise_dbfs", "itu468_noise_dbfs"):
-        assert abs(m[key] - p[key]) < 0.3, (key, m[key], p[key])
+        assert abs(getattr(m, key) - getattr(p, key)) < 0.3, (key, getattr(m, key), getattr(p, key))
     on_disk = json.loads((tmp_path / "r.json").read_text())
-    assert on_disk["measured"]["a_weighted_noise_dbfs"] == pytest.approx(m["a_weighted_noise_dbfs"])
+    assert on_disk["measured"]["a_weighted_noise_dbfs"] == pytest.approx(m.a_weighted_noise_dbfs)
     assert "Welch" in on_disk["analysis"]["method"]["psd"]
     assert on_disk["analysis"]["method"]["segment_frames"] == 8192
 
@@ -96,18 +96,18 @@ def test_shaped_error_power_matches_prediction(tmp_path, fs, shaping):
     # (Δ²/4)·Σ n_k² [Z], within 5 % on a short busy signal, at the edges of the rate range
     src = busy(tmp_path, fs=fs, seconds=max(1.0, 200000 / fs), channels=1)
     rep = convert_file(src, tmp_path / "o.wav", Recipe(bits=16, shaping=shaping, seed=1))
-    n = np.concatenate(([1.0], -np.asarray(rep["settings"]["shaping_coeffs"])))
-    assert rep["predicted"]["error_power_lsb2"] == pytest.approx(0.25 * np.sum(n * n))
-    assert rep["measured"]["error_power_lsb2"] == pytest.approx(0.25 * np.sum(n * n), rel=0.05)
-    assert rep["measured"]["shaping_overloads"] == 0
+    n = np.concatenate(([1.0], -np.asarray(rep.settings.shaping_coeffs)))
+    assert rep.predicted.error_power_lsb2 == pytest.approx(0.25 * np.sum(n * n))
+    assert rep.measured.error_power_lsb2 == pytest.approx(0.25 * np.sum(n * n), rel=0.05)
+    assert rep.measured.shaping_overloads == 0
 
 
 def test_report_carries_shaping_and_predicted_spectrum(tmp_path):
     src = busy(tmp_path, seconds=2.0)
     rep = convert_file(src, tmp_path / "o.wav", Recipe(bits=16, shaping="hearing", seed=1), outputs=Outputs(report=tmp_path / "r.json"))
-    assert rep["settings"]["shaping"] == "hearing"
-    assert len(rep["settings"]["shaping_coeffs"]) == 9
-    spec = rep["analysis"]["spectrum"]
+    assert rep.settings.shaping == "hearing"
+    assert len(rep.settings.shaping_coeffs) == 9
+    spec = rep.analysis.spectrum
     assert len(spec["band_centers_hz"]) == len(spec["predicted_dbfs_per_bin"]) > 30
     # shaped: the predicted floor is far from flat (more than 20 dB of range)
     pred = np.array(spec["predicted_dbfs_per_bin"])
@@ -136,9 +136,9 @@ def test_signal_correlated_warning(tmp_path, dither, fires):
     p = tmp_path / "quiet.wav"
     sf.write(p, tone(48000, 3.0, -70.0).astype(np.float32), 48000, subtype="FLOAT")
     rep = convert_file(p, tmp_path / "o.wav", Recipe(bits=16, dither=dither, seed=1), outputs=Outputs(report=tmp_path / "r.json"))
-    has = any("signal-correlated error" in w for w in rep["warnings"])
+    has = any("signal-correlated error" in w for w in rep.warnings)
     assert has is fires
-    assert rep["measured"]["signal_correlated"] is fires
+    assert rep.measured.signal_correlated is fires
 
 
 def test_quietest_passage_is_the_fade_tail():
@@ -195,8 +195,8 @@ def test_true_peak_and_dc_in_report(tmp_path):
     p = tmp_path / "tp.wav"
     sf.write(p, x, fs, subtype="DOUBLE")
     rep = convert_file(p, tmp_path / "o.wav", Recipe(bits=24, seed=1), outputs=Outputs(report=tmp_path / "r.json"))
-    assert rep["measured"]["input_true_peak_dbtp"] == pytest.approx(20 * np.log10(1.01), abs=0.06)
-    assert rep["channels"][0]["measured"]["input_dc_offset"] == pytest.approx(np.mean(x), abs=1e-9)
+    assert rep.measured.input_true_peak_dbtp == pytest.approx(20 * np.log10(1.01), abs=0.06)
+    assert rep.channels[0].measured.input_dc_offset == pytest.approx(np.mean(x), abs=1e-9)
 
 
 @pytest.mark.parametrize("frames", [300, 5000, 15435, 40000])

@@ -55,7 +55,7 @@ def test_integer_codes_round_trip_every_container(tmp_path, ext, bits, subtype):
     rep = convert_file(src, out, Recipe(bits=bits, dither="none", seed=1))
     info = sf.info(out)
     assert info.subtype == subtype
-    assert rep["output"]["subtype"] == subtype
+    assert rep.output.subtype == subtype
     got = read_codes(out).astype(np.int64)
     expected = np.floor(x * 2.0 ** (bits - 1) + 0.5).astype(np.int64) << (32 - bits)
     assert np.array_equal(got, expected)
@@ -96,12 +96,12 @@ def test_report_keys_and_consistency(tmp_path, float_wav):
     x = sf.read(float_wav, dtype="float64")[0]
     y = sf.read(tmp_path / "o.flac", dtype="float64")[0]
     snr = 10 * np.log10(np.sum(x**2) / np.sum((y - x) ** 2))
-    assert rep["measured"]["snr_db"] == pytest.approx(snr, abs=1e-6)
+    assert rep.measured.snr_db == pytest.approx(snr, abs=1e-6)
     # AES17: a sine of amplitude 0.5 reads 20·log10(0.5) = -6.02 dBFS RMS (left channel)
-    assert rep["channels"][0]["measured"]["signal_rms_dbfs"] == pytest.approx(-6.0206, abs=0.01)
+    assert rep.channels[0].measured.signal_rms_dbfs == pytest.approx(-6.0206, abs=0.01)
     # TPDF: Δ²/4 predicted [LWV92]; measured within a few percent on 96k samples
-    assert rep["predicted"]["error_power_lsb2"] == 0.25
-    assert rep["measured"]["error_power_lsb2"] == pytest.approx(0.25, rel=0.03)
+    assert rep.predicted.error_power_lsb2 == 0.25
+    assert rep.measured.error_power_lsb2 == pytest.approx(0.25, rel=0.03)
 
 
 @pytest.mark.parametrize("block", [pytest.param(1, marks=pytest.mark.slow), 7, 4096, 10007])
@@ -130,7 +130,7 @@ def test_rerun_with_same_seed_is_bit_identical(tmp_path, float_wav):
 
 def test_fresh_seed_is_recorded_and_reproduces(tmp_path, float_wav):
     rep = convert_file(float_wav, tmp_path / "a.wav", Recipe(bits=16))
-    convert_file(float_wav, tmp_path / "b.wav", Recipe(bits=16, seed=rep["settings"]["seed"]))
+    convert_file(float_wav, tmp_path / "b.wav", Recipe(bits=16, seed=rep.settings.seed))
     assert (tmp_path / "a.wav").read_bytes() == (tmp_path / "b.wav").read_bytes()
 
 
@@ -141,13 +141,13 @@ def test_passthrough_when_on_grid(tmp_path):
     src = tmp_path / "in24.wav"
     sf.write(src, codes, 44100, subtype="PCM_24")
     rep = convert_file(src, tmp_path / "o.wav", Recipe(bits=16, seed=1))
-    assert rep["output"]["passthrough"] is True
-    assert rep["settings"]["dither_applied"] == "none"
+    assert rep.output.passthrough is True
+    assert rep.settings.dither_applied == "none"
     assert np.array_equal(read_codes(tmp_path / "o.wav"), codes)
-    assert rep["measured"]["error_power_lsb2"] == 0.0
-    assert any("unchanged" in n for n in rep["notes"])
+    assert rep.measured.error_power_lsb2 == 0.0
+    assert any("unchanged" in n for n in rep.notes)
     forced = convert_file(src, tmp_path / "f.wav", Recipe(bits=16, seed=1, force_dither=True))
-    assert forced["output"]["passthrough"] is False
+    assert forced.output.passthrough is False
     assert not np.array_equal(read_codes(tmp_path / "f.wav"), codes)
 
 
@@ -155,8 +155,8 @@ def test_integer_container_narrower_than_target_is_passthrough(tmp_path):
     src = tmp_path / "in16.flac"
     sf.write(src, (np.arange(-500, 500, dtype=np.int16) * 7).reshape(-1, 1), 48000, subtype="PCM_16")
     rep = convert_file(src, tmp_path / "o24.wav", Recipe(bits=24, seed=2))
-    assert rep["output"]["passthrough"] is True
-    assert rep["measured"]["error_power_lsb2"] == 0.0
+    assert rep.output.passthrough is True
+    assert rep.measured.error_power_lsb2 == 0.0
 
 
 def test_float_over_full_scale_is_clipped_and_counted(tmp_path):
@@ -167,9 +167,9 @@ def test_float_over_full_scale_is_clipped_and_counted(tmp_path):
     # 1.5 -> 32767, -2.0 -> -32768, 1.0 -> 32767 (above the largest code 1 - Δ)
     assert read_codes(tmp_path / "o.wav")[:, 0].tolist() == [
         0, 32767 << 16, -32768 << 16, 16384 << 16, 32767 << 16, -32768 << 16]
-    assert rep["measured"]["clipped_samples"] == 3
-    assert rep["measured"]["over_full_scale_samples"] == 2
-    assert any("clipped" in w for w in rep["warnings"])
+    assert rep.measured.clipped_samples == 3
+    assert rep.measured.over_full_scale_samples == 2
+    assert any("clipped" in w for w in rep.warnings)
 
 
 @pytest.mark.parametrize("bad, kind", [(np.nan, "NaN"), (np.inf, "infinite")])
@@ -247,8 +247,8 @@ def test_zero_and_one_frame_files(tmp_path):
         sf.write(src, np.full((n, 2), 0.25), 48000, subtype="FLOAT")
         rep = convert_file(src, tmp_path / f"o{n}.wav", Recipe(bits=16, seed=1))
         assert sf.info(tmp_path / f"o{n}.wav").frames == n
-        assert rep["input"]["frames"] == n
-        json.dumps(rep, allow_nan=False)
+        assert rep.input.frames == n
+        json.dumps(rep.to_dict(), allow_nan=False)
 
 
 def test_many_channels_and_odd_rate(tmp_path):
@@ -257,7 +257,7 @@ def test_many_channels_and_odd_rate(tmp_path):
     src = tmp_path / "multi.wav"
     sf.write(src, x, 8000, subtype="FLOAT")
     rep = convert_file(src, tmp_path / "o.wav", Recipe(bits=16, seed=4))
-    assert len(rep["channels"]) == 64
+    assert len(rep.channels) == 64
     info = sf.info(tmp_path / "o.wav")
     assert info.channels == 64 and info.samplerate == 8000
 
@@ -283,9 +283,9 @@ def test_passthrough_report_has_no_error_and_no_warning(tmp_path):
     src = tmp_path / "in24.wav"
     sf.write(src, np.concatenate([codes] * 30), 48000, subtype="PCM_24")
     rep = convert_file(src, tmp_path / "o.wav", Recipe(bits=16), outputs=Outputs(report=tmp_path / "r.json"))
-    assert rep["output"]["passthrough"] is True
-    assert rep["warnings"] == []
-    assert rep["predicted"]["a_weighted_noise_dbfs"] is None
+    assert rep.output.passthrough is True
+    assert rep.warnings == ()
+    assert rep.predicted.a_weighted_noise_dbfs is None
 
 
 def test_markdown_pictures_are_not_overwritten_silently(tmp_path, float_wav):

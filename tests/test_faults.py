@@ -454,7 +454,7 @@ BATCH_CASES = [
 @pytest.mark.parametrize("name, extra, profile, code, message", BATCH_CASES,
                          ids=[c[0] for c in BATCH_CASES])
 def test_batch_fault_case(tmp_path, name, extra, profile, code, message):
-    src = library(tmp_path)
+    library(tmp_path)
     if profile is not None:
         (tmp_path / "p.toml").write_text(profile)
     before = tree_state(tmp_path)
@@ -489,7 +489,7 @@ def test_batch_fault_case(tmp_path, name, extra, profile, code, message):
 def test_batch_missing_source_and_same_folder(tmp_path):
     rc, _, stderr = run(["batch", "nowhere", "out"], cwd=tmp_path)
     assert rc == 2 and len(stderr.strip().splitlines()) == 1 and "Traceback" not in stderr
-    src = library(tmp_path)
+    library(tmp_path)
     before = tree_state(tmp_path)
     rc, _, stderr = run(["batch", "lib", "lib"], cwd=tmp_path)
     assert rc == 2 and len(stderr.strip().splitlines()) == 1

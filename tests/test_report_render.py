@@ -25,6 +25,7 @@ import soundfile as sf
 from requant.audio_io.atomic import AtomicOutputs
 from requant.convert import Outputs, convert_file
 from requant.recipe import Recipe
+from requant.report import plots as report_plots
 from requant.report import render as report_render
 
 RATE = 48000
@@ -110,11 +111,12 @@ def test_html_pictures_are_embedded_pngs(converted):
 
 def test_html_shows_measured_and_predicted_weighted_noise(converted):
     html = converted["html"]
-    m, p = converted["report"]["measured"], converted["report"]["predicted"]
+    m, p = converted["report"].measured, converted["report"].predicted
     for key in ("a_weighted_noise_dbfs", "itu468_noise_dbfs", "snr_db", "error_rms_dbfs"):
-        assert m[key] is not None and p[key] is not None
-        assert f">{m[key]:.2f}<" in html, key
-        assert f">{p[key]:.2f}<" in html, key
+        mv, pv = getattr(m, key), getattr(p, key)
+        assert mv is not None and pv is not None
+        assert f">{mv:.2f}<" in html, key
+        assert f">{pv:.2f}<" in html, key
     # BS.468-4 prescribes a quasi-peak detector; the report must say it used RMS.
     assert "RMS detector" in html and "quasi-peak" in html
     assert "10·log10(2·PSD·fs/L)" in html
@@ -170,9 +172,9 @@ def test_markdown_renders_escaped_names_and_working_images(converted):
 
 def test_markdown_shows_weighted_figures(converted):
     md = converted["md"]
-    m, p = converted["report"]["measured"], converted["report"]["predicted"]
+    m, p = converted["report"].measured, converted["report"].predicted
     for key in ("a_weighted_noise_dbfs", "itu468_noise_dbfs"):
-        assert f"| {m[key]:.2f} | {p[key]:.2f} |" in md, key
+        assert f"| {getattr(m, key):.2f} | {getattr(p, key):.2f} |" in md, key
 
 
 @pytest.mark.parametrize("text", [
@@ -223,7 +225,7 @@ def test_failing_render_leaves_nothing_behind(tmp_path, monkeypatch, ext):
     def boom(*args, **kwargs):
         raise RuntimeError("drawing failed")
 
-    monkeypatch.setattr(report_render, "_plot_quiet_passage", boom)
+    monkeypatch.setattr(report_plots, "_plot_quiet_passage", boom)
     with pytest.raises(RuntimeError, match="drawing failed"):
         convert_file(src, tmp_path / "out.wav", Recipe(seed=1), outputs=Outputs(error=tmp_path / "err.wav", report=tmp_path / f"r.{ext}"))
     assert sorted(os.listdir(tmp_path)) == ["in.wav"]
@@ -241,7 +243,7 @@ def test_undithered_quiet_8_bit_shows_signal_correlated_warning(tmp_path, dither
     rep = convert_file(src, tmp_path / "q.wav", Recipe(bits=8, dither=dither, seed=2), outputs=Outputs(report=path))
     html = path.read_text("utf-8")
     alert = re.search(r"<section class=\"alert\".*?</section>", html, flags=re.S)
-    assert rep["measured"]["signal_correlated"] is warned
+    assert rep.measured.signal_correlated is warned
     if warned:
         assert alert is not None and "signal-correlated error" in alert.group(0)
     else:

@@ -52,8 +52,9 @@ class CarryMetadata:
     """Carry a source's WAV chunks over to a finished output, or record what is lost.
 
     Called by :func:`requant.convert.convert_file` on the temporary output
-    before it is renamed into place; returns the record that goes into the
-    report's ``output.metadata``.
+    before it is renamed into place, with the dither actually applied (for the
+    coding-history row); returns the record that goes into the report's
+    ``output.metadata``.
     """
 
     def __init__(self, source, out_path, recipe, tags, source_is_wav):
@@ -63,7 +64,7 @@ class CarryMetadata:
         self.tags = tags
         self.source_is_wav = source_is_wav
 
-    def __call__(self, tmp_out, out_format, report=None):
+    def __call__(self, tmp_out, out_format, dither_applied=None):
         meta = {"copied": [], "rewritten": [], "dropped": [], "tags": sorted(self.tags or {})}
         if not self.source_is_wav:
             return meta
@@ -82,12 +83,9 @@ class CarryMetadata:
         if not carried:
             return meta  # nothing to carry over: keep the file as written (saves a rewrite)
         rate, channels = self._rate_channels(riff, tmp_out)
-        applied = None
-        if report is not None:  # a convert_file that passes its report to finalize
-            applied = report.get("settings", {}).get("dither_applied")
         row = riff.coding_history_row(sample_rate=rate, bits=self.recipe.bits,
                                       channels=channels,
-                                      text=history_text(self.recipe, applied))
+                                      text=history_text(self.recipe, dither_applied))
         try:
             got = riff.copy_metadata(self.source, tmp_out, coding_history_row=row)
         except riff.ChunkError as exc:

@@ -51,9 +51,9 @@ def convert(
         progress.close()
     if not quiet:
         print(summary_line(rep))
-        for note in rep["notes"]:
+        for note in rep.notes:
             print(f"note: {note}")
-    for w in rep["warnings"]:
+    for w in rep.warnings:
         print(f"warning: {w}", file=sys.stderr)
     if (bits <= 8 or error is not None) and not quiet:
         print(CAUTION, file=sys.stderr)
@@ -64,18 +64,25 @@ def _fmt(v, spec=".2f", none="n/a"):
 
 
 def summary_line(rep):
-    """What a conversion did, in two lines: the output, then measured against predicted."""
-    m, p, s = rep["measured"], rep["predicted"], rep["settings"]
-    out = rep["output"]
-    method = (f"{s['quantizer']}, dither {s['dither_applied']}, shaping {s['shaping']}, "
-              f"seed {s['seed']}")
-    if out["passthrough"]:
-        return (f"wrote {out['path']} ({out['bits']}-bit {out['subtype']} {out['format']}): the "
-                f"input already lies on the {out['bits']}-bit grid, copied unchanged")
-    return (f"wrote {out['path']} ({out['bits']}-bit {out['subtype']} {out['format']}; {method})\n"
-            f"  SNR {_fmt(m['snr_db'])} dB measured, {_fmt(p['snr_db'])} dB predicted; "
-            f"error {_fmt(m['error_power_lsb2'], '.4f')} LSB² measured, "
-            f"{_fmt(p['error_power_lsb2'], '.4f')} LSB² predicted")
+    """What a conversion did, in two lines: the output, then measured against predicted.
+
+    Parameters
+    ----------
+    rep : requant.report.model.Report
+
+    Returns
+    -------
+    str
+    """
+    m, p, s, out = rep.measured, rep.predicted, rep.settings, rep.output
+    method = f"{s.quantizer}, dither {s.dither_applied}, shaping {s.shaping}, seed {s.seed}"
+    if out.passthrough:
+        return (f"wrote {out.path} ({out.bits}-bit {out.subtype} {out.format}): the "
+                f"input already lies on the {out.bits}-bit grid, copied unchanged")
+    return (f"wrote {out.path} ({out.bits}-bit {out.subtype} {out.format}; {method})\n"
+            f"  SNR {_fmt(m.snr_db)} dB measured, {_fmt(p.snr_db)} dB predicted; "
+            f"error {_fmt(m.error_power_lsb2, '.4f')} LSB² measured, "
+            f"{_fmt(p.error_power_lsb2, '.4f')} LSB² predicted")
 
 
 class _ProgressPrinter:

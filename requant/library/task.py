@@ -41,52 +41,62 @@ def task_settings(settings):
 
 
 def _classify(report, meta):
-    """Warning kinds of a converted file, from its report and metadata record."""
-    m = report["measured"]
+    """Warning kinds of a converted file, from its report and metadata record.
+
+    Parameters
+    ----------
+    report : requant.report.model.Report
+    meta : requant.report.model.MetadataRecord or None
+
+    Returns
+    -------
+    list of str
+    """
+    m, out = report.measured, report.output
     kinds = []
-    if m.get("clipped_samples") or m.get("over_full_scale_samples"):
+    if m.clipped_samples or m.over_full_scale_samples:
         kinds.append("clipping")
-    s, out = report["settings"], report["output"]
-    if "signal_correlated" in m:  # measured (analyze=True)
-        if m["signal_correlated"]:
+    if report.analysis is not None:  # measured (analyze=True)
+        if m.signal_correlated:
             kinds.append("correlated-error")
-    elif s.get("dither_applied") == "none" and not out.get("passthrough") and out["bits"] < 24:
+    elif report.settings.dither_applied == "none" and not out.passthrough and out.bits < 24:
         kinds.append("correlated-error")  # by rule: undithered requantization
-    tp = m.get("output_true_peak_dbtp")
+    tp = m.output_true_peak_dbtp
     if tp is not None and tp > 0.0:
         kinds.append("true-peak")
-    if m.get("shaping_overloads"):
+    if m.shaping_overloads:
         kinds.append("shaping-overload")
-    if m.get("error_peak_dbfs") is not None and m["error_peak_dbfs"] > -20.0:
+    if m.error_peak_dbfs is not None and m.error_peak_dbfs > -20.0:
         kinds.append("loud-error")
-    if meta.get("dropped"):
+    if meta is not None and meta.dropped:
         kinds.append("metadata-dropped")
-    if meta.get("error"):
+    if meta is not None and meta.error:
         kinds.append("metadata-error")
     return kinds
 
 
 def _figures(report):
-    m, p, i, o, s = (report["measured"], report["predicted"], report["input"], report["output"],
-                     report["settings"])
+    """The event's ``figures``: plain data from the report (None where not measured)."""
+    m, p, i, o, s = (report.measured, report.predicted, report.input, report.output,
+                     report.settings)
     return {
-        "sample_rate": i["sample_rate"], "channels": i["channels"], "frames": i["frames"],
-        "input_format": i["format"], "input_subtype": i["subtype"],
-        "output_format": o["format"], "output_subtype": o["subtype"], "bits": o["bits"],
-        "passthrough": o["passthrough"], "dither_applied": s["dither_applied"],
-        "shaping": s["shaping"],
-        "snr_predicted_db": p.get("snr_db"),
-        "error_power_lsb2": m.get("error_power_lsb2"),
-        "error_power_predicted_lsb2": p.get("error_power_lsb2"),
-        "error_peak_dbfs": m.get("error_peak_dbfs"),
-        "signal_rms_dbfs": m.get("signal_rms_dbfs"),
-        "clipped_samples": m.get("clipped_samples"),
-        "over_full_scale_samples": m.get("over_full_scale_samples"),
-        "shaping_overloads": m.get("shaping_overloads"),
-        "correlated_error_fraction": m.get("correlated_error_fraction"),
-        "a_weighted_noise_dbfs": m.get("a_weighted_noise_dbfs"),
-        "a_weighted_noise_predicted_dbfs": p.get("a_weighted_noise_dbfs"),
-        "output_true_peak_dbtp": m.get("output_true_peak_dbtp"),
+        "sample_rate": i.sample_rate, "channels": i.channels, "frames": i.frames,
+        "input_format": i.format, "input_subtype": i.subtype,
+        "output_format": o.format, "output_subtype": o.subtype, "bits": o.bits,
+        "passthrough": o.passthrough, "dither_applied": s.dither_applied,
+        "shaping": s.shaping,
+        "snr_predicted_db": p.snr_db,
+        "error_power_lsb2": m.error_power_lsb2,
+        "error_power_predicted_lsb2": p.error_power_lsb2,
+        "error_peak_dbfs": m.error_peak_dbfs,
+        "signal_rms_dbfs": m.signal_rms_dbfs,
+        "clipped_samples": m.clipped_samples,
+        "over_full_scale_samples": m.over_full_scale_samples,
+        "shaping_overloads": m.shaping_overloads,
+        "correlated_error_fraction": m.correlated_error_fraction,
+        "a_weighted_noise_dbfs": m.a_weighted_noise_dbfs,
+        "a_weighted_noise_predicted_dbfs": p.a_weighted_noise_dbfs,
+        "output_true_peak_dbtp": m.output_true_peak_dbtp,
     }
 
 
@@ -121,30 +131,30 @@ def _convert_one(task):
     report = convert_file(src, out, recipe,
                           outputs=Outputs(overwrite=task["overwrite"], metadata=True),
                           block_frames=s["block_frames"], analyze=s["analyze"])
-    meta = report["output"].get("metadata") or {}
-    warnings = list(report["warnings"])
+    meta = report.output.metadata
+    warnings = list(report.warnings)
     kinds = _classify(report, meta)
-    if "correlated-error" in kinds and "signal_correlated" not in report["measured"]:
+    if "correlated-error" in kinds and report.analysis is None:
         warnings.append("Without dither the error follows the signal (signal-correlated error); "
                         "add dither, or measure it with --analyze.")
-    if meta.get("dropped") and out_fmt != "WAV":
-        warnings.append(f"the WAV chunks {', '.join(repr(c) for c in meta['dropped'])} cannot be "
+    if meta is not None and meta.dropped and out_fmt != "WAV":
+        warnings.append(f"the WAV chunks {', '.join(repr(c) for c in meta.dropped)} cannot be "
                         f"stored in {out_fmt} and were dropped; choose --format wav to keep them")
-    if meta.get("error"):
-        warnings.append(meta["error"])
-    notes = list(report["notes"])
+    if meta is not None and meta.error:
+        warnings.append(meta.error)
+    notes = list(report.notes)
     if task.get("note"):
         notes.append(task["note"])
     return {
         "status": "converted",
         "reason": reason,
         "output_sha256": sha256_file(pending_path(out)),  # a CommitGroup may hold it
-        "snr_db": report["measured"]["snr_db"],
-        "duration_s": report["input"]["duration_s"],
+        "snr_db": report.measured.snr_db,
+        "duration_s": report.input.duration_s,
         "warnings": warnings,
         "warning_kinds": kinds,
         "notes": notes,
-        "metadata": meta,
+        "metadata": {} if meta is None else meta.to_dict(),
         "figures": _figures(report),
     }
 

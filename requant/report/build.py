@@ -1,67 +1,86 @@
 """Building the report of a conversion: figures, predictions, warnings, the analysis.
 
-Rendering is elsewhere (:mod:`requant.report.write`, :mod:`requant.report.render`):
-this module only decides what the report says.
+:func:`build_report` is the one place that makes a :class:`~requant.report.model.Report`:
+it gathers the figures as plain values, folds in the analysis, writes the
+sentences and constructs the typed report once. Rendering is elsewhere
+(:mod:`requant.report.write`, :mod:`requant.report.render`): this module only
+decides what the report says.
 """
 
 import datetime as _dt
 import math
+from dataclasses import dataclass
+from typing import Any
 
 from requant import __version__
 from requant.audio_io.formats import container_bits_of
 from requant.dsp.analysis import correlated_summary
 from requant.dsp.figures import measured_figures, predicted_figures
 from requant.dsp.quantizer import predicted_error_power_lsb2
+from requant.recipe import Recipe
+from requant.report.model import (Analysis, ChannelMeasured, ChannelRow, ErrorSignalFacts,
+                                  InputFacts, MeasuredFigures, MetadataRecord, OutputFacts,
+                                  PredictedFigures, Report, ReportSettings)
 
-__all__ = ["build_report", "merge_analysis", "settings_block"]
+__all__ = ["build_report", "Conversion", "settings_block"]
+
+_ANALYSIS_KEYS = ("method", "spectrum", "quietest_passage", "histogram", "true_peak", "dc_offset")
 
 
-def merge_analysis(report, res):
-    """Fold the analyzer's figures into the report's sections."""
-    report["measured"].update(res["measured"])
-    report["predicted"].update(res["predicted"])
-    if "true_peak" in res:
-        report["measured"]["input_true_peak_dbtp"] = res["true_peak"]["input_dbtp"]
-        report["measured"]["output_true_peak_dbtp"] = res["true_peak"]["output_dbtp"]
+def _fold_analysis(res, total, pred_total, channels, *, passthrough):
+    """Fold the analyzer's figures (``res``) into the figures' dicts, in place.
+
+    Returns the analysis' warnings and its :class:`Analysis` section.
+    """
+    for key in ("a_weighted_noise_dbfs", "itu468_noise_dbfs", "tonal_fraction",
+                "correlation_fraction", "correlated_error_fraction"):
+        total[key] = res["measured"][key]
+    for key in ("a_weighted_noise_dbfs", "itu468_noise_dbfs"):
+        pred_total[key] = res["predicted"][key]
+    tp = res.get("true_peak")
+    if tp is not None:
+        total["input_true_peak_dbtp"] = tp["input_dbtp"]
+        total["output_true_peak_dbtp"] = tp["output_dbtp"]
     for c, row in enumerate(res["channels"]):
-        ch = report["channels"][c]
-        ch["measured"]["a_weighted_noise_dbfs"] = row["a"]
-        ch["measured"]["itu468_noise_dbfs"] = row["itu468"]
-        ch["measured"]["correlated_error_fraction"] = max(row["tonal_fraction"],
-                                                          row["correlation_fraction"])
-        ch["measured"]["input_dc_offset"] = res["dc_offset"]["input"][c]
-        ch["measured"]["output_dc_offset"] = res["dc_offset"]["output"][c]
-        if "true_peak" in res:
-            ch["measured"]["input_true_peak_dbtp"] = res["true_peak"]["input_dbtp_per_channel"][c]
-            ch["measured"]["output_true_peak_dbtp"] = res["true_peak"]["output_dbtp_per_channel"][c]
-        ch["predicted"]["a_weighted_noise_dbfs"] = res["predicted"]["a_weighted_noise_dbfs"]
-        ch["predicted"]["itu468_noise_dbfs"] = res["predicted"]["itu468_noise_dbfs"]
-    if report["output"]["passthrough"]:
+        meas, pred = channels[c]
+        meas["a_weighted_noise_dbfs"] = row["a"]
+        meas["itu468_noise_dbfs"] = row["itu468"]
+        meas["correlated_error_fraction"] = max(row["tonal_fraction"], row["correlation_fraction"])
+        meas["input_dc_offset"] = res["dc_offset"]["input"][c]
+        meas["output_dc_offset"] = res["dc_offset"]["output"][c]
+        if tp is not None:
+            meas["input_true_peak_dbtp"] = tp["input_dbtp_per_channel"][c]
+            meas["output_true_peak_dbtp"] = tp["output_dbtp_per_channel"][c]
+        pred["a_weighted_noise_dbfs"] = res["predicted"]["a_weighted_noise_dbfs"]
+        pred["itu468_noise_dbfs"] = res["predicted"]["itu468_noise_dbfs"]
+    if passthrough:
         # written unchanged: no error, nothing to predict, nothing to warn about
         for key in ("a_weighted_noise_dbfs", "itu468_noise_dbfs"):
-            report["predicted"][key] = None
-            for ch in report["channels"]:
-                ch["predicted"][key] = None
+            pred_total[key] = None
+            for _, pred in channels:
+                pred[key] = None
         summary = {"correlated_error_fraction": 0.0, "signal_correlated": False, "warnings": []}
     else:
         summary = correlated_summary(res)
-    report["measured"]["correlated_error_fraction"] = summary["correlated_error_fraction"]
-    report["measured"]["signal_correlated"] = summary["signal_correlated"]
-    report["warnings"].extend(summary["warnings"])
-    tp = report["measured"].get("output_true_peak_dbtp")
-    if tp is not None and tp > 0.0:
-        report["warnings"].append(
-            f"The output's true peak is {tp:+.2f} dBTP (above 0 dBTP): converters and lossy "
+    total["correlated_error_fraction"] = summary["correlated_error_fraction"]
+    total["signal_correlated"] = summary["signal_correlated"]
+    warnings = list(summary["warnings"])
+    tp_db = total.get("output_true_peak_dbtp")
+    if tp_db is not None and tp_db > 0.0:
+        warnings.append(
+            f"The output's true peak is {tp_db:+.2f} dBTP (above 0 dBTP): converters and lossy "
             "encoders downstream may clip; lower the gain before delivery."
         )
-    report["analysis"] = {k: res[k] for k in ("method", "spectrum", "quietest_passage",
-                                              "histogram", "true_peak", "dc_offset") if k in res}
-    report["notes"].extend(_difference_notes(report))
+    section = Analysis(**{k: res[k] for k in _ANALYSIS_KEYS if k in res})
+    return warnings, section
 
 
-def _difference_notes(report):
-    """Why measured and predicted figures differ, when they do (> 0.5 dB)."""
-    m, p = report["measured"], report["predicted"]
+def _difference_notes(m, p, *, dither_applied, section):
+    """Why measured and predicted figures differ, when they do (> 0.5 dB).
+
+    ``m`` and ``p`` are the measured and predicted figures of all channels
+    together (dicts), ``section`` the :class:`Analysis`.
+    """
     notes = []
     if m.get("error_power_lsb2") and p.get("error_power_lsb2"):
         diff = 10 * math.log10(m["error_power_lsb2"] / p["error_power_lsb2"])
@@ -69,10 +88,10 @@ def _difference_notes(report):
             why = []
             if m.get("clipped_samples"):
                 why.append("clipping adds error the model leaves out")
-            if report["settings"]["dither_applied"] == "none":
+            if dither_applied == "none":
                 why.append("without dither the error depends on the signal (the Δ²/12 model "
                            "assumes a busy signal)")
-            if report["analysis"].get("quietest_passage") is None and m.get("signal_rms_dbfs") is None:
+            if section.quietest_passage is None and m.get("signal_rms_dbfs") is None:
                 why.append("the input is digital silence")
             if not why:
                 why.append("the signal is too short or too quiet for the statistics")
@@ -82,7 +101,8 @@ def _difference_notes(report):
 
 
 def _figures(rq, frames, passthrough):
-    """(measured total, predicted total, per-channel rows) from the running sums."""
+    """(measured total, predicted total, per-channel (measured, predicted)) from the running
+    sums, as dicts of the figures' fields."""
     t = rq.totals()
     nch = rq.channels
     power = 0.0 if passthrough else predicted_error_power_lsb2(rq.quantizer, rq.dither, rq.coeffs)
@@ -93,7 +113,7 @@ def _figures(rq, frames, passthrough):
                                 max_abs_e=t["max_abs_e"][c])
         pred = predicted_figures(power_lsb2=power, sum_x2=t["sum_x2"][c], frames=frames,
                                  scale=rq.scale)
-        channels.append({"channel": c + 1, "measured": meas, "predicted": pred})
+        channels.append((meas, pred))
     total = measured_figures(sum_x2=float(t["sum_x2"].sum()), sum_e=float(t["sum_e"].sum()),
                              sum_e2=float(t["sum_e2"].sum()), frames=frames * nch,
                              scale=rq.scale, clipped=t["clipped"].sum(),
@@ -146,74 +166,108 @@ def _sentences(total, *, bits, dither, passthrough):
 def settings_block(recipe, *, coeffs, dither_applied, block_frames):
     """The report's ``settings``: the recipe's own dictionary (:meth:`Recipe.to_dict`), with
     the coefficients applied at the file's rate, the dither applied and the block size."""
-    s = recipe.to_dict()
-    s["shaping_coeffs"] = [float(v) for v in coeffs]
-    s["dither_applied"] = dither_applied
-    s["block_frames"] = block_frames
-    return s
+    return ReportSettings(recipe=recipe.to_dict(), shaping_coeffs=tuple(float(v) for v in coeffs),
+                          dither_applied=dither_applied, block_frames=block_frames)
 
 
-def build_report(rq, *, recipe, coeffs, source, frames, targets, out_format, error_format,
-                 passthrough, block_frames):
-    """The report of one conversion, from the requantizer's running sums.
+@dataclass(frozen=True)
+class Conversion:
+    """What a conversion did, as the report states it (everything but the figures).
+
+    Parameters
+    ----------
+    recipe : requant.recipe.Recipe
+        As asked for (with its seed).
+    coeffs : ndarray
+        The recipe's shaping coefficients at the file's rate.
+    source : requant.convert._Source
+        The input's facts, from its header.
+    targets : requant.convert._Targets
+        The checked outputs.
+    frames : int, frames
+        Frames converted.
+    out_format, error_format : str
+        Containers written (``RF64`` for large WAV); ``error_format`` is None
+        without an error signal.
+    passthrough : bool
+        The input was on the grid and written unchanged.
+    block_frames : int, frames
+    """
+
+    recipe: Recipe
+    coeffs: Any
+    source: Any
+    targets: Any
+    frames: int
+    out_format: str
+    error_format: str | None
+    passthrough: bool
+    block_frames: int
+
+
+def build_report(rq, conv, *, analysis=None, metadata=None):
+    """The report of one conversion, from the requantizer's running sums and the analysis.
 
     Parameters
     ----------
     rq : requant.dsp.quantizer.Requantizer
         After the last block.
-    recipe : requant.recipe.Recipe
-        As asked for (with its seed).
-    coeffs : ndarray
-        The recipe's shaping coefficients at the file's rate.
-    source, targets
-        The input's facts and the checked outputs (:mod:`requant.convert`).
-    frames : int
-        Frames converted.
-    out_format, error_format : str
-        Containers written (``RF64`` for large WAV).
-    passthrough : bool
-        The input was on the grid and written unchanged.
-    block_frames : int
+    conv : Conversion
+    analysis : dict, optional
+        :meth:`requant.dsp.analysis.ErrorAnalyzer.finish`; None when the
+        analysis did not run.
+    metadata : dict, optional
+        The record of the metadata carried over
+        (:class:`requant.audio_io.metadata.CarryMetadata`); None when not asked.
 
     Returns
     -------
-    dict
-        The report (docs/theory.md); :func:`merge_analysis` adds the analysis.
+    requant.report.model.Report
     """
-    total, pred_total, channels = _figures(rq, frames, passthrough)
-    warnings, notes = _sentences(total, bits=rq.bits, dither=recipe.dither,
-                                 passthrough=passthrough)
-    if frames != source.frames:
-        warnings.append(f"{targets.src!r} holds {frames} frames although its header declares "
-                        f"{source.frames}; the frames that are there were converted.")
+    total, pred_total, channels = _figures(rq, conv.frames, conv.passthrough)
+    warnings, notes = _sentences(total, bits=rq.bits, dither=conv.recipe.dither,
+                                 passthrough=conv.passthrough)
+    if conv.frames != conv.source.frames:
+        warnings.append(f"{conv.targets.src!r} holds {conv.frames} frames although its header "
+                        f"declares {conv.source.frames}; the frames that are there were "
+                        "converted.")
+    section = None
+    if analysis is not None:
+        more, section = _fold_analysis(analysis, total, pred_total, channels,
+                                       passthrough=conv.passthrough)
+        warnings.extend(more)
+        notes.extend(_difference_notes(total, pred_total, dither_applied=rq.dither,
+                                       section=section))
+    return Report(
+        requant_version=__version__,
+        created=_dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
+        settings=settings_block(conv.recipe, coeffs=conv.coeffs, dither_applied=rq.dither,
+                                block_frames=conv.block_frames),
+        **_files(rq, conv, metadata),
+        lsb=1.0 / rq.scale,
+        measured=MeasuredFigures(**total),
+        predicted=PredictedFigures(**pred_total),
+        channels=tuple(ChannelRow(channel=c + 1, measured=ChannelMeasured(**meas),
+                                  predicted=PredictedFigures(**pred))
+                       for c, (meas, pred) in enumerate(channels)),
+        warnings=tuple(warnings),
+        notes=tuple(notes),
+        analysis=section,
+    )
+
+
+def _files(rq, conv, metadata):
+    """The report's ``input``, ``output`` and ``error_signal``."""
+    source, targets, frames = conv.source, conv.targets, conv.frames
+    record = None if metadata is None else MetadataRecord.from_dict(metadata)
     return {
-        "requant_version": __version__,
-        "created": _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
-        "settings": settings_block(recipe, coeffs=coeffs, dither_applied=rq.dither,
-                                   block_frames=block_frames),
-        "input": {
-            "path": targets.src,
-            "format": source.format,
-            "sample_rate": source.rate,
-            "channels": source.channels,
-            "frames": frames,
-            "duration_s": frames / source.rate if source.rate else 0.0,
-            "subtype": source.subtype,
-        },
-        "output": {
-            "path": targets.dst,
-            "format": out_format,
-            "subtype": targets.subtype,
-            "bits": rq.bits,
-            "container_bits": container_bits_of(targets.subtype),
-            "passthrough": bool(passthrough),
-        },
-        "error_signal": None if targets.error is None else {
-            "path": targets.error, "format": error_format, "subtype": "FLOAT"},
-        "lsb": 1.0 / rq.scale,
-        "measured": total,
-        "predicted": pred_total,
-        "channels": channels,
-        "warnings": warnings,
-        "notes": notes,
+        "input": InputFacts(path=targets.src, format=source.format, sample_rate=source.rate,
+                            channels=source.channels, frames=frames,
+                            duration_s=frames / source.rate if source.rate else 0.0,
+                            subtype=source.subtype),
+        "output": OutputFacts(path=targets.dst, format=conv.out_format, subtype=targets.subtype,
+                              bits=rq.bits, container_bits=container_bits_of(targets.subtype),
+                              passthrough=bool(conv.passthrough), metadata=record),
+        "error_signal": (None if targets.error is None
+                         else ErrorSignalFacts(path=targets.error, format=conv.error_format)),
     }

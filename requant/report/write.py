@@ -1,19 +1,15 @@
 """Writing the report: JSON, and (with pictures) HTML and Markdown.
 
-Rendering only: the figures come from :mod:`requant.convert` and
-:mod:`requant.dsp.analysis`. Every file goes through the caller's
+Rendering only: the figures come from the typed report
+(:class:`~requant.report.model.Report`, made by :mod:`requant.report.build`);
+JSON is its :meth:`~requant.report.model.Report.to_dict`. Every file goes through the caller's
 :class:`~requant.audio_io.atomic.AtomicOutputs`, so a failure leaves nothing behind.
 """
 
 import json
 import os
 
-__all__ = ["write_report", "json_ready"]
-
-
-def json_ready(report):
-    """The report without in-memory extras (keys starting with '_')."""
-    return {k: v for k, v in report.items() if not k.startswith("_")}
+__all__ = ["write_report"]
 
 
 def write_report(report, analyzer, path, outs):
@@ -21,7 +17,7 @@ def write_report(report, analyzer, path, outs):
 
     Parameters
     ----------
-    report : dict
+    report : requant.report.model.Report
     analyzer : requant.dsp.analysis.ErrorAnalyzer or None
         Supplies the arrays behind the pictures (HTML, Markdown).
     path : path
@@ -34,7 +30,7 @@ def write_report(report, analyzer, path, outs):
     if ext == ".json":
         tmp = outs.path_for(path)
         with open(tmp, "w", encoding="utf-8") as fh:
-            json.dump(json_ready(report), fh, indent=2, allow_nan=False)
+            json.dump(report.to_dict(), fh, indent=2, allow_nan=False)
             fh.write("\n")
         return
     from requant.report import render as report_render

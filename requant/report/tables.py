@@ -1,0 +1,454 @@
+"""The report's tables, as plain rows of text, and the number formatting they use.
+
+Shared by both renderings (:mod:`requant.report.render`): :func:`page_context`
+reads the typed report (:class:`~requant.report.model.Report`) and returns
+the page's content (title, headline, warnings, notes, tables); the HTML and
+Markdown writers only escape and lay it out. Nothing is measured here.
+"""
+
+import math
+import os
+import re
+
+__all__ = ["page_context", "Code", "fmt_int", "fmt_zero_db"]
+
+_MINUS_INF = "\u2212\u221e"
+_PLUS_INF = "+\u221e"
+_NA = "n/a"
+
+
+# ------------------------------------------------------------------------------------------
+# formatting
+
+
+class Code(str):
+    """A user-supplied name shown literally (HTML <code>, a Markdown code span)."""
+
+
+def _num(v, fmt=".2f", *, none=_NA, signed=False):
+    if v is None:
+        return none
+    v = float(v)
+    if math.isnan(v):
+        return _NA
+    if math.isinf(v):
+        return _PLUS_INF if v > 0 else _MINUS_INF
+    m = re.fullmatch(r"\.(\d+)f", fmt)
+    if m:
+        v = round(v, int(m.group(1))) + 0.0  # no "-0.00"
+        if v == 0.0:
+            v = 0.0
+    return format(v, ("+" if signed else "") + fmt)
+
+
+def _pct(v):
+    if v is None:
+        return _NA
+    p = 100.0 * float(v)
+    if 0.0 < p < 0.01:
+        return "< 0.01 %"
+    return f"{p:.2f} %"
+
+
+def fmt_int(v):
+    """A count with thin-space thousands separators; 'n/a' for None."""
+    return _NA if v is None else f"{int(v):,}".replace(",", "\u2009")
+
+
+def _diff_db(m, p):
+    if m is None or p is None:
+        return ""
+    return _num(m - p, signed=True)
+
+
+def _ratio_db(m, p):
+    if not m or not p or m <= 0 or p <= 0:
+        return ""
+    return _num(10.0 * math.log10(m / p), signed=True)
+
+
+def fmt_zero_db(power):
+    """How to show a dB figure that is None, given the power behind it."""
+    if power is None:
+        return _NA
+    return _MINUS_INF if power == 0 else _NA
+
+
+def _snr(snr, *, signal_db, error_power):
+    if snr is not None:
+        return _num(snr)
+    if error_power is None:
+        return _NA
+    if signal_db is None:
+        return _NA + " (silent input)"
+    return _PLUS_INF if error_power == 0 else _NA
+
+
+def _dc(v, scale):
+    return _NA if v is None else _num(v * scale, ".3f", signed=True)
+
+
+def _seconds(v):
+    return _NA if v is None else f"{v:.3f} s"
+
+
+# ------------------------------------------------------------------------------------------
+# the page's content (shared by both renderings)
+
+
+def _table(ident, title, head, rows, *, intro=None, numeric=None, fold=False):
+    if numeric is None:
+        numeric = [False] + [True] * (len(head) - 1)
+    return {"id": ident, "title": title, "head": head, "rows": rows, "intro": intro,
+            "numeric": numeric, "fold": fold}
+
+
+def page_context(report, analyzer, *, bands_per_octave):
+    """The page's content, shared by the HTML and the Markdown rendering.
+
+    Parameters
+    ----------
+    report : requant.report.model.Report
+    analyzer : requant.dsp.analysis.ErrorAnalyzer or None
+        Only whether there is one matters here (pictures or not).
+    bands_per_octave : int
+        The pictures' spectral averaging
+        (:data:`requant.report.plots.PLOT_BANDS_PER_OCTAVE`), stated in the
+        method table when there are pictures.
+
+    Returns
+    -------
+    dict
+        ``title_name``, ``input_path``, ``output_path`` (:class:`Code`),
+        ``headline``, ``warnings``, ``notes``, ``tables`` (each a dict with
+        ``id``, ``title``, ``head``, ``rows``, ``intro``, ``numeric``,
+        ``fold``), ``version``, ``created``, ``per_bin_rule`` and
+        ``no_pictures``: plain text, not yet escaped.
+    """
+    m, p, an = report.measured, report.predicted, report.analysis
+    bits = report.settings.bits
+    scale = 2.0 ** (bits - 1) if bits else 1.0
+    have_spectrum = an is not None and an.spectrum is not None
+    tables = [
+        _main_table(m, p, have_spectrum=have_spectrum),
+        _correlated_table(m, an),
+        _peaks_table(m, an),
+        _channel_noise_table(report, have_spectrum=have_spectrum),
+        _channel_levels_table(report, scale),
+        _settings_table(report),
+        _files_table(report),
+    ]
+    optional = (_shaping_table(report, passthrough=bool(report.output.passthrough)),
+                _method_table(report, analyzer, bands_per_octave), _bands_table(report))
+    tables += [t for t in optional if t is not None]
+    name = os.path.basename(report.input.path or "") or "(unnamed input)"
+    return {
+        "title_name": Code(name),
+        "input_path": Code(report.input.path or ""),
+        "output_path": Code(report.output.path or ""),
+        "headline": _headline(report),
+        "warnings": [str(w) for w in report.warnings],
+        "notes": [str(n) for n in report.notes],
+        "tables": tables,
+        "version": str(report.requant_version or ""),
+        "created": str(report.created or ""),
+        "per_bin_rule": ("Spectrum levels are per bin: the noise power in one bin of width "
+                         "fs/L (L = Welch segment length), 10·log10(2·PSD·fs/L) dBFS, "
+                         "where PSD is the one-sided density in full scale²/Hz; the factor 2 "
+                         "makes a full-scale sine read 0 dBFS (AES17)."),
+        "no_pictures": ("No pictures: the error was not analysed for this report."
+                        if analyzer is None else None),
+    }
+
+
+def _headline(report):
+    s = report.settings
+    if report.output.passthrough:
+        return (f"{s.bits}-bit output, written unchanged: the input already lay on "
+                f"the {s.bits}-bit grid, so no dither or noise shaping was applied.")
+    return (f"{s.bits}-bit output, quantizer {s.quantizer}, dither "
+            f"{s.dither_applied}, noise shaping {s.shaping or 'none'}.")
+
+
+def _predicted_weighted(p, value):
+    """A predicted weighted figure; −∞ whenever the model predicts no error at all.
+
+    (A pass-through predicts zero error power; its weighted figures must agree.)
+    """
+    if p.error_power_lsb2 == 0:
+        return _MINUS_INF
+    return _num(value, none=_NA)
+
+
+def _main_table(m, p, *, have_spectrum):
+    mp, pp = m.error_power_lsb2, p.error_power_lsb2
+    w_none_m = _NA if not have_spectrum else fmt_zero_db(mp)
+    rows = [
+        ["SNR (signal over error power), dB",
+         _snr(m.snr_db, signal_db=m.signal_rms_dbfs, error_power=mp),
+         _snr(p.snr_db, signal_db=m.signal_rms_dbfs, error_power=pp),
+         _diff_db(m.snr_db, p.snr_db)],
+        ["error power, LSB²", _num(mp, ".5g"), _num(pp, ".5g"), _ratio_db(mp, pp)],
+        ["error RMS, dBFS", _num(m.error_rms_dbfs, none=fmt_zero_db(mp)),
+         _num(p.error_rms_dbfs, none=fmt_zero_db(pp)),
+         _diff_db(m.error_rms_dbfs, p.error_rms_dbfs)],
+        ["A-weighted noise (IEC 61672-1), dBFS",
+         _num(m.a_weighted_noise_dbfs, none=w_none_m),
+         _predicted_weighted(p, p.a_weighted_noise_dbfs),
+         "" if pp == 0 else _diff_db(m.a_weighted_noise_dbfs, p.a_weighted_noise_dbfs)],
+        ["ITU-R BS.468-4 weighted noise, RMS detector (not the standard's quasi-peak), dBFS",
+         _num(m.itu468_noise_dbfs, none=w_none_m),
+         _predicted_weighted(p, p.itu468_noise_dbfs),
+         "" if pp == 0 else _diff_db(m.itu468_noise_dbfs, p.itu468_noise_dbfs)],
+        ["error mean, LSB", _num(m.error_mean_lsb, ".4f", signed=True), "", ""],
+        ["error peak, dBFS", _num(m.error_peak_dbfs, none=fmt_zero_db(mp)), "", ""],
+        ["signal RMS, dBFS", _num(m.signal_rms_dbfs, none=fmt_zero_db(mp)), "", ""],
+    ]
+    return _table("figures", "Measured and predicted", ["figure", "measured", "predicted",
+                                                        "measured − predicted, dB"], rows,
+                  intro="All channels together. The prediction is the dither model times the "
+                        "noise-shaping filter's gain; weighted figures are normalised to 0 dB "
+                        "at 1 kHz.")
+
+
+def _correlated_table(m, an):
+    from requant.dsp.analysis import CORRELATED_WARNING_FRACTION
+
+    q = an.quietest_passage if an is not None else None
+    flagged = m.signal_correlated
+    verdict = _NA if flagged is None else (
+        "yes: the error follows the signal (distortion)" if flagged else
+        "no: the error behaves as steady noise")
+    rows = [
+        ["signal-correlated error", verdict],
+        ["share of the error power that follows the signal (larger of whole and quietest)",
+         _pct(m.correlated_error_fraction)],
+        ["whole signal: explained by a linear function of the input",
+         _pct(m.correlation_fraction)],
+        ["whole signal: tonal (narrow peaks above the noise floor)",
+         _pct(m.tonal_fraction)],
+    ]
+    if q:
+        rows += _quiet_rows(q)
+    elif an is not None:
+        rows.append(["quietest passage", "none found (the file is shorter than one window, "
+                                         "or digital silence)"])
+    return _table("correlated", "Signal-correlated error", ["figure", "value"], rows,
+                  numeric=[False, False],
+                  intro=f"A warning is given above {100 * CORRELATED_WARNING_FRACTION:.0f} %. "
+                        "With TPDF dither the error does not depend on the signal, so both "
+                        "shares stay near zero; undithered requantization of quiet passages "
+                        "drives them towards 100 %.")
+
+
+def _quiet_rows(q):
+    """The quietest passage's rows of the signal-correlated table (``q`` from the analysis)."""
+    return [
+        ["quietest passage: start, length",
+         f"{_seconds(q.get('start_s'))}, {_seconds(q.get('duration_s'))}"],
+        ["quietest passage: signal RMS, dBFS", _num(q.get("signal_rms_dbfs"),
+                                                    none=_MINUS_INF)],
+        ["quietest passage: error RMS, dBFS", _num(q.get("error_rms_dbfs"),
+                                                   none=_MINUS_INF)],
+        ["quietest passage: error power measured / predicted, LSB²",
+         f"{_num(q.get('error_power_lsb2'), '.5g')} / "
+         f"{_num(q.get('predicted_error_power_lsb2'), '.5g')}"],
+        ["quietest passage: error power from the prediction, dB",
+         _num(q.get("error_power_deviation_db"), signed=True, none=_MINUS_INF)],
+        ["quietest passage: linear share / tonal share",
+         f"{_pct(q.get('correlation_fraction'))} / {_pct(q.get('tonal_fraction'))}"],
+    ]
+
+
+def _peaks_table(m, an):
+    tp = an.true_peak if an is not None else None
+    none = _MINUS_INF if tp is not None else _NA
+    rows = [
+        ["input true peak (ITU-R BS.1770-4), dBTP", _num(m.input_true_peak_dbtp, none=none)],
+        ["output true peak (ITU-R BS.1770-4), dBTP", _num(m.output_true_peak_dbtp, none=none)],
+        ["input samples beyond full scale", fmt_int(m.over_full_scale_samples)],
+        ["output samples clipped at the end of the range", fmt_int(m.clipped_samples)],
+        ["noise-shaping loop overloads", fmt_int(m.shaping_overloads)],
+    ]
+    return _table("peaks", "Peaks and clipping", ["figure", "value"], rows, numeric=[False, False])
+
+
+def _channel_noise_table(report, *, have_spectrum):
+    rows = []
+    for ch in report.channels:
+        cm, cp = ch.measured, ch.predicted
+        mp, pp = cm.error_power_lsb2, cp.error_power_lsb2
+        wn = _NA if not have_spectrum else fmt_zero_db(mp)
+        rows.append([
+            str(ch.channel),
+            _snr(cm.snr_db, signal_db=cm.signal_rms_dbfs, error_power=mp),
+            _snr(cp.snr_db, signal_db=cm.signal_rms_dbfs, error_power=pp),
+            _num(mp, ".5g"), _num(pp, ".5g"),
+            _num(cm.a_weighted_noise_dbfs, none=wn),
+            _predicted_weighted(cp, cp.a_weighted_noise_dbfs),
+            _num(cm.itu468_noise_dbfs, none=wn),
+            _predicted_weighted(cp, cp.itu468_noise_dbfs),
+            _pct(cm.correlated_error_fraction),
+        ])
+    head = ["channel", "SNR dB", "predicted", "error LSB²", "predicted", "A-wtd dBFS",
+            "predicted", "468-wtd dBFS", "predicted", "signal-correlated"]
+    return _table("channels", "Per channel: noise", head, rows,
+                  intro="468-weighted with an RMS detector (not the standard's quasi-peak).")
+
+
+def _channel_levels_table(report, scale):
+    an = report.analysis
+    tp_none = _MINUS_INF if an is not None and an.true_peak is not None else _NA
+    rows = []
+    for ch in report.channels:
+        cm = ch.measured
+        rows.append([
+            str(ch.channel),
+            _num(cm.signal_rms_dbfs, none=fmt_zero_db(cm.error_power_lsb2)),
+            _num(cm.input_true_peak_dbtp, none=tp_none),
+            _num(cm.output_true_peak_dbtp, none=tp_none),
+            _dc(cm.input_dc_offset, scale),
+            _dc(cm.output_dc_offset, scale),
+            fmt_int(cm.clipped_samples),
+        ])
+    head = ["channel", "signal RMS dBFS", "true peak in dBTP", "true peak out dBTP",
+            "DC offset in, LSB", "DC offset out, LSB", "clipped samples"]
+    return _table("levels", "Per channel: levels, DC offset, clipping", head, rows,
+                  intro="DC offsets (the mean) in LSB of the output word length, "
+                        "1 LSB = 2^−(bits−1) of full scale; the JSON report holds them as "
+                        "fractions of full scale.")
+
+
+def _settings_table(report):
+    s = report.settings
+    q = {"round": "round (to nearest, mid-tread)",
+         "truncate": "truncate (toward minus infinity)"}.get(s.quantizer, str(s.quantizer))
+    dither = str(s.dither)
+    if s.dither_applied != s.dither:
+        dither += f" asked, {s.dither_applied} applied"
+        if report.output.passthrough:
+            dither += " (the input already lay on the output grid)"
+    shaping = str(s.shaping or "none")
+    if s.shaping_coeffs:
+        shaping += f" (order {len(s.shaping_coeffs)})"
+    rows = [
+        ["word length", f"{s.bits} bits"],
+        ["quantizer", q],
+        ["dither", dither],
+        ["noise shaping", shaping],
+        ["seed", str(s.seed)],
+        ["block frames", fmt_int(s.block_frames)],
+        ["dither forced on on-grid input", "yes" if s.force_dither else "no"],
+    ]
+    return _table("settings", "Settings", ["setting", "value"], rows,
+                  numeric=[False, False])
+
+
+def _files_table(report):
+    inp, out, err = report.input, report.output, report.error_signal
+    rows = [
+        ["input", Code(inp.path or "")],
+        ["input format", f"{inp.format} {inp.subtype}, {fmt_int(inp.sample_rate)} Hz, "
+                         f"{inp.channels} channel(s)"],
+        ["input length", f"{fmt_int(inp.frames)} frames, {_num(inp.duration_s, '.3f')} s"],
+        ["output", Code(out.path or "")],
+        ["output format", f"{out.format} {out.subtype}, {out.bits}-bit "
+                          f"words, {out.container_bits}-bit container"],
+    ]
+    if out.passthrough:
+        rows.append(["pass-through", "yes: written unchanged"])
+    if err is not None:
+        rows.append(["error signal", Code(err.path or "")])
+        rows.append(["error signal format", f"{err.format} {err.subtype}"])
+    meta = out.metadata
+    if meta is not None:
+        for key, label in (("copied", "metadata chunks copied"),
+                           ("rewritten", "metadata chunks rewritten"),
+                           ("dropped", "metadata chunks dropped"), ("tags", "text tags")):
+            if getattr(meta, key):
+                rows.append([label, " ".join(str(c).strip() for c in getattr(meta, key))])
+        if meta.error:
+            rows.append(["metadata problem", str(meta.error)])
+    return _table("files", "Files", ["file", "value"], rows, numeric=[False, False])
+
+
+def _shaping_table(report, *, passthrough):
+    coeffs = report.settings.shaping_coeffs
+    rate = report.input.sample_rate
+    if not coeffs or not rate:
+        return None
+    from requant.dsp.shaping import describe
+
+    d = describe(coeffs, rate)
+    wg, gc = d["weighted_gain_db"], d["gerzon_craven_bound_db"]
+    names = {"a": "A-weighted", "itu468": "ITU-R 468-weighted",
+             "threshold": "hearing-threshold-weighted"}
+    rows = [
+        ["applied", "no: the input was written unchanged" if passthrough else "yes"],
+        ["order", str(d["order"])],
+        ["total noise power gain Σn², dB", _num(d["noise_gain_db"], signed=True)],
+    ]
+    for k in ("a", "itu468", "threshold"):
+        if k in wg:
+            rows.append([f"{names[k]} noise against plain TPDF, dB (lowest possible)",
+                         f"{_num(wg[k], signed=True)} ({_num(-gc[k], signed=True)})"
+                         if k in gc else _num(wg[k], signed=True)])
+    rows += [
+        ["mean of 10·log10|NTF|² over 0..fs/2, dB",
+         _num(d["gerzon_craven_mean_log_db"], ".3f", signed=True)],
+        ["minimum phase", "yes" if d["minimum_phase"] else "no"],
+        ["feedback coefficients h", ", ".join(f"{v:.6g}" for v in d["coefficients"])],
+    ]
+    return _table("shaping", "Noise-shaping filter", ["figure", "value"], rows,
+                  numeric=[False, False],
+                  intro="NTF(z) = 1 − Σ h_k z^−k. The best possible figure is the bound of "
+                        "Gerzon & Craven (1989) for a minimum-phase filter with leading "
+                        "coefficient 1.")
+
+
+def _method_table(report, analyzer, bands_per_octave):
+    meth = report.analysis.method if report.analysis is not None else None
+    if not meth:
+        return None
+    rate = report.input.sample_rate or 0
+    L = meth.get("segment_frames")
+    stride = meth.get("segment_stride") or 1
+    rows = [
+        ["spectrum estimate", str(meth.get("psd"))],
+        ["segment length L", f"{fmt_int(L)} frames"
+                             + (f" ({1000.0 * L / rate:.1f} ms)" if L and rate else "")],
+        ["overlap", "50 %"],
+        ["segments analysed per channel", fmt_int(meth.get("segments_per_channel"))
+         + ("" if stride == 1 else f" (every {stride}th, spread over the file)")],
+        ["frequency resolution fs/L", f"{_num(meth.get('frequency_resolution_hz'), '.3f')} Hz"],
+        ["ITU-R BS.468-4 detector", str(meth.get("itu468_detector"))],
+        ["levels per bin", "10·log10(2·PSD·fs/L) dBFS: the noise power in one bin of width "
+                           "fs/L (AES17: a full-scale sine reads 0 dBFS)"],
+        ["weightings", "A: IEC 61672-1; 468: ITU-R BS.468-4; both 0 dB at 1 kHz"],
+        ["error histogram", "from the analysed segments (each sample counted once per "
+                            "segment it falls in)"],
+    ]
+    if analyzer is not None:
+        rows.append(["pictures", f"spectra averaged in 1/{bands_per_octave}-octave bands "
+                                 "where bins are denser than that"])
+    return _table("method", "How the error was analysed", ["item", "value"], rows,
+                  numeric=[False, False])
+
+
+def _bands_table(report):
+    sp = report.analysis.spectrum if report.analysis is not None else None
+    if not sp or not sp.get("band_centers_hz"):
+        return None
+    nch = len(sp["measured_dbfs_per_bin"][0]) if sp["measured_dbfs_per_bin"] else 0
+
+    def lvl(v):
+        return _MINUS_INF if v is None or v <= -399.0 else f"{v:.2f}"
+
+    rows = []
+    for fc, meas, pred in zip(sp["band_centers_hz"], sp["measured_dbfs_per_bin"],
+                              sp["predicted_dbfs_per_bin"]):
+        rows.append([f"{fc:,.0f}".replace(",", "\u2009")] + [lvl(v) for v in meas] + [lvl(pred)])
+    head = ["band centre Hz"] + [f"channel {c + 1} dBFS" for c in range(nch)] + ["predicted dBFS"]
+    return _table("bands", f"Error spectrum in {sp.get('bands', 'fractional-octave')} bands",
+                  head, rows, fold=True,
+                  intro="The mean per-bin level in each band (dBFS per bin of width fs/L).")
