@@ -5,18 +5,26 @@ never break a conversion.
 
 The outside reference here is the kernel's own plain-Python source run by the
 Python interpreter: three independent paths (interpreter, numba dispatcher,
-cached object code) must agree bit for bit.
+cached object code) must agree bit for bit. Every kernel family must load as
+native code, every call must check its buffers against the declared
+signature, and a fallback to numba must say so.
 """
 
+import importlib
+import inspect
 import os
 import subprocess
 import sys
+import warnings
+from pathlib import Path
 
 import numpy as np
 import pytest
 
+import requant
 from requant.dsp import kernel as _kernel
 from requant.dsp import native
+from requant.dsp import truepeak as tp
 from requant.dsp.quantizer import Requantizer, compiled_kernel
 
 SHAPER9 = (2.412, -3.370, 3.937, -4.174, 3.353, -2.205, 1.281, -0.569, 0.0847)
@@ -69,8 +77,36 @@ def test_native_path_is_in_use():
     assert native.status()["quantize-f32-i16-t0"] == "native"
 
 
+# one representative per family and parameter, and every dtype pair convert can ask for
+_VARIANTS = [(f, kw) for f in native.KERNELS for kw in native.variants(f)]
+
+
+@pytest.mark.parametrize("family, choices", _VARIANTS,
+                         ids=[native.kernel_name(f, **kw) for f, kw in _VARIANTS])
+def test_every_kernel_loads_natively(family, choices):
+    native.kernel(family, **choices)
+    assert native.status()[native.kernel_name(family, **choices)] == "native"
+
+
+def test_registry_lists_the_kernels_convert_uses():
+    names = {native.kernel_name(f, **kw) for f, kw in _VARIANTS}
+    assert {f"quantize-{x}-{c}-t{t}" for x in ("f32", "f64") for c in ("i16", "i32")
+            for t in (0, 9)} <= names
+    assert {f"truepeak-dual-{x}-f32" for x in ("f32", "f64")} <= names
+
+
+@pytest.mark.parametrize("family", list(native.KERNELS))
+def test_signature_names_the_kernel_arguments(family):
+    # the one declaration must list the Python function's parameters, in order
+    fam = native.KERNELS[family]
+    params = {p: values[0] for p, values in fam.params.items()}
+    fn = getattr(importlib.import_module(fam.module), fam.build)(None, **params)
+    assert [a[0] for a in native.signature(family)] == list(inspect.signature(fn).parameters)
+
+
+@pytest.mark.slow
 def test_numba_fallback_gives_the_same_bits():
-    fallback = native._numba_fallback(_kernel.build)
+    fallback = native._fallback_kernel("quantize", x=np.float32, codes=np.int16, taps=9)
     x = np.random.default_rng(1).uniform(-1, 1, 2 * 3000).astype(np.float32)
     a, b = _state(2, 9), _state(2, 9)
     ca, ea = _run(compiled_kernel(np.float32, np.int16, 9), x, 2, 2, SHAPER9, np.int16, a)
@@ -94,7 +130,8 @@ from requant.dsp import native
 from requant.dsp.quantizer import Requantizer
 rq = Requantizer(2, bits=16, dither="tpdf", seed=5)
 codes, err = rq.process(np.linspace(-0.5, 0.5, 2000, dtype=np.float32).reshape(-1, 2))
-print(native.status()["quantize-f32-i16-t0"], int(codes.astype(np.int64).sum()), "numba" in sys.modules)
+print(native.status()["quantize-f32-i16-t0"], int(codes.astype(np.int64).sum()),
+      "numba" in sys.modules)
 """
 
 
@@ -112,6 +149,7 @@ def _reference_sum():
     return str(int(codes.astype(np.int64).sum()))
 
 
+@pytest.mark.slow
 def test_cache_is_built_then_loaded_without_numba(tmp_path):
     env = {"REQUANT_CACHE_DIR": str(tmp_path)}
     first = _child(env)  # compiles with numba and writes the cache
@@ -121,6 +159,7 @@ def test_cache_is_built_then_loaded_without_numba(tmp_path):
     assert second == ["native", _reference_sum(), "False"]  # numba never imported
 
 
+@pytest.mark.slow
 def test_corrupt_cache_is_rebuilt(tmp_path):
     env = {"REQUANT_CACHE_DIR": str(tmp_path)}
     _child(env)
@@ -130,6 +169,7 @@ def test_corrupt_cache_is_rebuilt(tmp_path):
     assert obj.read_bytes() != b"not an object file"
 
 
+@pytest.mark.slow
 def test_unwritable_cache_still_converts(tmp_path):
     blocker = tmp_path / "file"
     blocker.write_text("a file where the cache directory should be")
@@ -137,6 +177,7 @@ def test_unwritable_cache_still_converts(tmp_path):
     assert out[:2] == ["native", _reference_sum()]
 
 
+@pytest.mark.slow
 def test_disabled_native_falls_back_to_numba():
     out = _child({"REQUANT_NO_NATIVE": "1"})
     assert out == ["numba", _reference_sum(), "True"]
@@ -157,3 +198,203 @@ def test_native_equals_plain_twin_long_shapers(taps):
     cb, eb = _run(_kernel.quantize_block_plain, x, 2, 2, h, np.int16, b)
     assert np.array_equal(ca, cb) and np.array_equal(ea, eb)
     assert all(np.array_equal(a[k], b[k]) for k in a)
+
+
+# -- buffer checks: a wrong length raises before the kernel runs, never writes out of bounds --
+
+def _quantize_args(n=8, nch=2, taps=9, want_err=1):
+    """Valid arguments of the quantize kernel, as a dict in declared order."""
+    st = _state(nch, taps)
+    return dict(x=np.zeros(n * nch, np.float32), n=n, nch=nch, rng=st["rng"], mode=2,
+                offset=0.5, h=np.asarray(SHAPER9[:taps] or (0.0,)), ntaps=taps, fbs=st["fbs"],
+                hp_prev=st["hp"], scale=32768.0, inv_scale=1 / 32768, kmin=-32768, kmax=32767,
+                e_bound=2.0, shift=0, codes=np.zeros(n * nch, np.int16),
+                err=np.zeros(n * nch if want_err else 1, np.float32), want_err=want_err,
+                acc=st["acc"])
+
+
+def _dual_args(n=2500, nch=2):
+    """Valid arguments of the dual true-peak kernel, as a dict in declared order."""
+    nsb = -(-n // tp.SUB_FRAMES)
+    work = max(tp.RUN_FRAMES, tp.SUB_FRAMES)  # the least the kernel may be given
+    rs = np.random.default_rng(7)
+    return dict(hx=np.zeros(11 * nch), he=np.zeros(11 * nch),
+                xs=(rs.uniform(-1, 1, n * nch) * np.linspace(0.1, 1, n * nch)).astype(np.float32),
+                es=rs.uniform(-1e-4, 1e-4, n * nch).astype(np.float32), m=11 + n, nch=nch,
+                phases=tp._PHASES_FLAT.copy(), gain=tp.PHASE_GAIN, sub=tp.SUB_FRAMES,
+                run=tp.RUN_FRAMES, peak_in=np.zeros(nch), peak_out=np.zeros(nch),
+                v=np.zeros(work + 11), acc=np.zeros(work), bx=np.zeros(nsb), be=np.zeros(nsb),
+                ub=np.zeros(nsb), pk=np.zeros(nsb), phases32=tp._PHASES32.copy(),
+                v32=np.zeros(work + 11, np.float32), acc32=np.zeros(work, np.float32))
+
+
+_FAMILY_CASES = {
+    "quantize": (dict(x=np.float32, codes=np.int16, taps=9), _quantize_args),
+    "truepeak-dual": (dict(xs=np.float32, es=np.float32), _dual_args),
+}
+_ARRAYS = [(f, a[0]) for f in _FAMILY_CASES for a in native.signature(f) if a[1][0].endswith("*")]
+
+
+@pytest.mark.parametrize("family, arg", _ARRAYS)
+def test_every_array_is_checked_against_its_length(family, arg):
+    choices, make = _FAMILY_CASES[family]
+    k = native.kernel(family, **choices)
+    args = make()
+    k(*args.values())  # the valid call runs
+    args = make()
+    args[arg] = args[arg][:-1]  # one element short
+    before = {name: v.copy() for name, v in args.items() if isinstance(v, np.ndarray)}
+    with pytest.raises(ValueError, match=f"{arg} holds"):
+        k(*args.values())
+    for name, v in before.items():  # nothing was written
+        assert np.array_equal(args[name], v, equal_nan=True), name
+
+
+@pytest.mark.parametrize("change, message", [
+    (dict(ntaps=4), "ntaps=4 breaks the condition ntaps == taps"),
+    (dict(n=-1), "n=-1 breaks"),
+    (dict(mode=7), "mode=7 breaks"),
+    (dict(n=9), "x holds 16 elements but the call needs 18"),
+    (dict(nch=3), "x holds 16 elements but the call needs 24"),
+])
+def test_quantize_kernel_rejects_inconsistent_sizes(change, message):
+    k = compiled_kernel(np.float32, np.int16, 9)
+    args = _quantize_args()
+    args.update(change)
+    with pytest.raises(ValueError, match=message):
+        k(*args.values())
+
+
+def test_error_buffer_is_only_checked_when_wanted():
+    k = compiled_kernel(np.float32, np.int16, 9)
+    k(*_quantize_args(want_err=0).values())  # err of one element is fine without error output
+
+
+def test_dual_kernel_rejects_an_error_block_shorter_than_the_input():
+    k = native.kernel("truepeak-dual", xs=np.float32, es=np.float32)
+    args = _dual_args()
+    args["es"] = args["es"][:-2]
+    with pytest.raises(ValueError, match="es holds 4998 elements but the call needs 5000"):
+        k(*args.values())
+
+
+def test_requantizer_rejects_short_output_buffers():
+    rq = Requantizer(2, bits=16, seed=1)
+    x = np.zeros((100, 2), np.float32)
+    with pytest.raises(ValueError, match="codes holds"):
+        rq.process(x, codes=np.zeros((99, 2), np.int16))
+    with pytest.raises(ValueError, match="err holds"):
+        rq.process(x, err_out=np.zeros((50, 2), np.float32))
+    with pytest.raises(ValueError, match="es holds"):
+        tp.DualTruePeakMeter(2).process(x, x[:60])
+
+
+def test_the_numba_path_is_checked_the_same_way():
+    calls = []
+    spec = native._spec("quantize", dict(x=np.float32, codes=np.int16, taps=9))
+    k = native._checked(spec, lambda *a: calls.append(a), pointers=False)
+    k(*_quantize_args().values())
+    args = _quantize_args()
+    args["fbs"] = args["fbs"][:5]
+    with pytest.raises(ValueError, match="fbs holds 5 elements but the call needs 38"):
+        k(*args.values())
+    args = _quantize_args()
+    args["acc"] = args["acc"].astype(np.float32)
+    with pytest.raises(TypeError, match="acc must be a contiguous float64 array"):
+        k(*args.values())
+    assert len(calls) == 1
+
+
+# -- fallback: said once, not when asked for ---------------------------------------------------
+
+@pytest.fixture
+def fresh_loader(monkeypatch):
+    """native.kernel with nothing loaded yet and the numba path replaced by the plain twin."""
+    monkeypatch.setattr(native, "_loaded", {})
+    monkeypatch.setattr(native, "_status", {})
+    monkeypatch.setattr(native, "_warned", False)
+    monkeypatch.setattr(native, "_numba_raw", lambda spec: native._build_fn(spec, None))
+    monkeypatch.delenv("REQUANT_NO_NATIVE", raising=False)
+    return monkeypatch
+
+
+def _broken(spec):
+    raise RuntimeError("llvmlite refused the object\nsecond line")
+
+
+def test_fallback_warns_once_with_the_reason(fresh_loader):
+    fresh_loader.setattr(native, "_native_raw", _broken)
+    with pytest.warns(native.NativeFallbackWarning, match="refused the object") as rec:
+        k = native.kernel("quantize", x=np.float32, codes=np.int16, taps=0)
+    assert len(rec) == 1 and "second line" not in str(rec[0].message)
+    assert native.status() == {"quantize-f32-i16-t0": "numba"}
+    with np.errstate(over="ignore"):  # the plain twin stands in for numba here
+        k(*_quantize_args(taps=0).values())  # the fallback runs, checked
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")  # a second kernel falls back silently
+        native.kernel("truepeak-dual", xs=np.float64, es=np.float32)
+    assert native.status()["truepeak-dual-f64-f32"] == "numba"
+
+
+def test_fallback_asked_for_does_not_warn(fresh_loader):
+    fresh_loader.setenv("REQUANT_NO_NATIVE", "1")
+    fresh_loader.setattr(native, "_native_raw", _broken)
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        native.kernel("quantize", x=np.float32, codes=np.int16, taps=0)
+    assert native.status() == {"quantize-f32-i16-t0": "numba"}
+
+
+_CLI_FALLBACK = r"""
+import sys
+from requant.dsp import native
+def broken(spec):
+    raise RuntimeError("simulated loader failure")
+native._native_raw = broken
+from requant.cli import console
+sys.argv = ["requant", *sys.argv[1:]]
+console()
+"""
+
+
+@pytest.mark.slow
+def test_cli_prints_the_fallback_as_one_warning_not_a_traceback(tmp_path):
+    import soundfile as sf
+
+    src = tmp_path / "in.wav"
+    sf.write(src, 0.5 * np.sin(np.arange(4800) / 7.0), 48000, subtype="FLOAT")
+    out = subprocess.run([sys.executable, "-c", _CLI_FALLBACK, "convert", str(src),
+                          str(tmp_path / "o.wav"), "--bits", "16", "--seed", "1"],
+                         capture_output=True, text=True, timeout=300)
+    assert out.returncode == 0, out.stderr
+    assert "Traceback" not in out.stderr
+    assert out.stderr.count("NativeFallbackWarning") == 1
+    assert "simulated loader failure" in out.stderr
+
+
+# -- the cache lives outside the installed package ---------------------------------------------
+
+def test_cache_dir_default_and_override(monkeypatch, tmp_path):
+    monkeypatch.delenv("REQUANT_CACHE_DIR", raising=False)
+    monkeypatch.setenv("XDG_CACHE_HOME", str(tmp_path))
+    assert native.cache_dir() == tmp_path / "requant"
+    monkeypatch.setenv("XDG_CACHE_HOME", "relative/path")  # ignored, as the XDG spec says
+    assert native.cache_dir() == Path.home() / ".cache" / "requant"
+    monkeypatch.delenv("XDG_CACHE_HOME")
+    assert native.cache_dir() == Path.home() / ".cache" / "requant"
+    monkeypatch.setenv("REQUANT_CACHE_DIR", str(tmp_path / "mine"))
+    assert native.cache_dir() == tmp_path / "mine"
+
+
+@pytest.mark.slow
+def test_default_cache_is_written_to_xdg_cache_home(tmp_path):
+    package = Path(requant.__file__).resolve().parent
+    before = set(package.rglob("requant-*.o"))
+    env = dict(os.environ, XDG_CACHE_HOME=str(tmp_path))
+    env.pop("REQUANT_CACHE_DIR", None)
+    out = subprocess.run([sys.executable, "-c", _CHILD], env=env, capture_output=True,
+                         text=True, timeout=300)
+    assert out.returncode == 0, out.stderr
+    assert out.stdout.split()[:2] == ["native", _reference_sum()]
+    assert sorted(p.suffix for p in (tmp_path / "requant").iterdir()) == [".json", ".o"]
+    assert set(package.rglob("requant-*.o")) == before

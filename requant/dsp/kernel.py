@@ -52,6 +52,7 @@ __all__ = [
     "DITHER_TPDF",
     "DITHER_TPDF_HP",
     "ACC_FIELDS",
+    "SIGNATURE",
     "build",
     "quantize_block_plain",
     "sfc64_next_py",
@@ -68,6 +69,34 @@ ACC_FIELDS = (
     "max_abs_e", "sum_x", "sum_xe",
 )
 _NACC = len(ACC_FIELDS)
+
+#: The block kernel's arguments, in order, declared once for :mod:`requant.dsp.native`:
+#: name, type code (``"f32*|f64*"``: the dtype is chosen per compiled kernel), and for an
+#: array the least number of elements it must hold, for a scalar a condition it must meet,
+#: as expressions in the scalar arguments and ``taps``, the tap count :func:`build` was
+#: given. See :func:`build` for what each argument means.
+SIGNATURE = (
+    ("x", "f32*|f64*", "n * nch"),
+    ("n", "i64", "n >= 0"),
+    ("nch", "i64", "nch >= 0"),
+    ("rng", "u64*", "4 * nch"),
+    ("mode", "i64", "0 <= mode <= 3"),
+    ("offset", "f64", None),
+    ("h", "f64*", "ntaps"),
+    ("ntaps", "i64", "ntaps == taps"),
+    ("fbs", "f64*", "nch * (2 * ntaps + 1)"),
+    ("hp_prev", "f64*", "nch"),
+    ("scale", "f64", None),
+    ("inv_scale", "f64", None),
+    ("kmin", "i64", None),
+    ("kmax", "i64", None),
+    ("e_bound", "f64", None),
+    ("shift", "i64", "0 <= shift < 32"),
+    ("codes", "i16*|i32*", "n * nch"),
+    ("err", "f32*", "n * nch if want_err else 0"),
+    ("want_err", "i64", None),
+    ("acc", "f64*", f"{_NACC} * nch"),
+)
 
 _SH3 = np.uint64(3)
 _SH11 = np.uint64(11)

@@ -86,15 +86,14 @@ DITHER_POWER_LSB2 = {name: m.power_lsb2 for name, m in DITHER_MODELS.items()}
 E_BOUND_LSB = 2.0
 
 
+@functools.cache
 def compiled_kernel(x_dtype, code_dtype, taps):
     """The compiled block kernel for float32/float64 input, int16/int32 codes and
     ``taps`` feedback taps (one machine-code kernel per combination, built on
-    first use and cached; see :mod:`requant.dsp.native`)."""
-    xc, cc = native.pointer_code(x_dtype), native.pointer_code(code_dtype)
-    args = [xc, "i64", "i64", "u64*", "i64", "f64", "f64*", "i64", "f64*", "f64*", "f64",
-            "f64", "i64", "i64", "f64", "i64", cc, "f32*", "i64", "f64*"]
-    return native.load(f"quantize-{xc[:-1]}-{cc[:-1]}-t{taps}",
-                     functools.partial(_kernel.build, taps=taps), _kernel.__file__, args)
+    first use and cached; its arguments are declared in
+    :data:`requant.dsp.kernel.SIGNATURE` and checked on every call; see
+    :mod:`requant.dsp.native`)."""
+    return native.kernel("quantize", x=x_dtype, codes=code_dtype, taps=taps)
 
 
 def lsb(bits):

@@ -57,6 +57,8 @@ true-peak audio level", Annex 2.
 
 from __future__ import annotations
 
+import functools
+
 import numpy as np
 
 from requant.errors import InputError, UsageError
@@ -66,6 +68,7 @@ __all__ = [
     "HISTORY_FRAMES",
     "PHASES",
     "PHASE_GAIN",
+    "DUAL_SIGNATURE",
     "DualTruePeakMeter",
     "dual_peak_kernel_py",
     "TruePeakMeter",
@@ -385,6 +388,34 @@ SUB_FRAMES = 64
 #: Most frames the dual kernel interpolates in one pass (a run of sub-blocks).
 RUN_FRAMES = 1024
 
+#: The dual kernel's arguments, in order, declared once for :mod:`requant.dsp.native`:
+#: name, type code (``"f32*|f64*"``: the dtype is chosen per compiled kernel), and for an
+#: array the least number of elements it must hold, for a scalar a condition it must meet,
+#: as expressions in the scalar arguments. See :func:`build_dual` for their meaning.
+DUAL_SIGNATURE = (
+    ("hx", "f64*", "11 * nch"),
+    ("he", "f64*", "11 * nch"),
+    ("xs", "f32*|f64*", "(m - 11) * nch"),
+    ("es", "f32*|f64*", "(m - 11) * nch"),
+    ("m", "i64", "m >= 11"),
+    ("nch", "i64", "nch >= 0"),
+    ("phases", "f64*", "48"),
+    ("gain", "f64", None),
+    ("sub", "i64", "sub >= 1"),
+    ("run", "i64", "run >= 1"),
+    ("peak_in", "f64*", "nch"),
+    ("peak_out", "f64*", "nch"),
+    ("v", "f64*", "max(run, sub) + 11"),
+    ("acc", "f64*", "max(run, sub)"),
+    ("bx", "f64*", "(m - 11 + sub - 1) // sub"),
+    ("be", "f64*", "(m - 11 + sub - 1) // sub"),
+    ("ub", "f64*", "(m - 11 + sub - 1) // sub"),
+    ("pk", "f64*", "(m - 11 + sub - 1) // sub"),
+    ("phases32", "f32*", "48"),
+    ("v32", "f32*", "max(run, sub) + 11"),
+    ("acc32", "f32*", "max(run, sub)"),
+)
+
 
 def build_dual(jit=None):
     """Return the dual true-peak kernel, its helper compiled by ``jit``.
@@ -578,15 +609,15 @@ dual_peak_kernel_py = build_dual()
 
 _PHASES_FLAT = np.ascontiguousarray(PHASES.reshape(-1))
 _PHASES32 = _PHASES_FLAT.astype(np.float32)
+
+
+@functools.cache
 def _dual_kernel(x_dtype, e_dtype):
-    """The compiled dual kernel for these storage dtypes (see :mod:`requant.dsp.native`)."""
+    """The compiled dual kernel for these storage dtypes, arguments as declared in
+    :data:`DUAL_SIGNATURE` and checked on every call (see :mod:`requant.dsp.native`)."""
     from requant.dsp import native
 
-    xc, ec = native.pointer_code(x_dtype), native.pointer_code(e_dtype)
-    args = ["f64*", "f64*", xc, ec, "i64", "i64", "f64*", "f64", "i64", "i64",
-            "f64*", "f64*", "f64*", "f64*", "f64*", "f64*", "f64*", "f64*", "f32*", "f32*",
-            "f32*"]
-    return native.load(f"truepeak-dual-{xc[:-1]}-{ec[:-1]}", build_dual, __file__, args)
+    return native.kernel("truepeak-dual", xs=x_dtype, es=e_dtype)
 
 
 def _float_block(a):
