@@ -649,6 +649,12 @@ class Recipe:
             fields["shaping"] = _shaping_from_flat(data, base.shaping, base_dir)
         return dataclasses.replace(base, **fields)
 
+    @classmethod
+    def from_settings(cls, settings):
+        """The recipe of a report's or a batch summary's ``settings`` block (the keys they
+        add beside the recipe's, such as ``dither_applied``, are left out)."""
+        return cls.from_dict({k: v for k, v in settings.items() if k in RECIPE_KEYS})
+
     def identity(self):
         """What decides the output bits, for hashing: :meth:`to_dict` without the
         file name a custom filter came from (its coefficients are there)."""

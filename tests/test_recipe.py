@@ -154,3 +154,20 @@ def test_any_valid_recipe_survives_its_json(bits, quantizer, dither, shaping, se
         return
     r = Recipe(bits, quantizer, dither, shaping, seed, force)
     assert Recipe.from_dict(json.loads(json.dumps(r.to_dict()))) == r
+
+
+def test_a_report_is_enough_to_repeat_a_conversion(tmp_path):
+    import soundfile as sf
+
+    from requant.convert import Outputs, convert_file
+
+    src = tmp_path / "in.wav"
+    sf.write(src, np.random.default_rng(5).uniform(-0.3, 0.3, (4800, 2)), 48000,
+             subtype="FLOAT")
+    convert_file(src, tmp_path / "a.wav", Recipe(bits=12, shaping="hearing"),
+                 outputs=Outputs(report=tmp_path / "a.json"))
+    settings = json.loads((tmp_path / "a.json").read_text())["settings"]
+    again = Recipe.from_settings(settings)
+    assert again.seed is not None and again.shaping.kind == "hearing"
+    convert_file(src, tmp_path / "b.wav", again)
+    assert (tmp_path / "a.wav").read_bytes() == (tmp_path / "b.wav").read_bytes()

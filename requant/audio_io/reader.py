@@ -13,6 +13,7 @@ import threading
 import numpy as np
 
 from requant.audio_io.formats import container_bits_of
+from requant.audio_io.probe import non_regular_kind
 from requant.errors import InputError
 
 __all__ = ["open_input", "on_grid", "first_nonfinite", "BlockReader", "read_blocks"]
@@ -34,6 +35,11 @@ def open_input(path):
         raise InputError(f"{p!r}: no such file; check the path")
     if os.path.isdir(p):
         raise InputError(f"{p!r} is a folder; give an audio file (use 'requant batch' for folders)")
+    kind = non_regular_kind(p)
+    if kind is not None:
+        # opening a FIFO waits for a writer forever; a device may never end
+        raise InputError(f"{p!r} is {kind}, not a regular file; give an audio file saved on "
+                         "disk")
     try:
         return sf.SoundFile(p)
     except (sf.LibsndfileError, RuntimeError, TypeError) as exc:

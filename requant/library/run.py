@@ -3,6 +3,8 @@
 :func:`run_batch` is the one entry point; see :mod:`requant.library` for the pieces.
 """
 
+from __future__ import annotations
+
 import os
 import signal
 import threading
@@ -11,7 +13,7 @@ import time
 from requant import __version__
 from requant.audio_io.writers import write_json_atomic
 from requant.errors import OutputError, RequantError
-from requant.library.executors.base import BatchReporter, WorkerLost
+from requant.library.executors.base import BatchReporter, Executor, Reporter, WorkerLost
 from requant.library.executors.local import ProcessExecutor, SerialExecutor, default_jobs
 from requant.library.manifest import MANIFEST_NAME, ManifestWriter, read_manifest
 from requant.library.plan import (STATE_NAME, choose_run_seed, plan_dry_run, plan_tasks,
@@ -25,8 +27,10 @@ from requant.library.tree import check_folders
 __all__ = ["run_batch"]
 
 
-def run_batch(src, dst, settings=None, *, jobs=None, overwrite=False, dry_run=False,
-              reporter=None, executor=None, profile_path=None):
+def run_batch(src: str | os.PathLike, dst: str | os.PathLike,
+              settings: BatchSettings | None = None, *, jobs: int | None = None,
+              overwrite: bool = False, dry_run: bool = False, reporter: Reporter | None = None,
+              executor: Executor | None = None, profile_path: str | None = None) -> dict:
     """Convert a folder tree of audio files into a mirrored tree.
 
     Parameters

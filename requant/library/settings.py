@@ -88,7 +88,7 @@ class BatchSettings:
             object.__setattr__(self, key, tuple(pats))
         check_block_frames(self.block_frames)
 
-    def replace(self, **changes):
+    def replace(self, **changes) -> BatchSettings:
         """A copy with some settings changed, by their flat keys (recipe keys go to the
         recipe): ``settings.replace(bits=12, format="flac")``."""
         recipe_part = {k: v for k, v in changes.items() if k in RECIPE_KEYS}
@@ -97,7 +97,7 @@ class BatchSettings:
             own["recipe"] = Recipe.from_dict(recipe_part, base=self.recipe)
         return dataclasses.replace(self, **own)
 
-    def to_dict(self):
+    def to_dict(self) -> dict:
         """The settings as plain JSON data: the recipe's keys and the batch's own."""
         return {**self.recipe.to_dict(), "format": self.format, "analyze": self.analyze,
                 "include": list(self.include), "exclude": list(self.exclude),
@@ -108,7 +108,7 @@ class BatchSettings:
 DEFAULT_SETTINGS = BatchSettings().to_dict()
 
 
-def resolve_settings(options=None, profile=None):
+def resolve_settings(options: dict | None = None, profile: dict | None = None) -> BatchSettings:
     """Effective settings: library defaults < profile < options given.
 
     Parameters
@@ -153,7 +153,7 @@ def _canonical(obj):
     return json.dumps(obj, sort_keys=True, separators=(",", ":"), ensure_ascii=True)
 
 
-def settings_id(settings, run_seed):
+def settings_id(settings: BatchSettings, run_seed: int) -> str:
     """Hash of everything that decides the output files' bytes.
 
     Parameters
@@ -177,7 +177,7 @@ def settings_id(settings, run_seed):
     return hashlib.sha256(_canonical(d).encode("ascii")).hexdigest()
 
 
-def derive_seed(run_seed, relpath):
+def derive_seed(run_seed: int, relpath: str) -> int:
     """A file's seed: SHA-256 of (run seed, relative path), cut to 63 bits.
 
     Parameters

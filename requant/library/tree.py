@@ -9,7 +9,9 @@ not entered. Order is sorted, so nothing depends on the file system's order.
 import fnmatch
 import os
 import posixpath
+import stat
 
+from requant.audio_io.probe import non_regular_kind
 from requant.errors import InputError, UsageError
 
 #: Allowed values of a batch's ``format`` (``same`` keeps WAV, FLAC and AIFF sources in
@@ -127,13 +129,18 @@ def walk_tree(src, *, include=(), exclude=(), prune=()):
                 continue
             full = os.path.join(root, name)
             try:
-                size = os.stat(full).st_size
+                st = os.stat(full)
+                size, regular = st.st_size, stat.S_ISREG(st.st_mode)
             except OSError:
-                size = 0
+                size, regular = 0, True  # the conversion names what is wrong with it
             ext = posixpath.splitext(name)[1].lower()
             if name.startswith("."):
                 entries.append({"source": rel, "kind": "other", "size": size,
                                 "reason": "a hidden file"})
+            elif not regular:  # reading a FIFO would wait forever
+                entries.append({"source": rel, "kind": "other", "size": 0,
+                                "reason": f"{non_regular_kind(full) or 'not a file'}, not a "
+                                          "regular file"})
             elif ext in AUDIO_EXTENSIONS:
                 entries.append({"source": rel, "kind": "audio", "size": size, "reason": None})
             else:

@@ -1,5 +1,7 @@
 """Which part of a source a listening kit renders, and how long its quiet passage is."""
 
+from __future__ import annotations
+
 import math
 from dataclasses import dataclass
 

@@ -34,10 +34,13 @@ Levels are in dBFS per AES17 (a full-scale sine is 0 dBFS): a mean square
 ``p`` is ``10*log10(2*p)`` dBFS; peaks are ``20*log10(|x|)`` dBFS.
 """
 
+from __future__ import annotations
+
 import datetime as _dt
 import json
 import os
 import secrets
+from collections.abc import Sequence
 from dataclasses import dataclass
 
 import numpy as np
@@ -201,8 +204,10 @@ def _kit_figures(src, got, base, *, names, gain_db, rows, comparisons, q_info):
     })
 
 
-def make_listening_kit(src, outdir, *, recipe=None, methods=DEFAULT_METHODS, excerpt=None,
-                       quiet=None, overwrite=False):
+def make_listening_kit(src: str | os.PathLike, outdir: str | os.PathLike, *,
+                       recipe: Recipe | None = None, methods: Sequence[str] = DEFAULT_METHODS,
+                       excerpt: Excerpt | None = None, quiet: float | None = None,
+                       overwrite: bool = False) -> dict:
     """Render a listening kit: every method on one excerpt, and the page.
 
     Parameters

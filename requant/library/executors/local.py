@@ -1,8 +1,10 @@
 """Executors on this machine: in this process, or in local worker processes."""
 
+import contextlib
 import os
 import signal
 import sys
+import threading
 import time
 
 from requant.errors import RequantError
@@ -14,6 +16,31 @@ __all__ = ["SerialExecutor", "ProcessExecutor", "default_jobs"]
 
 def _ping():
     return os.getpid()
+
+
+@contextlib.contextmanager
+def _sigint_deferred():
+    """Hold back Ctrl-C (SIGINT) in this process while a chunk is handed over or committed.
+
+    Between a worker's result arriving and its outputs being renamed (or removed),
+    and between submitting a chunk and recording it as in flight, an interrupt would
+    leave temporary files nobody owns. Inside this block SIGINT is noted and
+    raised as KeyboardInterrupt at its end. Only the main thread can swap handlers;
+    elsewhere the block does nothing.
+    """
+    if threading.current_thread() is not threading.main_thread():
+        yield
+        return
+    caught = []
+    previous = signal.signal(signal.SIGINT, lambda signum, frame: caught.append(signum))
+    try:
+        yield
+    finally:
+        signal.signal(signal.SIGINT, previous)
+    if caught and previous is signal.default_int_handler:
+        raise KeyboardInterrupt
+    if caught and callable(previous):
+        previous(signal.SIGINT, None)
 
 
 def _run_chunk_deferred(fn, items):
@@ -214,11 +241,25 @@ class ProcessExecutor:
         return list(zip(chunk, commit_chunk(chunk, results, pairs)))
 
     def _finished(self, fut):
-        """A finished future's pairs; it leaves the in-flight set only once committed, so an
-        interrupt before that leaves it to :meth:`drain`."""
-        pairs = self._pairs(self._inflight[fut], fut)
-        del self._inflight[fut]
+        """A finished future's pairs, its outputs committed, with Ctrl-C held back meanwhile
+        (an interrupt half-way would leave the chunk's temporary files behind)."""
+        with _sigint_deferred():
+            pairs = self._pairs(self._inflight[fut], fut)
+            del self._inflight[fut]
         return pairs
+
+    def _submit(self, fn, chunk):
+        """Send a chunk to the pool and record it as in flight, with Ctrl-C held back
+        (a chunk sent but not recorded would run unseen and leave its temporary files)."""
+        from concurrent.futures.process import BrokenProcessPool
+
+        with _sigint_deferred():
+            try:
+                fut = self._pool.submit(_run_chunk_deferred, fn, chunk)
+            except BrokenProcessPool:
+                self._restart()
+                fut = self._pool.submit(_run_chunk_deferred, fn, chunk)
+            self._inflight[fut] = chunk
 
     def _collect_broken(self):
         """After a worker death: results of finished chunks, and the items to retry."""
@@ -273,12 +314,7 @@ class ProcessExecutor:
                 if chunk is None:
                     more = False
                     break
-                try:
-                    fut = self._pool.submit(_run_chunk_deferred, fn, chunk)
-                except BrokenProcessPool:
-                    self._restart()
-                    fut = self._pool.submit(_run_chunk_deferred, fn, chunk)
-                self._inflight[fut] = chunk
+                self._submit(fn, chunk)
             if not self._inflight:
                 return
             done, _ = wait(list(self._inflight), timeout=0.5, return_when=FIRST_COMPLETED)
