@@ -4,11 +4,11 @@ Every row runs whole processes, alternated within one run (A B A B ...),
 and reports the median wall time of each and their ratio, so machine noise
 hits both sides alike. Usage:
 
-    python benchmarks/bench_convert.py [--minutes 20] [--repeats 3] [--rows tpdf,shaped,report,flac,rss,help]
+    python benchmarks/bench_convert.py [--minutes 20] [--repeats 3] \
+        [--rows tpdf,shaped,report,flac,rss,help]
 """
 
 import argparse
-import os
 import statistics
 import subprocess
 import sys
@@ -28,7 +28,8 @@ with sf.SoundFile(src) as f:
     buf = np.empty((65536, f.channels), dtype=dt)
     codes = np.zeros((65536, f.channels), dtype=np.int16)
     with sf.SoundFile(out, 'w', f.samplerate, f.channels, subtype, format=fmt) as w:
-        e = sf.SoundFile(err, 'w', f.samplerate, f.channels, 'FLOAT', format='WAV') if err != '-' else None
+        e = (sf.SoundFile(err, 'w', f.samplerate, f.channels, 'FLOAT', format='WAV')
+             if err != '-' else None)
         while True:
             x = f.read(65536, dtype=dt, out=buf)
             if len(x) == 0:
@@ -126,7 +127,8 @@ def main():
     # warm the numba cache once
     subprocess.run(requant_cmd("convert", src, out, "--overwrite", "--shaping", "hearing",
                                "--error", err), check=True, stdout=subprocess.DEVNULL)
-    print(f"input: {a.minutes:g} min stereo 48 kHz float WAV; medians of {a.repeats} alternated runs")
+    print(f"input: {a.minutes:g} min stereo 48 kHz float WAV; "
+          f"medians of {a.repeats} alternated runs")
     print(f"{'row':48} {'median s':>9} {'floor s':>8} {'ratio':>6} {'target':>7}")
     base = ["convert", src, out, "--overwrite", "--error", err, "--seed", 1, "--quiet"]
     if "tpdf" in rows:

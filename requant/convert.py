@@ -29,9 +29,16 @@ from typing import Any
 import numpy as np
 
 from requant.audio_io.atomic import AtomicOutputs, check_outputs
-from requant.audio_io.formats import (DEFAULT_BLOCK_FRAMES, MAX_BLOCK_FRAMES, RF64_THRESHOLD,
-                                      check_block_frames, container_bits_of, format_for_path,
-                                      read_dtype_for, subtype_for)
+from requant.audio_io.formats import (
+    DEFAULT_BLOCK_FRAMES,
+    MAX_BLOCK_FRAMES,
+    RF64_THRESHOLD,
+    check_block_frames,
+    container_bits_of,
+    format_for_path,
+    read_dtype_for,
+    subtype_for,
+)
 from requant.audio_io.reader import BlockReader, first_nonfinite, on_grid, open_input, read_blocks
 from requant.audio_io.writers import BlockWriter, SyncWriter, open_output, wrap_write_error
 from requant.dsp.quantizer import Requantizer, new_seed
@@ -247,7 +254,8 @@ def _stream(f, rq, files, *, source, targets, analysis, block_frames, progress):
                 bufs[2][:n] = x
             if rq.acc[:, 6].any():
                 frame, ch, kind = first_nonfinite(x, start)
-                raise InputError(f"{targets.src!r} has a {kind} sample at {frame / source.rate:.6f} "
+                at = frame / source.rate
+                raise InputError(f"{targets.src!r} has a {kind} sample at {at:.6f} "
                                  f"s (frame {frame}, channel {ch + 1}); repair the source and run "
                                  "again")
             writer.submit(bufs, n)

@@ -96,7 +96,8 @@ def _master(rng, fs=48000, seconds=14.0):
             break
         m = min(int(1.5 * fs), n - i0)
         tt = t[:m]
-        pl = sum(np.sin(2 * np.pi * f * k * tt) * np.exp(-tt * (3.0 + 2.0 * k)) / k for k in range(1, 6))
+        pl = sum(np.sin(2 * np.pi * f * k * tt) * np.exp(-tt * (3.0 + 2.0 * k)) / k
+                 for k in range(1, 6))
         pan = 0.2 + 0.6 * (j % 3) / 2
         left[i0:i0 + m] += 0.5 * pl * np.sqrt(1 - pan)
         right[i0:i0 + m] += 0.5 * pl * np.sqrt(pan)

@@ -419,7 +419,8 @@ class Shaping:
         kind = _choice("shaping", self.kind, SHAPING_KINDS)
         if kind == "hearing":
             order = DEFAULT_ORDER if self.order is None else check_shaping_order(self.order)
-            limit = DEFAULT_LIMIT_DB if self.limit_db is None else check_shaping_limit(self.limit_db)
+            limit = (DEFAULT_LIMIT_DB if self.limit_db is None
+                     else check_shaping_limit(self.limit_db))
         else:
             order = limit = None  # they belong to the hearing design only
         if kind == "custom":

@@ -36,7 +36,8 @@ def test_weighted_noise_measured_matches_predicted(tmp_path, shaping):
     # Measured (Welch PSD of the error × weighting) within 0.3 dB of predicted
     # (σ²·mean(W²|NTF|²), [LWV92], [Z], [IEC], [468]) on a busy signal.
     src = busy(tmp_path)
-    rep = convert_file(src, tmp_path / "o.wav", Recipe(bits=16, dither="tpdf", shaping=shaping, seed=3), outputs=Outputs(report=tmp_path / "r.json"))
+    recipe = Recipe(bits=16, dither="tpdf", shaping=shaping, seed=3)
+    rep = convert_file(src, tmp_path / "o.wav", recipe, outputs=Outputs(report=tmp_path / "r.json"))
     m, p = rep.measured, rep.predicted
     for key in ("a_weighted_noise_dbfs", "itu468_noise_dbfs"):
         assert abs(getattr(m, key) - getattr(p, key)) < 0.3, (key, getattr(m, key), getattr(p, key))
@@ -104,7 +105,8 @@ def test_shaped_error_power_matches_prediction(tmp_path, fs, shaping):
 
 def test_report_carries_shaping_and_predicted_spectrum(tmp_path):
     src = busy(tmp_path, seconds=2.0)
-    rep = convert_file(src, tmp_path / "o.wav", Recipe(bits=16, shaping="hearing", seed=1), outputs=Outputs(report=tmp_path / "r.json"))
+    rep = convert_file(src, tmp_path / "o.wav", Recipe(bits=16, shaping="hearing", seed=1),
+                       outputs=Outputs(report=tmp_path / "r.json"))
     assert rep.settings.shaping == "hearing"
     assert len(rep.settings.shaping_coeffs) == 9
     spec = rep.analysis.spectrum
@@ -135,7 +137,8 @@ def test_signal_correlated_warning(tmp_path, dither, fires):
     # two moments are independent of the signal [LWV92], so no warning.
     p = tmp_path / "quiet.wav"
     sf.write(p, tone(48000, 3.0, -70.0).astype(np.float32), 48000, subtype="FLOAT")
-    rep = convert_file(p, tmp_path / "o.wav", Recipe(bits=16, dither=dither, seed=1), outputs=Outputs(report=tmp_path / "r.json"))
+    rep = convert_file(p, tmp_path / "o.wav", Recipe(bits=16, dither=dither, seed=1),
+                       outputs=Outputs(report=tmp_path / "r.json"))
     has = any("signal-correlated error" in w for w in rep.warnings)
     assert has is fires
     assert rep.measured.signal_correlated is fires
@@ -194,7 +197,8 @@ def test_true_peak_and_dc_in_report(tmp_path):
     x = (x * ramp + 0.01).reshape(-1, 1)
     p = tmp_path / "tp.wav"
     sf.write(p, x, fs, subtype="DOUBLE")
-    rep = convert_file(p, tmp_path / "o.wav", Recipe(bits=24, seed=1), outputs=Outputs(report=tmp_path / "r.json"))
+    rep = convert_file(p, tmp_path / "o.wav", Recipe(bits=24, seed=1),
+                       outputs=Outputs(report=tmp_path / "r.json"))
     assert rep.measured.input_true_peak_dbtp == pytest.approx(20 * np.log10(1.01), abs=0.06)
     assert rep.channels[0].measured.input_dc_offset == pytest.approx(np.mean(x), abs=1e-9)
 

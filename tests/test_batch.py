@@ -20,10 +20,6 @@ import numpy as np
 import pytest
 import soundfile as sf
 
-# --------------------------------------------------------------------------- byte builders
-from helpers import chunk, cli_command, fmt_pcm, pcm24, run_cli, u32  # noqa: E402
-from helpers import riff_wave as _riff_wave  # noqa: E402
-
 from requant import library as B
 from requant.errors import UsageError
 from requant.library import (
@@ -36,6 +32,10 @@ from requant.library import (
     run_batch,
     settings_id,
 )
+
+# --------------------------------------------------------------------------- byte builders
+from helpers import chunk, cli_command, fmt_pcm, pcm24, run_cli, u32  # noqa: E402
+from helpers import riff_wave as _riff_wave  # noqa: E402
 
 
 def riff_wave(chunks):
@@ -197,7 +197,7 @@ def test_tree_outcomes(tree, tmp_path):
                       + ["misc/tone.wav", "loops/loop.wav"])
     assert audio_outputs(dst) == expected
     assert any("written as WAV" in n for n in latest["misc/tone.caf"]["notes"])
-    for rel, (rate, ch, _, fmt) in GOOD.items():
+    for rel, (rate, ch, _, _fmt) in GOOD.items():
         out = dst / (rel[:-4] + ".wav" if rel.endswith(".caf") else rel)
         info = sf.info(out)
         # libsndfile is the oracle for the container: rate, channels, frames kept, 16-bit

@@ -9,9 +9,10 @@ import sys
 import numpy as np
 import pytest
 import soundfile as sf
-from helpers import run_cli
 
 from requant.cli import main
+
+from helpers import run_cli
 
 
 @pytest.fixture
@@ -82,13 +83,15 @@ def test_error_cases_one_line_exit_2(tmp_path, src, case):
         x = np.zeros(1000, dtype=np.float32)
         x[500] = np.nan
         sf.write(inp, x, 1000, subtype="FLOAT")
-    before = {p.name: p.read_bytes() for p in tmp_path.iterdir() if p.is_file() and not p.is_symlink()}
+    before = {p.name: p.read_bytes() for p in tmp_path.iterdir()
+              if p.is_file() and not p.is_symlink()}
     code, stdout, stderr = run_cli("convert", inp, out, *extra)
     assert code == 2, (stdout, stderr)
     lines = [ln for ln in stderr.splitlines() if ln.strip()]
     assert len(lines) == 1 and lines[0].startswith("requant: error: "), stderr
     assert "Traceback" not in stderr
-    after = {p.name: p.read_bytes() for p in tmp_path.iterdir() if p.is_file() and not p.is_symlink()}
+    after = {p.name: p.read_bytes() for p in tmp_path.iterdir()
+             if p.is_file() and not p.is_symlink()}
     assert after == before  # inputs untouched, nothing new or partial
 
 

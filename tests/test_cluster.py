@@ -29,10 +29,11 @@ from pathlib import Path
 import numpy as np
 import pytest
 import soundfile as sf
-from helpers import cli_command, run_cli_timed
 
 from requant import library as B
 from requant.library import WorkerLost, read_manifest, resolve_settings, run_batch
+
+from helpers import cli_command, run_cli_timed
 
 pytestmark = pytest.mark.slow  # a real dask cluster on 127.0.0.1
 
@@ -239,7 +240,8 @@ def test_cluster_run_matches_local_run(cluster, library, tmp_path):
     assert not list((tmp_path / "c").glob(".requant-cluster-check-*"))  # removed at the end
 
     # resume through the cluster: nothing converted twice
-    code, out, err, _ = run_cli_timed("batch", library, tmp_path / "c", "--cluster", cluster.address)
+    code, out, err, _ = run_cli_timed("batch", library, tmp_path / "c", "--cluster",
+                                      cluster.address)
     assert code == 1, err  # the broken file still fails
     assert "converted 0, up to date 40, failed 1" in out
 
@@ -312,7 +314,7 @@ def test_killed_worker_mid_batch(where, request, big_library, tmp_path):
     # the same bytes as an undisturbed run in this process
     ref = run_batch(big_library, tmp_path / "ref", resolve_settings({"seed": 3}), jobs=1)
     assert ref["counts"]["converted"] == 400
-    for src, ev in got.items():
+    for ev in got.values():
         assert (dst / ev["output"]).read_bytes() == (tmp_path / "ref" / ev["output"]).read_bytes()
     # a rerun removes what the killed worker left and finds everything up to date
     again = run_batch(big_library, dst, resolve_settings({}), jobs=1)
@@ -487,7 +489,8 @@ def test_scheduler_without_requant_is_one_line(library, tmp_path):
     c = Cluster(tmp_path)
     try:
         c.start(workers=1, scheduler_env={"PYTHONPATH": str(hide)})
-        code, out, err, _ = run_cli_timed("batch", library, tmp_path / "out", "--cluster", c.address,
+        code, out, err, _ = run_cli_timed("batch", library, tmp_path / "out", "--cluster",
+                                          c.address,
                                     timeout=90)
     finally:
         c.stop()

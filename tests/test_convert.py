@@ -77,7 +77,8 @@ def test_error_signal_reproduces_output(tmp_path, float_wav):
 
 def test_report_keys_and_consistency(tmp_path, float_wav):
     rep_path = tmp_path / "r.json"
-    rep = convert_file(float_wav, tmp_path / "o.flac", Recipe(bits=16, seed=5), outputs=Outputs(report=rep_path))
+    rep = convert_file(float_wav, tmp_path / "o.flac", Recipe(bits=16, seed=5),
+                       outputs=Outputs(report=rep_path))
     on_disk = json.loads(rep_path.read_text())
     assert on_disk["settings"]["seed"] == 5
     for key in ("bits", "quantizer", "dither", "shaping", "seed"):
@@ -110,9 +111,11 @@ def test_file_blocks_equal_whole(tmp_path, block, shaping):
     src = tmp_path / "in.wav"
     sf.write(src, sine(seconds=0.25) + 1e-4, 48000, subtype="FLOAT")
     ref = tmp_path / "ref.wav"
-    convert_file(src, ref, Recipe(bits=12, seed=9, shaping=shaping), outputs=Outputs(error=tmp_path / "ref_e.wav"), block_frames=65536)
+    convert_file(src, ref, Recipe(bits=12, seed=9, shaping=shaping),
+                 outputs=Outputs(error=tmp_path / "ref_e.wav"), block_frames=65536)
     out = tmp_path / "o.wav"
-    convert_file(src, out, Recipe(bits=12, seed=9, shaping=shaping), outputs=Outputs(error=tmp_path / "o_e.wav"), block_frames=block)
+    convert_file(src, out, Recipe(bits=12, seed=9, shaping=shaping),
+                 outputs=Outputs(error=tmp_path / "o_e.wav"), block_frames=block)
     assert ref.read_bytes() == out.read_bytes()
     # the float error file's PEAK chunk carries a time stamp: compare its samples
     e_ref = sf.read(tmp_path / "ref_e.wav", dtype="float32")[0]
@@ -153,7 +156,8 @@ def test_passthrough_when_on_grid(tmp_path):
 
 def test_integer_container_narrower_than_target_is_passthrough(tmp_path):
     src = tmp_path / "in16.flac"
-    sf.write(src, (np.arange(-500, 500, dtype=np.int16) * 7).reshape(-1, 1), 48000, subtype="PCM_16")
+    sf.write(src, (np.arange(-500, 500, dtype=np.int16) * 7).reshape(-1, 1), 48000,
+             subtype="PCM_16")
     rep = convert_file(src, tmp_path / "o24.wav", Recipe(bits=24, seed=2))
     assert rep.output.passthrough is True
     assert rep.measured.error_power_lsb2 == 0.0
@@ -178,8 +182,11 @@ def test_nonfinite_input_refused_with_time(tmp_path, bad, kind):
     x[36000, 1] = bad
     src = tmp_path / "bad.wav"
     sf.write(src, x, 48000, subtype="FLOAT")
-    with pytest.raises(InputError, match=rf"{kind} sample at 0\.750000 s \(frame 36000, channel 2\)"):
-        convert_file(src, tmp_path / "o.wav", Recipe(bits=16), outputs=Outputs(error=tmp_path / "e.wav", report=tmp_path / "r.json"), block_frames=1000)
+    with pytest.raises(InputError,
+                       match=rf"{kind} sample at 0\.750000 s \(frame 36000, channel 2\)"):
+        convert_file(src, tmp_path / "o.wav", Recipe(bits=16),
+                     outputs=Outputs(error=tmp_path / "e.wav",
+                                     report=tmp_path / "r.json"), block_frames=1000)
     assert sorted(os.listdir(tmp_path)) == ["bad.wav"]  # nothing partial left behind
 
 
@@ -210,11 +217,13 @@ def test_never_writes_onto_input(tmp_path, float_wav, link):
 
 def test_error_path_may_not_be_input(tmp_path, float_wav):
     with pytest.raises(OutputError, match="is the input"):
-        convert_file(float_wav, tmp_path / "o.wav", outputs=Outputs(error=float_wav, overwrite=True))
+        convert_file(float_wav, tmp_path / "o.wav", outputs=Outputs(error=float_wav,
+                                                                    overwrite=True))
 
 
 @pytest.mark.parametrize("name, message", [
-    ("o.mp3", "lossy"), ("o.ogg", "lossy"), ("o.opus", "lossy"), ("o.xyz", "unknown"), ("o", "unknown"),
+    ("o.mp3", "lossy"), ("o.ogg", "lossy"), ("o.opus", "lossy"), ("o.xyz", "unknown"), ("o",
+                                                                                        "unknown"),
 ])
 def test_refused_output_names(tmp_path, float_wav, name, message):
     with pytest.raises(UsageError, match=message):
@@ -272,7 +281,8 @@ def test_memory_stays_flat_in_file_length(tmp_path):
         src = tmp_path / f"s{seconds}.wav"
         sf.write(src, sine(seconds=seconds).astype(np.float32), 48000, subtype="FLOAT")
         tracemalloc.start()
-        convert_file(src, tmp_path / f"o{seconds}.wav", Recipe(bits=16, seed=1), outputs=Outputs(error=tmp_path / f"e{seconds}.wav"), block_frames=8192)
+        convert_file(src, tmp_path / f"o{seconds}.wav", Recipe(bits=16, seed=1),
+                     outputs=Outputs(error=tmp_path / f"e{seconds}.wav"), block_frames=8192)
         peaks.append(tracemalloc.get_traced_memory()[1])
         tracemalloc.stop()
     assert peaks[1] < 1.5 * peaks[0] + 1_000_000
@@ -282,7 +292,8 @@ def test_passthrough_report_has_no_error_and_no_warning(tmp_path):
     codes = (np.arange(-2000, 2000, dtype=np.int32) * 9 << 16).reshape(-1, 1)
     src = tmp_path / "in24.wav"
     sf.write(src, np.concatenate([codes] * 30), 48000, subtype="PCM_24")
-    rep = convert_file(src, tmp_path / "o.wav", Recipe(bits=16), outputs=Outputs(report=tmp_path / "r.json"))
+    rep = convert_file(src, tmp_path / "o.wav", Recipe(bits=16),
+                       outputs=Outputs(report=tmp_path / "r.json"))
     assert rep.output.passthrough is True
     assert rep.warnings == ()
     assert rep.predicted.a_weighted_noise_dbfs is None

@@ -37,7 +37,7 @@ def sha(path):
 def tree_state(root):
     """{relative path: sha256} of every regular file under root (links not followed)."""
     out = {}
-    for dirpath, dirnames, filenames in os.walk(root):
+    for dirpath, _dirnames, filenames in os.walk(root):
         for name in filenames:
             p = os.path.join(dirpath, name)
             if os.path.islink(p) or not os.path.isfile(p):

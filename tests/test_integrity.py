@@ -6,9 +6,10 @@ import os
 import numpy as np
 import pytest
 import soundfile as sf
-from helpers import run_cli
 
 from requant.audio_io.probe import declared_frames, non_regular_kind
+
+from helpers import run_cli
 
 
 @pytest.fixture

@@ -10,7 +10,6 @@ import os
 import numpy as np
 import pytest
 import soundfile as sf
-from helpers import run_cli
 
 from requant.errors import InputError, OutputError, UsageError
 from requant.listening import (
@@ -25,6 +24,8 @@ from requant.listening import (
 )
 from requant.listening.score import guessing_p_value, score_results
 from requant.recipe import Recipe
+
+from helpers import run_cli
 
 FS = 48000
 ALL_METHODS = ["truncate", "round", "rpdf", "tpdf", "tpdf-hp", "tpdf+hearing", "tpdf+first-order"]
@@ -95,7 +96,8 @@ def kit16(tmp_path_factory):
     src = d / "source.wav"
     sf.write(src, np.concatenate([steady, np.repeat(fade, 2, axis=1)]), FS, subtype="FLOAT")
     out = d / "kit"
-    kit = make_listening_kit(src, out, recipe=Recipe(bits=16, seed=11), quiet=0.5, methods=ALL_METHODS)
+    kit = make_listening_kit(src, out, recipe=Recipe(bits=16, seed=11), quiet=0.5,
+                             methods=ALL_METHODS)
     return src, out, kit
 
 
@@ -188,7 +190,8 @@ def test_no_error_render_exceeds_cap_at_few_bits(tmp_path, bits, method):
     loud = 0.999 * np.sign(np.sin(2 * np.pi * 110 * t)) * np.abs(np.sin(2 * np.pi * 55 * t)) ** 0.1
     src = tmp_path / "loud.wav"
     sf.write(src, loud, FS, subtype="FLOAT")
-    kit = make_listening_kit(src, tmp_path / "k", recipe=Recipe(bits=bits, seed=3), quiet=0.5, methods=[method])
+    kit = make_listening_kit(src, tmp_path / "k", recipe=Recipe(bits=bits, seed=3), quiet=0.5,
+                             methods=[method])
     m = kit["methods"][0]
     for name in (m["error_file"], m["quiet"]["file"], "original_quiet.wav"):
         e = read(tmp_path / "k" / name)
@@ -205,7 +208,8 @@ def test_cap_engages_on_clipped_source(tmp_path, bits):
     t = np.arange(int(0.6 * FS)) / FS
     src = tmp_path / "loud.wav"
     sf.write(src, 1.5 * np.sin(2 * np.pi * 440 * t), FS, subtype="FLOAT")
-    kit = make_listening_kit(src, tmp_path / "k", recipe=Recipe(bits=bits, seed=4), methods=["tpdf"])
+    kit = make_listening_kit(src, tmp_path / "k", recipe=Recipe(bits=bits, seed=4),
+                             methods=["tpdf"])
     m = kit["methods"][0]
     e = read(tmp_path / "k" / m["error_file"])
     assert peak_dbfs(e) <= CAP_DBFS
@@ -269,7 +273,8 @@ def test_quiet_passage_in_kit_is_raised_after_requantization(tmp_path):
     x, level_at = fade_source(steady=1.0, fade=2.0, silence=0.5, top_db=-20.0)
     src = tmp_path / "fade.wav"
     sf.write(src, x, FS, subtype="FLOAT")
-    kit = make_listening_kit(src, tmp_path / "k", recipe=Recipe(bits=12, seed=8), quiet=0.5, methods=["truncate", "tpdf"])
+    kit = make_listening_kit(src, tmp_path / "k", recipe=Recipe(bits=12, seed=8), quiet=0.5,
+                             methods=["truncate", "tpdf"])
     q = kit["quiet_passage"]
     assert q["found"]
     # the silence floor sits 20 dB below 12-bit rounding noise: 6.0206·12 + 1.7609 dB below
@@ -350,7 +355,8 @@ def test_excerpt_start_and_duration(tmp_path):
     x = tones(2.0)
     src = tmp_path / "in.wav"
     sf.write(src, x, FS, subtype="FLOAT")
-    kit = make_listening_kit(src, tmp_path / "k", recipe=Recipe(bits=8, seed=1), excerpt=Excerpt(start_s=0.5, duration_s=0.75), methods=["tpdf"])
+    kit = make_listening_kit(src, tmp_path / "k", recipe=Recipe(bits=8, seed=1),
+                             excerpt=Excerpt(start_s=0.5, duration_s=0.75), methods=["tpdf"])
     assert kit["excerpt"]["start_frame"] == 24000 and kit["excerpt"]["frames"] == 36000
     got = read(tmp_path / "k" / "original.wav")
     w = sin2_fade(36000, kit["excerpt"]["fade_frames"])[:, None]

@@ -16,10 +16,11 @@ import time
 import numpy as np
 import pytest
 import soundfile as sf
-from helpers import cli_command
 
 from requant.listening import make_listening_kit
 from requant.recipe import Recipe
+
+from helpers import cli_command
 
 FS = 48000
 CHROMIUM = shutil.which("chromium") or shutil.which("chromium-browser")
@@ -123,7 +124,8 @@ def kit(tmp_path_factory):
     src = d / "tone.wav"
     sf.write(src, np.stack([x, 0.8 * x], axis=1), FS, subtype="FLOAT")
     out = d / "kit"
-    make_listening_kit(src, out, recipe=Recipe(bits=12, seed=9), quiet=0.5, methods=["truncate", "tpdf+hearing"])
+    make_listening_kit(src, out, recipe=Recipe(bits=12, seed=9), quiet=0.5, methods=["truncate",
+                                                                                     "tpdf+hearing"])
     return out
 
 

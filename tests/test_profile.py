@@ -9,7 +9,6 @@ import json
 import numpy as np
 import pytest
 import soundfile as sf
-from helpers import run_cli
 
 from requant.errors import UsageError
 from requant.library import MANIFEST_NAME, read_manifest, resolve_settings, run_batch
@@ -19,6 +18,8 @@ from requant.library.profiles import (
     load_profile,
     parse_profile,
 )
+
+from helpers import run_cli
 
 GOOD = """
 description = "Game SFX: 12-bit FLAC"

@@ -184,7 +184,8 @@ def test_same_seed_same_bits_other_seed_other_bits(rng):
     assert not np.array_equal(a, requantize(x, bits=8, seed=2))
 
 
-SHAPERS = [(), (1.0,), (1.5, -0.6), (2.412, -3.370, 3.937, -4.174, 3.353, -2.205, 1.281, -0.569, 0.0847)]
+SHAPERS = [(), (1.0,), (1.5, -0.6), (2.412, -3.370, 3.937, -4.174, 3.353, -2.205, 1.281, -0.569,
+                                     0.0847)]
 
 
 def run_blocks(x, sizes, **kw):
@@ -299,7 +300,9 @@ def test_tpdf_words_split_into_two_uniforms():
     codes, _ = rq.process(np.zeros((5000, 1)))
     (seq,) = np.random.SeedSequence(seed).spawn(1)
     w = np.random.SFC64(seq).random_raw(5000)
-    d = ((w >> np.uint64(32)).astype(np.float64) - (w & np.uint64(0xFFFFFFFF)).astype(np.float64)) * 2.0**-32
+    hi = (w >> np.uint64(32)).astype(np.float64)
+    lo = (w & np.uint64(0xFFFFFFFF)).astype(np.float64)
+    d = (hi - lo) * 2.0**-32
     assert np.array_equal(codes[:, 0] >> 24, np.floor(d + 0.5).astype(np.int64))
 
 

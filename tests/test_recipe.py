@@ -10,8 +10,16 @@ from hypothesis import strategies as st
 
 from requant.dsp.quantizer import DITHER_MODELS, Requantizer
 from requant.errors import InputError, UsageError
-from requant.recipe import (DITHERS, QUANTIZERS, RECIPE_KEYS, SEED_MAX, Recipe, RecipeError,
-                            RecipeTypeError, Shaping)
+from requant.recipe import (
+    DITHERS,
+    QUANTIZERS,
+    RECIPE_KEYS,
+    SEED_MAX,
+    Recipe,
+    RecipeError,
+    RecipeTypeError,
+    Shaping,
+)
 
 
 def test_defaults():

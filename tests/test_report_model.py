@@ -15,10 +15,11 @@ import numpy as np
 import pytest
 import soundfile as sf
 
-from helpers import chunk, fmt_pcm, pcm24, riff_wave
 from requant.convert import Outputs, convert_file
 from requant.recipe import RECIPE_KEYS, Recipe
 from requant.report.model import MetadataRecord, Report
+
+from helpers import chunk, fmt_pcm, pcm24, riff_wave
 
 RATE = 48000
 

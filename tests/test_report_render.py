@@ -78,8 +78,9 @@ def converted(request, source, tmp_path_factory):
     folder = tmp_path_factory.mktemp(f"out-{request.param}")
     html = folder / "report.html"
     md = folder / "<b>take&1 report.md"  # space and markup in the pictures' names too
-    rep = convert_file(source, folder / "a.wav", Recipe(bits=16, dither="tpdf", shaping=request.param, seed=3), outputs=Outputs(report=html))
-    convert_file(source, folder / "b.wav", Recipe(bits=16, dither="tpdf", shaping=request.param, seed=3), outputs=Outputs(report=md))
+    recipe = Recipe(bits=16, dither="tpdf", shaping=request.param, seed=3)
+    rep = convert_file(source, folder / "a.wav", recipe, outputs=Outputs(report=html))
+    convert_file(source, folder / "b.wav", recipe, outputs=Outputs(report=md))
     return {"shaping": request.param, "report": rep, "html": html.read_text("utf-8"),
             "md_path": md, "md": md.read_text("utf-8"), "folder": folder}
 
@@ -227,7 +228,8 @@ def test_failing_render_leaves_nothing_behind(tmp_path, monkeypatch, ext):
 
     monkeypatch.setattr(report_plots, "_plot_quiet_passage", boom)
     with pytest.raises(RuntimeError, match="drawing failed"):
-        convert_file(src, tmp_path / "out.wav", Recipe(seed=1), outputs=Outputs(error=tmp_path / "err.wav", report=tmp_path / f"r.{ext}"))
+        convert_file(src, tmp_path / "out.wav", Recipe(seed=1),
+                     outputs=Outputs(error=tmp_path / "err.wav", report=tmp_path / f"r.{ext}"))
     assert sorted(os.listdir(tmp_path)) == ["in.wav"]
 
 
@@ -240,7 +242,8 @@ def test_undithered_quiet_8_bit_shows_signal_correlated_warning(tmp_path, dither
     src = tmp_path / "quiet.wav"
     sf.write(src, np.stack([x, 0.8 * x], axis=1), RATE, subtype="FLOAT")
     path = tmp_path / "r.html"
-    rep = convert_file(src, tmp_path / "q.wav", Recipe(bits=8, dither=dither, seed=2), outputs=Outputs(report=path))
+    rep = convert_file(src, tmp_path / "q.wav", Recipe(bits=8, dither=dither, seed=2),
+                       outputs=Outputs(report=path))
     html = path.read_text("utf-8")
     alert = re.search(r"<section class=\"alert\".*?</section>", html, flags=re.S)
     assert rep.measured.signal_correlated is warned
@@ -265,7 +268,8 @@ def test_reports_for_special_inputs_still_have_pictures(tmp_path, case):
     sf.write(src, data, RATE, subtype=subtype)
     shaping = "hearing" if case == "mono-shaped" else "none"
     for ext in ("html", "md"):
-        convert_file(src, tmp_path / f"o_{ext}.wav", Recipe(seed=4, shaping=shaping), outputs=Outputs(report=tmp_path / f"r.{ext}"))
+        convert_file(src, tmp_path / f"o_{ext}.wav", Recipe(seed=4, shaping=shaping),
+                     outputs=Outputs(report=tmp_path / f"r.{ext}"))
     html = (tmp_path / "r.html").read_text("utf-8")
     srcs = img_sources(html)
     assert len(srcs) >= 2

@@ -198,7 +198,7 @@ def test_read_chunks_matches_builder(tmp_path, codes):
     chunks = read_chunks(path)
     assert [(c.id, c.offset, c.size) for c in chunks] == where
     assert wav_chunk_ids(path) == [w[0] for w in where]
-    for c, (cid, payload) in zip(chunks, source_chunks(codes)):
+    for c, (_cid, payload) in zip(chunks, source_chunks(codes)):
         assert c.read(path) == payload
         assert c.header_offset == c.offset - 8 and c.end == c.offset + len(payload)
 
@@ -653,7 +653,7 @@ def mutations(draw, base: bytes, size_fields: list[int], payloads: list[tuple[in
             at = draw(st.sampled_from(size_fields))
             old = int.from_bytes(base[at:at + 4], "little")
             new = draw(st.one_of(st.integers(0, 2**32 - 1), st.sampled_from([0, 0xFFFFFFFF]),
-                                 st.integers(-3, 3).map(lambda d: (old + d) % 2**32)))
+                                 st.integers(-3, 3).map(lambda d, old=old: (old + d) % 2**32)))
             blob[at:at + 4] = u32(new)
         elif kind == "append":
             blob += draw(st.binary(min_size=1, max_size=16))

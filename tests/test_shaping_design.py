@@ -245,7 +245,8 @@ def test_first_order():
     # NTF = 1 - z^-1: |NTF| = 0 at DC and 2 at Nyquist; Σn² = 2 (+3.01 dB),
     # REFERENCES.md §3 (output noise power (Δ²/4)·Σ n_k²).
     h = first_order()
-    np.testing.assert_allclose(np.abs(ntf_response(h, [0.0, 24000.0], 48000.0)), [0.0, 2.0], atol=1e-12)
+    np.testing.assert_allclose(np.abs(ntf_response(h, [0.0, 24000.0], 48000.0)), [0.0, 2.0],
+                               atol=1e-12)
     assert noise_gain(h) == 2.0
     assert abs(noise_gain_db(h) - 3.0103) < 1e-4
 

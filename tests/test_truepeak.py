@@ -316,7 +316,9 @@ def test_dual_meter_equals_two_meters(kind, block, dtype):
     if kind == "noise":
         x = 0.3 * rng.standard_normal((n, 2))
     elif kind == "bursts":
-        x = (np.sin(2 * np.pi * 0.7 * t) ** 16)[:, None] * np.sin(2 * np.pi * 3000 * t)[:, None] * [1, 0.5]
+        x = (np.sin(2 * np.pi * 0.7 * t) ** 16)[:, None] * np.sin(2 * np.pi * 3000 * t)[:,
+                                                                                        None] * [1,
+                                                                                                 0.5]
     else:
         x = np.zeros((n, 2))
         x[n // 2:] = 0.8 * np.sin(np.pi / 2 * np.arange(n - n // 2) + np.pi / 4)[:, None]

@@ -79,7 +79,8 @@ def subtype_for(fmt, bits):
     if bits <= 24:
         return "PCM_24"
     if fmt == "FLAC":
-        raise UsageError(f"FLAC holds at most 24 bits, not {bits}; write .wav or .aiff for {bits} bits")
+        raise UsageError(f"FLAC holds at most 24 bits, not {bits}; write .wav or .aiff for "
+                         f"{bits} bits")
     return "PCM_32"
 
 

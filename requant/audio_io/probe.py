@@ -89,7 +89,7 @@ def _wav_declared_frames(fh, *, rf64):
 
 
 def _aiff_declared_frames(fh):
-    for cid, size, at in _chunk_headers(fh, ">"):
+    for cid, _size, at in _chunk_headers(fh, ">"):
         if cid == b"COMM":
             fh.seek(at)
             raw = fh.read(6)

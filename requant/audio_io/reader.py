@@ -49,7 +49,8 @@ def open_input(path):
             "complete WAV, FLAC, AIFF or other PCM file"
         ) from None
     except OSError as exc:
-        raise InputError(f"{p!r} cannot be opened ({exc.strerror or exc}); check its permissions") from None
+        raise InputError(f"{p!r} cannot be opened ({exc.strerror or exc}); check its "
+                         "permissions") from None
 
 
 def on_grid(f, *, dtype, scale, kmin, kmax, block_frames, subtype):
@@ -82,7 +83,8 @@ def on_grid(f, *, dtype, scale, kmin, kmax, block_frames, subtype):
 
 def first_nonfinite(x, start_frame):
     bad = np.argwhere(~np.isfinite(x))[0]
-    return start_frame + int(bad[0]), int(bad[1]), ("NaN" if np.isnan(x[tuple(bad)]) else "infinite")
+    kind = "NaN" if np.isnan(x[tuple(bad)]) else "infinite"
+    return start_frame + int(bad[0]), int(bad[1]), kind
 
 
 class BlockReader:

@@ -36,8 +36,9 @@ import os
 import stat
 import struct
 import tempfile
+from collections.abc import Callable
 from pathlib import Path
-from typing import BinaryIO, Callable
+from typing import BinaryIO
 
 from requant.errors import InputError, OutputError, UsageError
 

@@ -62,7 +62,8 @@ def wrap_write_error(exc, path):
         return OutputError(f"cannot write in the folder of {path!r} (read-only or no permission); "
                            "choose a writable destination")
     if code == errno.ENOSPC or "No space" in text or limit == "disk full":
-        return OutputError(f"the disk is full while writing {path!r}; free some space and run again")
+        return OutputError(f"the disk is full while writing {path!r}; free some space and run "
+                           "again")
     if code == errno.EFBIG or "too large" in text or limit == "size limit":
         return OutputError(f"the file size limit was reached while writing {path!r}; "
                            "free space or raise the limit (ulimit -f)")

@@ -11,13 +11,25 @@ import sys
 import time
 from enum import Enum
 from pathlib import Path
-from typing import Annotated, List, Optional
+from typing import Annotated
 
 import typer
 
-from requant.cli.common import (CAUTION, MaybeBits, MaybeBlockFrames, MaybeDither,
-                                    MaybeForceDither, MaybeQuantizer, MaybeShaping, Quiet, Seed, ShapingLimit, ShapingOrder, err,
-                                    recipe_options)
+from requant.cli.common import (
+    CAUTION,
+    MaybeBits,
+    MaybeBlockFrames,
+    MaybeDither,
+    MaybeForceDither,
+    MaybeQuantizer,
+    MaybeShaping,
+    Quiet,
+    Seed,
+    ShapingLimit,
+    ShapingOrder,
+    err,
+    recipe_options,
+)
 from requant.library.tree import OUTPUT_CHOICES
 
 __all__ = ["batch", "OutFormat", "ConsoleReporter"]
@@ -86,8 +98,13 @@ class ConsoleReporter:
               f"({info['seed_origin']})", flush=True)
         if self.tty and info["files"]:
             from rich.console import Console
-            from rich.progress import (BarColumn, Progress, TextColumn, TimeElapsedColumn,
-                                       TimeRemainingColumn)
+            from rich.progress import (
+                BarColumn,
+                Progress,
+                TextColumn,
+                TimeElapsedColumn,
+                TimeRemainingColumn,
+            )
 
             self._bar = Progress(
                 TextColumn("converting"), BarColumn(),
@@ -214,25 +231,25 @@ def batch(
     shaping_limit: ShapingLimit = None,
     seed: Seed = None,
     force_dither: MaybeForceDither = None,
-    analyze: Annotated[Optional[bool], typer.Option(
+    analyze: Annotated[bool | None, typer.Option(
         "--analyze/--no-analyze",
         help="Measure each file's weighted noise, signal-correlated error and true peak "
              "(about 5x slower on short files) [default: no].", show_default=False)] = None,
-    format: Annotated[Optional[OutFormat], typer.Option(
+    format: Annotated[OutFormat | None, typer.Option(
         "--format", help="Output format; 'same' keeps WAV, FLAC and AIFF and writes "
                          "other sources as WAV [default: same].", show_default=False)] = None,
-    include: Annotated[Optional[List[str]], typer.Option(
+    include: Annotated[list[str] | None, typer.Option(
         "--include", help="Only files whose relative path (or name) matches this glob; "
                           "repeatable.")] = None,
-    exclude: Annotated[Optional[List[str]], typer.Option(
+    exclude: Annotated[list[str] | None, typer.Option(
         "--exclude", help="Leave out files whose relative path (or name) matches this "
                           "glob; repeatable.")] = None,
-    profile: Annotated[Optional[Path], typer.Option(
+    profile: Annotated[Path | None, typer.Option(
         "--profile", help="Saved delivery settings (TOML); options given here override "
                           "it.")] = None,
-    jobs: Annotated[Optional[int], typer.Option(
+    jobs: Annotated[int | None, typer.Option(
         "--jobs", "-j", min=1, help="Worker processes [default: all cores].")] = None,
-    cluster: Annotated[Optional[str], typer.Option(
+    cluster: Annotated[str | None, typer.Option(
         "--cluster", metavar="tcp://HOST:PORT",
         help="Convert on the workers of an existing dask.distributed scheduler (needs "
              "requant[cluster]); SRC and DST must be shared storage at the same paths on "

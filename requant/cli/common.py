@@ -16,17 +16,25 @@ import functools
 import sys
 from enum import Enum
 from pathlib import Path
-from typing import Annotated, List, Optional
+from typing import Annotated
 
 import typer
 
 from requant.audio_io.formats import DEFAULT_BLOCK_FRAMES, MAX_BLOCK_FRAMES
-from requant.recipe import DEFAULT_LIMIT_DB, DEFAULT_ORDER, DITHERS, MAX_TAPS, QUANTIZERS, SEED_MAX
-from requant.recipe import Recipe
+from requant.recipe import (
+    DEFAULT_LIMIT_DB,
+    DEFAULT_ORDER,
+    DITHERS,
+    MAX_TAPS,
+    QUANTIZERS,
+    SEED_MAX,
+    Recipe,
+)
 
 __all__ = ["CAUTION", "DEFAULTS", "err", "friendly", "set_debug", "Quantizer", "Dither",
            "recipe_options", "OPTIONS", "Bits", "QuantizerOpt", "DitherOpt", "ShapingOpt",
-           "ShapingOrder", "ShapingLimit", "ShaperOrder", "ShaperLimit", "Seed", "ForceDither", "Overwrite", "Quiet",
+           "ShapingOrder", "ShapingLimit", "ShaperOrder", "ShaperLimit", "Seed", "ForceDither",
+           "Overwrite", "Quiet",
            "BlockFrames", "MaybeBits", "MaybeQuantizer", "MaybeDither", "MaybeShaping",
            "MaybeForceDither", "MaybeBlockFrames", "ErrorPath", "ReportPaths"]
 
@@ -113,27 +121,27 @@ Bits = Annotated[int, _option("bits")]
 QuantizerOpt = Annotated[Quantizer, _option("quantizer")]
 DitherOpt = Annotated[Dither, _option("dither")]
 ShapingOpt = Annotated[str, _option("shaping")]
-ShapingOrder = Annotated[Optional[int], _option("shaping_order")]
-ShapingLimit = Annotated[Optional[float], _option("shaping_limit")]
+ShapingOrder = Annotated[int | None, _option("shaping_order")]
+ShapingLimit = Annotated[float | None, _option("shaping_limit")]
 #: ``shaper show`` also takes the short names it has always had.
-ShaperOrder = Annotated[Optional[int], _option("shaping_order", aliases=("--order",))]
-ShaperLimit = Annotated[Optional[float], _option("shaping_limit", aliases=("--limit",))]
-Seed = Annotated[Optional[int], _option("seed")]
+ShaperOrder = Annotated[int | None, _option("shaping_order", aliases=("--order",))]
+ShaperLimit = Annotated[float | None, _option("shaping_limit", aliases=("--limit",))]
+Seed = Annotated[int | None, _option("seed")]
 ForceDither = Annotated[bool, _option("force_dither")]
 Overwrite = Annotated[bool, _option("overwrite")]
 Quiet = Annotated[bool, _option("quiet")]
 BlockFrames = Annotated[int, _option("block_frames")]
 
-MaybeBits = Annotated[Optional[int], _option("bits", layered=True)]
-MaybeQuantizer = Annotated[Optional[Quantizer], _option("quantizer", layered=True)]
-MaybeDither = Annotated[Optional[Dither], _option("dither", layered=True)]
-MaybeShaping = Annotated[Optional[str], _option("shaping", layered=True)]
-MaybeForceDither = Annotated[Optional[bool], _option("force_dither", layered=True)]
-MaybeBlockFrames = Annotated[Optional[int], _option("block_frames", layered=True)]
+MaybeBits = Annotated[int | None, _option("bits", layered=True)]
+MaybeQuantizer = Annotated[Quantizer | None, _option("quantizer", layered=True)]
+MaybeDither = Annotated[Dither | None, _option("dither", layered=True)]
+MaybeShaping = Annotated[str | None, _option("shaping", layered=True)]
+MaybeForceDither = Annotated[bool | None, _option("force_dither", layered=True)]
+MaybeBlockFrames = Annotated[int | None, _option("block_frames", layered=True)]
 
-ErrorPath = Annotated[Optional[Path], typer.Option(
+ErrorPath = Annotated[Path | None, typer.Option(
     "--error", help="Write the error signal (output minus input), 32-bit float .wav or .aiff.")]
-ReportPaths = Annotated[Optional[List[Path]], typer.Option(
+ReportPaths = Annotated[list[Path] | None, typer.Option(
     "--report", help="Write the report: .json, .html (one self-contained page) or .md "
                      "(pictures beside it); repeat for several forms.")]
 

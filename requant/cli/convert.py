@@ -8,17 +8,34 @@ from typing import Annotated
 
 import typer
 
-from requant.cli.common import (CAUTION, DEFAULTS, BlockFrames, Bits, Dither, DitherOpt,
-                                    ErrorPath, ForceDither, Overwrite, Quantizer, QuantizerOpt,
-                                    Quiet, ReportPaths, Seed, ShapingLimit, ShapingOpt,
-                                    ShapingOrder, recipe_options)
 from requant.audio_io.formats import DEFAULT_BLOCK_FRAMES
+from requant.cli.common import (
+    CAUTION,
+    DEFAULTS,
+    Bits,
+    BlockFrames,
+    Dither,
+    DitherOpt,
+    ErrorPath,
+    ForceDither,
+    Overwrite,
+    Quantizer,
+    QuantizerOpt,
+    Quiet,
+    ReportPaths,
+    Seed,
+    ShapingLimit,
+    ShapingOpt,
+    ShapingOrder,
+    recipe_options,
+)
 
 __all__ = ["convert", "summary_line"]
 
 
 def convert(
-    input: Annotated[Path, typer.Argument(help="Audio file to requantize (any PCM or float file).")],
+    input: Annotated[Path,
+                     typer.Argument(help="Audio file to requantize (any PCM or float file).")],
     output: Annotated[Path, typer.Argument(help="Output file: .wav, .flac or .aiff.")],
     bits: Bits = DEFAULTS.bits,
     quantizer: QuantizerOpt = Quantizer(DEFAULTS.quantizer),

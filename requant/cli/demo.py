@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import sys
 from pathlib import Path
-from typing import Annotated, Optional
+from typing import Annotated
 
 import typer
 
@@ -16,7 +16,7 @@ __all__ = ["demo"]
 def demo(
     out: Annotated[Path, typer.Option("--out", help="Folder for the demo results.")] = Path(
         "demo_output"),
-    source: Annotated[Optional[Path], typer.Option(
+    source: Annotated[Path | None, typer.Option(
         "--source", help="Folder of demo audio (default: the bundled one).")] = None,
     seed: Annotated[int, typer.Option(help="Dither seed for the demo.")] = 2026,
 ):

@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 from pathlib import Path
-from typing import Annotated, Optional
+from typing import Annotated
 
 import typer
 
@@ -14,7 +14,7 @@ __all__ = ["inspect_command", "shaper_show", "format_shaper"]
 
 def inspect_command(
     file: Annotated[Path, typer.Argument(help="Audio file to inspect.")],
-    json_path: Annotated[Optional[Path], typer.Option(
+    json_path: Annotated[Path | None, typer.Option(
         "--json", help="Also write the findings as JSON.")] = None,
     overwrite: Overwrite = False,
 ):
@@ -40,9 +40,9 @@ def shaper_show(
     ] = "hearing",
     shaping_order: ShaperOrder = None,
     shaping_limit: ShaperLimit = None,
-    json_out: Annotated[Optional[Path], typer.Option(
+    json_out: Annotated[Path | None, typer.Option(
         "--json", help="Export the coefficients and figures as JSON.")] = None,
-    png_out: Annotated[Optional[Path], typer.Option(
+    png_out: Annotated[Path | None, typer.Option(
         "--png", help="Plot |NTF| beside the weighting curves (PNG).")] = None,
     overwrite: Overwrite = False,
 ):
@@ -71,7 +71,8 @@ def format_shaper(name, d):
     lines = [f"shaping filter '{name}' for {d['sample_rate']:g} Hz, order {len(d['coefficients'])}"
              f"{'' if d['minimum_phase'] else ' (NOT minimum phase)'}"]
     lines.append("  h_k: " + ", ".join(f"{v:.6f}" for v in d["coefficients"]))
-    lines.append(f"  total noise gain (sum of n_k^2): {d['noise_gain_db']:+.2f} dB against flat TPDF")
+    lines.append(f"  total noise gain (sum of n_k^2): {d['noise_gain_db']:+.2f} dB against "
+                 "flat TPDF")
     lines.append(f"  Gerzon-Craven mean of 10*log10|NTF|^2 over 0..fs/2: "
                  f"{d['gerzon_craven_mean_log_db']:+.4f} dB (0 for a minimum-phase NTF)")
     lines.append(f"  {'weighting':22} {'gain vs flat TPDF':>18} {'best possible':>14}")

@@ -8,12 +8,11 @@ from __future__ import annotations
 
 import sys
 from pathlib import Path
-from typing import Annotated, List, Optional
+from typing import Annotated
 
 import typer
 
-from requant.cli.common import (CAUTION, DEFAULTS, Bits, Overwrite, Seed, ShapingLimit,
-                                    ShapingOrder)
+from requant.cli.common import CAUTION, DEFAULTS, Bits, Overwrite, Seed, ShapingLimit, ShapingOrder
 from requant.listening.excerpt import MAX_EXCERPT_SECONDS, MIN_EXCERPT_SECONDS, QUIET_SECONDS
 from requant.listening.methods import DEFAULT_METHODS, METHOD_HEADS, METHOD_SHAPINGS
 
@@ -28,11 +27,11 @@ def listen(
     src: Annotated[Path, typer.Argument(help="Audio file to take the excerpt from.")],
     outdir: Annotated[Path, typer.Argument(help="Folder for the kit (created if missing).")],
     bits: Bits = DEFAULTS.bits,
-    method: Annotated[Optional[List[str]], typer.Option(
+    method: Annotated[list[str] | None, typer.Option(
         "--method", "-m", help=_METHOD_HELP)] = None,
     start: Annotated[float, typer.Option(
         "--start", min=0.0, help="Start of the excerpt in the source, seconds.")] = 0.0,
-    duration: Annotated[Optional[float], typer.Option(
+    duration: Annotated[float | None, typer.Option(
         "--duration", min=MIN_EXCERPT_SECONDS, max=MAX_EXCERPT_SECONDS,
         help="Length of the excerpt, seconds. Default: 30 s or to the end of the file.")] = None,
     quiet_passage: Annotated[bool, typer.Option(

@@ -209,7 +209,8 @@ class Requantizer:
         the recipe's seed must be set.
         """
         if recipe.seed is None:
-            raise UsageError("the recipe has no seed yet; draw one with recipe.with_seed(new_seed())")
+            raise UsageError("the recipe has no seed yet; draw one with "
+                             "recipe.with_seed(new_seed())")
         return cls(channels, bits=recipe.bits, quantizer=recipe.quantizer, dither=recipe.dither,
                    coeffs=coeffs, seed=recipe.seed, container_bits=container_bits)
 

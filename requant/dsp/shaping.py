@@ -54,9 +54,6 @@ import os
 
 import numpy as np
 
-from requant.errors import UsageError
-from requant.recipe import (DEFAULT_LIMIT_DB, DEFAULT_ORDER, MAX_TAPS, SHAPING_NAMES, Shaping,
-                            check_shaping_limit, check_shaping_order)
 from requant.dsp.weighting import (
     UPPER_LIMIT_OF_HEARING_HZ,
     WEIGHTINGS,
@@ -64,6 +61,16 @@ from requant.dsp.weighting import (
     weighted_noise_gain_db,
     weighting_db,
     weighting_power,
+)
+from requant.errors import UsageError
+from requant.recipe import (
+    DEFAULT_LIMIT_DB,
+    DEFAULT_ORDER,
+    MAX_TAPS,
+    SHAPING_NAMES,
+    Shaping,
+    check_shaping_limit,
+    check_shaping_order,
 )
 
 __all__ = [

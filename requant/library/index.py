@@ -169,7 +169,7 @@ class IndexBuilder:
         return self._page.render(
             title=f"requant batch: {name}", summary=summary, facts=facts,
             settings_line=settings_line, rows=rows,
-            generated=_dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
+            generated=_dt.datetime.now(_dt.UTC).isoformat(timespec="seconds"),
         )
 
     def write(self, path, summary):

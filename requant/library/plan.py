@@ -13,15 +13,16 @@ import json
 import os
 import time
 
+from requant.dsp.quantizer import new_seed
 from requant.errors import OutputError, RequantError, UsageError
 from requant.library.manifest import MANIFEST_NAME, latest_by_source, read_manifest, sha256_file
 from requant.library.settings import derive_seed, settings_id
 from requant.library.task import task_settings
 from requant.library.tree import output_name, walk_tree
-from requant.dsp.quantizer import new_seed
 from requant.recipe import SEED_MAX
 
-__all__ = ["STATE_NAME", "LOCK_NAME", "plan_tasks", "plan_dry_run", "choose_run_seed", "take_lock", "remove_stale_temps", "read_state"]
+__all__ = ["STATE_NAME", "LOCK_NAME", "plan_tasks", "plan_dry_run", "choose_run_seed", "take_lock",
+           "remove_stale_temps", "read_state"]
 
 
 STATE_NAME = "requant-batch.json"
@@ -48,7 +49,7 @@ def _is_stale_temp(name):
 
 def remove_stale_temps(dst):
     removed = []
-    for root, dirs, files in os.walk(dst, followlinks=False):
+    for root, _dirs, files in os.walk(dst, followlinks=False):
         for name in files:
             if _is_stale_temp(name):
                 try:

@@ -34,7 +34,7 @@ import os
 import tomllib
 
 from requant.errors import InputError, UsageError
-from requant.library.settings import BATCH_KEYS, BatchSettings, OUTPUT_CHOICES
+from requant.library.settings import BATCH_KEYS, OUTPUT_CHOICES, BatchSettings
 from requant.recipe import RECIPE_KEYS, Recipe, RecipeError, describe_value
 
 __all__ = ["PROFILE_KEYS", "OUTPUT_CHOICES", "ProfileError", "load_profile", "parse_profile"]
@@ -59,7 +59,7 @@ class ProfileError(UsageError):
 
 
 def _check_keys(where, data):
-    for key, value in data.items():
+    for key, _value in data.items():
         if key not in PROFILE_KEYS:
             hint = difflib.get_close_matches(key, list(PROFILE_KEYS), n=1)
             did = f" (did you mean {hint[0]!r}?)" if hint else ""

@@ -15,11 +15,17 @@ from requant.audio_io.writers import write_json_atomic
 from requant.errors import OutputError, RequantError
 from requant.library.executors.base import BatchReporter, Executor, Reporter, WorkerLost
 from requant.library.executors.local import ProcessExecutor, SerialExecutor, default_jobs
-from requant.library.manifest import MANIFEST_NAME, ManifestWriter, read_manifest
-from requant.library.plan import (STATE_NAME, choose_run_seed, plan_dry_run, plan_tasks,
-                                  remove_stale_temps, take_lock)
-from requant.library.settings import BatchSettings, settings_id
 from requant.library.index import IndexBuilder
+from requant.library.manifest import MANIFEST_NAME, ManifestWriter, read_manifest
+from requant.library.plan import (
+    STATE_NAME,
+    choose_run_seed,
+    plan_dry_run,
+    plan_tasks,
+    remove_stale_temps,
+    take_lock,
+)
+from requant.library.settings import BatchSettings, settings_id
 from requant.library.summary import INDEX_NAME, SUMMARY_NAME, RunRecord, summarize
 from requant.library.task import convert_task, now_iso, task_payloads, worker_label
 from requant.library.tree import check_folders

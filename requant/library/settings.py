@@ -19,8 +19,8 @@ from dataclasses import dataclass, field
 
 from requant import __version__
 from requant.audio_io.formats import DEFAULT_BLOCK_FRAMES, check_block_frames
-from requant.library.tree import OUTPUT_CHOICES
 from requant.errors import UsageError
+from requant.library.tree import OUTPUT_CHOICES
 from requant.recipe import RECIPE_KEYS, Recipe, RecipeError, describe_value
 
 __all__ = ["BatchSettings", "OUTPUT_CHOICES", "BATCH_KEYS", "SETTING_KEYS", "DEFAULT_SETTINGS",
@@ -80,7 +80,8 @@ class BatchSettings:
                              "--format wav or aiff, or fewer bits")
         if not isinstance(self.analyze, bool):
             raise RecipeError("analyze", self.analyze,
-                              f"must be true or false, not {describe_value(self.analyze)}", typed=True)
+                              f"must be true or false, not {describe_value(self.analyze)}",
+                              typed=True)
         for key in ("include", "exclude"):
             pats = getattr(self, key)
             if isinstance(pats, str) or not all(isinstance(p, str) and p for p in pats):

@@ -15,9 +15,9 @@ from requant.audio_io.atomic import pending_path
 from requant.audio_io.formats import format_for_path
 from requant.convert import Outputs, convert_file
 from requant.errors import InputError, OutputError, RequantError
-from requant.recipe import Recipe
 from requant.library.executors.base import WORKER, Terminated
 from requant.library.manifest import sha256_file
+from requant.recipe import Recipe
 
 __all__ = ["convert_task", "task_settings", "task_payloads", "now_iso", "worker_label"]
 
@@ -26,7 +26,7 @@ HOST = socket.gethostname()
 
 
 def now_iso():
-    return _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="milliseconds")
+    return _dt.datetime.now(_dt.UTC).isoformat(timespec="milliseconds")
 
 
 def worker_label():

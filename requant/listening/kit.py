@@ -20,7 +20,8 @@ What :func:`make_listening_kit` writes into ``OUTDIR``
     :func:`~requant.listening.levels.error_render_gain_db`) and then hard-limited so that no sample
     exceeds :data:`~requant.listening.levels.CAP_DBFS` (-6 dBFS). 32-bit float.
 ``original_quiet.wav``, ``mK_<method>_quiet.wav`` (with ``quiet``)
-    The quietest non-silent stretch of the source (:func:`~requant.listening.levels.find_quiet_passage`),
+    The quietest non-silent stretch of the source
+    (:func:`~requant.listening.levels.find_quiet_passage`),
     faded, requantized with each method, then raised by a stated gain
     (:func:`~requant.listening.levels.quiet_gain_db`) *after* requantization and hard-limited at the
     same cap. 32-bit float.
@@ -51,16 +52,38 @@ from requant.audio_io.reader import open_input
 from requant.dsp.quantizer import new_seed
 from requant.dsp.shaping import coefficients_for
 from requant.errors import OutputError, UsageError
-from requant.listening.levels import (CAP_DBFS, ERROR_TARGET_DBFS, LEVEL_MATCH_FACTOR,
-                                      MAX_GAIN_DB, QUIET_CHUNK_SECONDS, apply_fades, cap_value, error_render_gain_db,
-                                      fade_envelope, find_quiet_in_file, quiet_floor_dbfs,
-                                      rounding_noise_dbfs)
-from requant.listening.excerpt import (DEFAULT_EXCERPT_SECONDS, MIN_EXCERPT_SECONDS, Excerpt,
-                                       check_seconds)
+from requant.listening.excerpt import (
+    DEFAULT_EXCERPT_SECONDS,
+    MIN_EXCERPT_SECONDS,
+    Excerpt,
+    check_seconds,
+)
+from requant.listening.levels import (
+    CAP_DBFS,
+    ERROR_TARGET_DBFS,
+    LEVEL_MATCH_FACTOR,
+    MAX_GAIN_DB,
+    QUIET_CHUNK_SECONDS,
+    apply_fades,
+    cap_value,
+    error_render_gain_db,
+    fade_envelope,
+    find_quiet_in_file,
+    quiet_floor_dbfs,
+    rounding_noise_dbfs,
+)
 from requant.listening.methods import DEFAULT_METHODS, parse_methods
 from requant.listening.page import render_page
-from requant.listening.render import (Material, container_bits, jsonable, quiet_setup,
-                                      read_excerpt, render_one, verify, write_wav)
+from requant.listening.render import (
+    Material,
+    container_bits,
+    jsonable,
+    quiet_setup,
+    read_excerpt,
+    render_one,
+    verify,
+    write_wav,
+)
 from requant.recipe import Recipe
 
 __all__ = ["make_listening_kit"]
@@ -165,7 +188,7 @@ def _kit_figures(src, got, base, *, names, gain_db, rows, comparisons, q_info):
         "format": "requant-listening-kit",
         "version": 1,
         "requant_version": __version__,
-        "created": _dt.datetime.now(_dt.timezone.utc).replace(microsecond=0).isoformat(),
+        "created": _dt.datetime.now(_dt.UTC).replace(microsecond=0).isoformat(),
         "kit_id": secrets.token_hex(8),
         "source": {"name": os.path.basename(src), "sample_rate": rate,
                    "channels": got.channels, "frames": got.total, "subtype": got.subtype},

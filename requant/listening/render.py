@@ -8,9 +8,17 @@ import numpy as np
 from requant.dsp.analysis import analyze_arrays
 from requant.dsp.quantizer import Requantizer, predicted_error_power_lsb2
 from requant.errors import InputError, OutputError
-from requant.listening.levels import (QUIET_CHUNK_SECONDS, QUIET_TARGET_DBFS, apply_fades,
-                                      chunk_mean_squares, db_peak, db_power, hard_limit,
-                                      level_match, quiet_gain_db)
+from requant.listening.levels import (
+    QUIET_CHUNK_SECONDS,
+    QUIET_TARGET_DBFS,
+    apply_fades,
+    chunk_mean_squares,
+    db_peak,
+    db_power,
+    hard_limit,
+    level_match,
+    quiet_gain_db,
+)
 
 __all__ = ["container_bits", "render_method", "read_excerpt", "write_wav", "verify", "jsonable",
            "quiet_setup", "Material", "render_one"]

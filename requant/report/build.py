@@ -18,9 +18,19 @@ from requant.dsp.analysis import correlated_summary
 from requant.dsp.figures import measured_figures, predicted_figures
 from requant.dsp.quantizer import predicted_error_power_lsb2
 from requant.recipe import Recipe
-from requant.report.model import (Analysis, ChannelMeasured, ChannelRow, ErrorSignalFacts,
-                                  InputFacts, MeasuredFigures, MetadataRecord, OutputFacts,
-                                  PredictedFigures, Report, ReportSettings)
+from requant.report.model import (
+    Analysis,
+    ChannelMeasured,
+    ChannelRow,
+    ErrorSignalFacts,
+    InputFacts,
+    MeasuredFigures,
+    MetadataRecord,
+    OutputFacts,
+    PredictedFigures,
+    Report,
+    ReportSettings,
+)
 
 __all__ = ["build_report", "Conversion", "settings_block"]
 
@@ -240,7 +250,7 @@ def build_report(rq, conv, *, analysis=None, metadata=None):
                                        section=section))
     return Report(
         requant_version=__version__,
-        created=_dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
+        created=_dt.datetime.now(_dt.UTC).isoformat(timespec="seconds"),
         settings=settings_block(conv.recipe, coeffs=conv.coeffs, dither_applied=rq.dither,
                                 block_frames=conv.block_frames),
         **_files(rq, conv, metadata),

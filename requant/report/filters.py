@@ -71,7 +71,8 @@ def _atomic_write(path, write, *, binary=False):
     tmp = None
     try:
         fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=folder)
-        with os.fdopen(fd, "wb" if binary else "w", **({} if binary else {"encoding": "utf-8"})) as fh:
+        with os.fdopen(fd, "wb" if binary else "w",
+                       **({} if binary else {"encoding": "utf-8"})) as fh:
             write(fh)
         os.replace(tmp, path)
         tmp = None

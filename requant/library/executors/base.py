@@ -86,8 +86,10 @@ def warm_kernel():
     import soundfile  # noqa: F401
 
     from requant import convert  # noqa: F401
-    from requant.audio_io import wavwrite  # noqa: F401
-    from requant.audio_io import riff  # noqa: F401
+    from requant.audio_io import (
+        riff,  # noqa: F401
+        wavwrite,  # noqa: F401
+    )
     from requant.dsp.quantizer import Requantizer
 
     Requantizer(1, bits=16, dither="tpdf", seed=0).process(np.zeros((16, 1), np.float32))

@@ -330,7 +330,7 @@ class DaskExecutor:
         except socket.gaierror as exc:
             raise self._unreachable(f"unknown host {self._host!r} ({exc.strerror or exc})") \
                 from None
-        except (TimeoutError, socket.timeout):
+        except TimeoutError:
             raise self._unreachable(f"no answer within {self.connect_timeout:g} s") from None
         except OSError as exc:
             raise self._unreachable(exc.strerror or str(exc)) from None

@@ -8,8 +8,15 @@ import threading
 import time
 
 from requant.errors import RequantError
-from requant.library.executors.base import (WORKER, Terminated, WorkerLost, chunk_items,
-                                             commit_chunk, run_chunk, warm_kernel)
+from requant.library.executors.base import (
+    WORKER,
+    Terminated,
+    WorkerLost,
+    chunk_items,
+    commit_chunk,
+    run_chunk,
+    warm_kernel,
+)
 
 __all__ = ["SerialExecutor", "ProcessExecutor", "default_jobs"]
 
@@ -191,15 +198,14 @@ class ProcessExecutor:
         if self._pool is not None:
             return
         import multiprocessing as mp
-        from concurrent.futures import ProcessPoolExecutor
-
-        from concurrent.futures import wait
+        from concurrent.futures import ProcessPoolExecutor, wait
 
         ctx = mp.get_context(self.start_method)
         if self.start_method == "fork":
             warm_kernel()  # once, here: every forked worker inherits the loaded kernel
         if self.start_method == "forkserver":
-            ctx.set_forkserver_preload(["requant.library", "requant.convert", "requant.audio_io.riff"])
+            ctx.set_forkserver_preload(["requant.library", "requant.convert",
+                                        "requant.audio_io.riff"])
         self._pool = ProcessPoolExecutor(self.workers, mp_context=ctx, initializer=_worker_init)
         pings = [self._pool.submit(_ping) for _ in range(self.workers)]
         wait(pings, timeout=self.start_timeout_s)
