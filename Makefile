@@ -26,7 +26,7 @@ $(BROWSER_STAMP): $(STAMP)
 	touch $(BROWSER_STAMP)
 
 demo: $(STAMP)
-	$(BIN)/requant demo --out demo_output
+	$(BIN)/requant demo --out demo_output --overwrite
 
 # The whole suite, after the linter (CI runs this).
 test: $(STAMP) $(BROWSER_STAMP) lint

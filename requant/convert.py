@@ -39,6 +39,7 @@ from requant.audio_io.formats import (
     read_dtype_for,
     subtype_for,
 )
+from requant.audio_io.probe import declared_frames
 from requant.audio_io.reader import BlockReader, first_nonfinite, on_grid, open_input, read_blocks
 from requant.audio_io.writers import BlockWriter, SyncWriter, open_output, wrap_write_error
 from requant.dsp.quantizer import Requantizer, new_seed
@@ -116,6 +117,7 @@ class _Source:
     subtype: str
     format: str
     dtype: str
+    declared_frames: int
 
 
 def _targets(src, dst, recipe, outputs):
@@ -142,9 +144,13 @@ def _targets(src, dst, recipe, outputs):
     return _Targets(src, dst, fmt, subtype, error, err_fmt, reports)
 
 
-def _open_source(f):
+def _open_source(f, path):
+    """The input's facts; ``declared_frames`` is what a WAV/AIFF header says, which is more
+    than libsndfile's count when the file was cut short."""
+    declared = declared_frames(path)
     return _Source(rate=f.samplerate, channels=f.channels, frames=f.frames, subtype=f.subtype,
-                   format=f.format, dtype=read_dtype_for(f.subtype))
+                   format=f.format, dtype=read_dtype_for(f.subtype),
+                   declared_frames=max(f.frames, declared or 0))
 
 
 def _requantizer(f, source, recipe, targets, block_frames):
@@ -345,7 +351,7 @@ def convert_file(src, dst, recipe: Recipe | None = None, *, outputs: Outputs | N
     if analyze is None:
         analyze = bool(targets.reports)
     with open_input(targets.src) as f:
-        source = _open_source(f)
+        source = _open_source(f, targets.src)
         rq, coeffs, passthrough = _requantizer(f, source, recipe, targets, block_frames)
         out_fmt, e_fmt = _containers(source, targets, rq)
         tags, finalize = (_metadata_carrier(targets.src, targets.dst, recipe, targets.fmt)

@@ -20,7 +20,7 @@ from pathlib import Path
 import numpy as np
 
 from requant.convert import Outputs, convert_file
-from requant.errors import InputError
+from requant.errors import InputError, OutputError
 from requant.recipe import Recipe
 
 __all__ = ["synthesize_demo_audio", "run_demo", "DEMO_FILES", "default_demo_dir"]
@@ -197,8 +197,28 @@ def _method(recipe):
     return "+".join(parts)
 
 
-def run_demo(out, *, source=None, seed=2026):
+def _demo_outputs(out):
+    """Every file the demo writes into ``out``, per job: (output, error, JSON, HTML)."""
+    for name, out_name, recipe in _JOBS:
+        stem = os.path.splitext(out_name)[0]
+        yield (name, out_name, recipe, out / out_name, out / f"{stem}_error.wav",
+               out / f"{stem}_report.json", out / f"{stem}_report.html")
+
+
+def run_demo(out, *, source=None, seed=2026, overwrite=False):
     """Convert the demo audio, write outputs, errors and reports into ``out``.
+
+    Parameters
+    ----------
+    out : path
+        Folder for the results (created if missing).
+    source : path, optional
+        Folder of demo audio (default: the bundled one).
+    seed : int, default 2026
+        The first job's seed; each job adds its index.
+    overwrite : bool, default False
+        Replace files of those names already in ``out``; without it, such a
+        file stops the demo before anything is written.
 
     Returns
     -------
@@ -213,13 +233,24 @@ def run_demo(out, *, source=None, seed=2026):
             "'python demo_audio/make_demo_audio.py' or pass --source"
         )
     out = Path(out)
-    out.mkdir(parents=True, exist_ok=True)
+    if out.exists() and not out.is_dir():
+        raise OutputError(f"{str(out)!r} is a file; give a folder for the demo results")
+    jobs = list(_demo_outputs(out))
+    if not overwrite:
+        taken = [str(p) for job in jobs for p in job[3:] if os.path.lexists(p)]
+        if taken:
+            more = f" and {len(taken) - 1} more" if len(taken) > 1 else ""
+            raise OutputError(f"{taken[0]!r}{more} already exist; choose another --out or pass "
+                              "--overwrite to replace them")
+    try:
+        out.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise OutputError(f"cannot create {str(out)!r} ({exc.strerror or exc}); choose a "
+                          "writable folder") from None
     rows = []
-    for i, (name, out_name, recipe) in enumerate(_JOBS):
-        stem = os.path.splitext(out_name)[0]
+    for i, (name, out_name, recipe, _, err, rep_json, rep_html) in enumerate(jobs):
         # the figures as JSON, and the same as a page with pictures
-        outputs = Outputs(error=out / f"{stem}_error.wav", overwrite=True,
-                          report=(out / f"{stem}_report.json", out / f"{stem}_report.html"))
+        outputs = Outputs(error=err, overwrite=overwrite, report=(rep_json, rep_html))
         rep = convert_file(src / name, out / out_name, recipe.with_seed(seed + i),
                            outputs=outputs)
         rows.append((out_name, recipe.bits, _method(recipe), rep))

@@ -91,3 +91,134 @@ def test_ctrl_c_waits_for_a_chunk_handover():
             done.append("after the signal")
     assert done == ["after the signal"]
     assert signal.getsignal(signal.SIGINT) is signal.default_int_handler
+
+
+@pytest.mark.parametrize("fmt", ["WAV", "AIFF"])
+def test_a_cut_short_file_is_converted_with_a_warning(tmp_path, fmt):
+    from requant.convert import Outputs, convert_file
+    from requant.recipe import Recipe
+
+    x = np.random.default_rng(2).uniform(-0.5, 0.5, (9600, 2))
+    whole = tmp_path / f"w.{fmt.lower()}"
+    sf.write(whole, x, 48000, subtype="PCM_24", format=fmt)
+    cut = tmp_path / f"cut.{fmt.lower()}"
+    data = whole.read_bytes()
+    cut.write_bytes(data[: len(data) * 2 // 3])
+    rep = convert_file(cut, tmp_path / "o.wav", Recipe(seed=1),
+                       outputs=Outputs(report=tmp_path / "r.json"))
+    assert rep.input.truncated and rep.input.declared_frames == 9600
+    assert rep.input.frames == sf.info(tmp_path / "o.wav").frames < 9600
+    assert any("cut short" in w for w in rep.warnings)
+    saved = json.loads((tmp_path / "r.json").read_text())
+    assert saved["input"]["declared_frames"] == 9600
+    code, _, err = run_cli("convert", cut, tmp_path / "o2.wav")
+    assert code == 0 and "cut short" in err
+    whole_rep = convert_file(whole, tmp_path / "o3.wav", Recipe(seed=1))
+    assert not whole_rep.input.truncated and not whole_rep.warnings
+
+
+def test_batch_records_a_cut_short_source(tmp_path):
+    from requant.library import read_manifest, resolve_settings, run_batch
+
+    src = tmp_path / "lib"
+    src.mkdir()
+    sf.write(src / "whole.wav", np.zeros((4800, 1)) + 0.1, 48000, subtype="PCM_24")
+    data = (src / "whole.wav").read_bytes()
+    (src / "cut.wav").write_bytes(data[: len(data) // 2])
+    run_batch(src, tmp_path / "out", resolve_settings({"seed": 1}), jobs=1)
+    events = {e["source"]: e for e in read_manifest(tmp_path / "out" / "requant-manifest.jsonl")[0]}
+    assert "truncated" in events["cut.wav"]["warning_kinds"]
+    assert "truncated" not in events["whole.wav"]["warning_kinds"]
+
+
+def test_demo_refuses_to_replace_files_it_did_not_write(tmp_path):
+    from requant.demo import run_demo
+    from requant.errors import OutputError
+
+    out = tmp_path / "results"
+    out.mkdir()
+    mine = out / "coin_8bit_tpdf.wav"
+    mine.write_bytes(b"the user's own file")
+    with pytest.raises(OutputError, match="already exist.*--overwrite"):
+        run_demo(out)
+    assert mine.read_bytes() == b"the user's own file"
+    assert sorted(p.name for p in out.iterdir()) == ["coin_8bit_tpdf.wav"]  # nothing written
+    code, _, err = run_cli("demo", "--out", out)
+    assert code == 2 and "--overwrite" in err and "Traceback" not in err
+    (tmp_path / "afile").write_text("x")
+    with pytest.raises(OutputError, match="is a file"):
+        run_demo(tmp_path / "afile")
+
+
+def _library(folder, names):
+    folder.mkdir(parents=True, exist_ok=True)
+    rng = np.random.default_rng(7)
+    for name in names:
+        sf.write(folder / name, rng.uniform(-0.5, 0.5, (4800, 2)), 48000, subtype="PCM_24")
+
+
+def _converted(dst):
+    from requant.library import read_manifest
+
+    return {e["source"]: e for e in read_manifest(dst / "requant-manifest.jsonl")[0]
+            if e["status"] == "converted"}
+
+
+def test_resume_reconverts_exactly_the_changed_sources(tmp_path):
+    from requant.library import read_manifest, resolve_settings, run_batch
+
+    src, dst = tmp_path / "lib", tmp_path / "out"
+    names = ["same.wav", "touched.wav", "replaced.wav", "cut.wav", "rewritten.wav"]
+    _library(src, names)
+    settings = resolve_settings({"seed": 4})
+    first = run_batch(src, dst, settings, jobs=1)
+    assert first["counts"]["converted"] == 5
+    ident = _converted(dst)["replaced.wav"]["source_identity"]
+    assert ident["size"] == (src / "replaced.wav").stat().st_size and len(ident["sha256"]) == 64
+
+    os.utime(src / "touched.wav", ns=(1, 1))  # a copy that keeps the content, not the time
+    # a re-delivered master: other audio, the same name and the same size
+    sf.write(src / "replaced.wav", np.random.default_rng(99).uniform(-0.5, 0.5, (4800, 2)),
+             48000, subtype="PCM_24")
+    data = (src / "cut.wav").read_bytes()
+    (src / "cut.wav").write_bytes(data[: len(data) // 2])
+    # same size and time, other bytes: only a full re-hash can tell
+    blob = bytearray((src / "rewritten.wav").read_bytes())
+    st = (src / "rewritten.wav").stat()
+    blob[-1] ^= 0x01
+    (src / "rewritten.wav").write_bytes(bytes(blob))
+    os.utime(src / "rewritten.wav", ns=(st.st_atime_ns, st.st_mtime_ns))
+
+    before = len(read_manifest(dst / "requant-manifest.jsonl")[0])
+    second = run_batch(src, dst, settings, jobs=1)
+    events = read_manifest(dst / "requant-manifest.jsonl")[0][before:]
+    by_source = {e["source"]: e for e in events}
+    assert {s for s, e in by_source.items() if e["status"] == "converted"} == {
+        "replaced.wav", "cut.wav"}
+    assert by_source["replaced.wav"]["reason"] == "source changed since it was converted"
+    assert by_source["touched.wav"]["reason"] == "up to date"
+    assert by_source["touched.wav"]["source_identity"]["mtime_ns"] == 1
+    assert by_source["rewritten.wav"]["reason"] == "up to date"  # size and time kept
+    assert second["counts"]["converted"] == 2
+
+    # the paranoid rerun hashes every source
+    before = len(read_manifest(dst / "requant-manifest.jsonl")[0])
+    run_batch(src, dst, settings, jobs=1, verify_sources=True)
+    events = read_manifest(dst / "requant-manifest.jsonl")[0][before:]
+    assert [e["source"] for e in events if e["status"] == "converted"] == ["rewritten.wav"]
+
+    # and after that, nothing is left to do
+    third = run_batch(src, dst, settings, jobs=1)
+    assert third["counts"]["converted"] == 0 and third["counts"]["up_to_date"] == 5
+
+
+def test_dry_run_names_a_changed_source(tmp_path):
+    src, dst = tmp_path / "lib", tmp_path / "out"
+    _library(src, ["a.wav", "b.wav"])
+    code, _, err = run_cli("batch", src, dst, "--seed", 1, "--jobs", 1, "-q")
+    assert code == 0, err
+    sf.write(src / "b.wav", np.zeros((4800, 2)) + 0.25, 48000, subtype="PCM_24")
+    code, out, err = run_cli("batch", src, dst, "--seed", 1, "--dry-run")
+    assert code == 0, err
+    lines = {ln.split()[2]: ln for ln in out.splitlines() if ln.startswith("would")}
+    assert "up to date" in lines["a.wav"] and "source changed" in lines["b.wav"]

@@ -27,7 +27,8 @@ TOP = ["requant_version", "created", "settings", "input", "output", "error_signa
        "measured", "predicted", "channels", "warnings", "notes"]
 RECIPE = ["bits", "quantizer", "dither", "shaping", "shaping_order", "shaping_limit_db",
           "shaping_coeffs", "shaping_source", "shaping_rate", "seed", "force_dither"]
-INPUT = ["path", "format", "sample_rate", "channels", "frames", "duration_s", "subtype"]
+INPUT = ["path", "format", "sample_rate", "channels", "frames", "duration_s", "subtype",
+         "declared_frames"]
 OUTPUT = ["path", "format", "subtype", "bits", "container_bits", "passthrough"]
 FIGURES = ["snr_db", "error_power_lsb2", "error_mean_lsb", "error_rms_dbfs", "signal_rms_dbfs",
            "error_peak_dbfs", "clipped_samples"]

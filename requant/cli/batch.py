@@ -261,6 +261,10 @@ def batch(
         "--overwrite", help="Replace outputs in DST that requant batch did not write.")] = False,
     dry_run: Annotated[bool, typer.Option(
         "--dry-run", help="Say what would be done; write nothing.")] = False,
+    verify_sources: Annotated[bool, typer.Option(
+        "--verify-sources", help="Hash every source converted before, not only those whose "
+                                 "size or time changed, before skipping it as up to date.")
+    ] = False,
     block_frames: MaybeBlockFrames = None,
     quiet: Quiet = False,
 ):
@@ -292,7 +296,8 @@ def batch(
             executor.start()  # unreachable scheduler: one line, before anything is written
         result = run_batch(src, dst, settings, jobs=jobs, overwrite=overwrite,
                            dry_run=dry_run, reporter=reporter, executor=executor,
-                           profile_path=str(profile) if profile else None)
+                           profile_path=str(profile) if profile else None,
+                           verify_sources=verify_sources)
     finally:
         reporter.close()
         if executor is not None:

@@ -8,7 +8,7 @@ from typing import Annotated
 
 import typer
 
-from requant.cli.common import CAUTION
+from requant.cli.common import CAUTION, Overwrite
 
 __all__ = ["demo"]
 
@@ -19,9 +19,10 @@ def demo(
     source: Annotated[Path | None, typer.Option(
         "--source", help="Folder of demo audio (default: the bundled one).")] = None,
     seed: Annotated[int, typer.Option(help="Dither seed for the demo.")] = 2026,
+    overwrite: Overwrite = False,
 ):
     """Run the main job on the bundled demo audio and print measured against predicted."""
     from requant.demo import run_demo
 
-    print(run_demo(out, source=source, seed=seed))
+    print(run_demo(out, source=source, seed=seed, overwrite=overwrite))
     print(CAUTION, file=sys.stderr)

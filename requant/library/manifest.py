@@ -160,13 +160,24 @@ class ManifestWriter:
 
 
 def latest_by_source(events):
-    latest, converted, outputs = {}, {}, set()
+    """Per source: the latest event, the latest ``converted`` event, and the latest
+    recorded source identity; and every output name the manifest mentions.
+
+    Returns
+    -------
+    latest, converted, identities : dict of str to dict
+    outputs : set of str
+    """
+    latest, converted, identities, outputs = {}, {}, {}, set()
     for ev in events:
         latest[ev["source"]] = ev
         if ev.get("status") == "converted":
             converted[ev["source"]] = ev
+        ident = ev.get("source_identity")
+        if ev.get("status") in ("converted", "skipped") and isinstance(ident, dict):
+            identities[ev["source"]] = ident
         if isinstance(ev.get("output"), str):
             outputs.add(ev["output"])
-    return latest, converted, outputs
+    return latest, converted, identities, outputs
 
 

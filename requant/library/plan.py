@@ -13,11 +13,12 @@ import json
 import os
 import time
 
+from requant.audio_io.reader import open_input
 from requant.dsp.quantizer import new_seed
 from requant.errors import OutputError, RequantError, UsageError
 from requant.library.manifest import MANIFEST_NAME, latest_by_source, read_manifest, sha256_file
 from requant.library.settings import derive_seed, settings_id
-from requant.library.task import task_settings
+from requant.library.task import source_check, task_settings
 from requant.library.tree import output_name, walk_tree
 from requant.recipe import SEED_MAX
 
@@ -60,11 +61,40 @@ def remove_stale_temps(dst):
     return removed
 
 
-def plan_tasks(src, dst, settings, *, prune, run_seed, sid, overwrite, events):
-    """Decide, per file, what to do. Returns (tasks, parent_events, info)."""
+def _resume_decision(prev, ident, entry, *, sid, rel_out, verify):
+    """Why a file is converted again, or what a worker must check before skipping it.
+
+    Returns ``(reason, expect_output_sha256, expect_source)``: with an
+    expected output hash the worker skips the file when the output still has
+    it and, with an expected source identity, when the source still has the
+    recorded content (it hashes the source only if its size or time changed,
+    or when ``verify`` asks for every source).
+    """
+    if prev is None:
+        return "new", None, None
+    if prev.get("settings_id") != sid:
+        return "settings changed", None, None
+    if prev.get("output") != rel_out:
+        return "output name changed", None, None
+    if not isinstance(ident, dict) or not isinstance(ident.get("sha256"), str):
+        return "the source's identity was not recorded", None, None
+    stat_same = (ident.get("size") == entry["size"]
+                 and ident.get("mtime_ns") == entry.get("mtime_ns"))
+    expect_source = dict(ident, check=(not stat_same) or verify)
+    return "output missing", prev.get("output_sha256"), expect_source
+
+
+def plan_tasks(src, dst, settings, *, prune, run_seed, sid, overwrite, events, verify=False):
+    """Decide, per file, what to do. Returns (tasks, parent_events, info).
+
+    A file converted before is skipped only when the settings id, the output
+    name, the output's hash and the source's identity (size, modification
+    time, and, when those changed or ``verify`` is set, the SHA-256 of its
+    bytes) all still match.
+    """
     entries, excluded = walk_tree(src, include=settings.include, exclude=settings.exclude,
                                   prune=prune)
-    _, converted, seen_outputs = latest_by_source(events)
+    _, converted, identities, seen_outputs = latest_by_source(events)
     claims = set(read_state(dst).get("claimed_outputs") or ())
     ours = seen_outputs | claims
     shared = task_settings(settings)
@@ -96,14 +126,8 @@ def plan_tasks(src, dst, settings, *, prune, run_seed, sid, overwrite, events):
                          "rename one of them, or choose --format same"})
             continue
         prev = converted.get(e["source"])
-        expect, reason = None, "new"
-        if prev is not None:
-            if prev.get("settings_id") != sid:
-                reason = "settings changed"
-            elif prev.get("output") != rel_out:
-                reason = "output name changed"
-            else:
-                expect, reason = prev.get("output_sha256"), "output missing"
+        reason, expect, expect_source = _resume_decision(
+            prev, identities.get(e["source"]), e, sid=sid, rel_out=rel_out, verify=verify)
         exists = os.path.lexists(out_path)
         mine = overwrite or rel_out in ours
         if exists and not mine:
@@ -118,6 +142,7 @@ def plan_tasks(src, dst, settings, *, prune, run_seed, sid, overwrite, events):
         tasks.append({"source": e["source"], "output": rel_out, "source_path": src_path,
                       "output_path": out_path, "seed": seed, "settings": shared,
                       "overwrite": True, "expect_sha256": expect,
+                      "expect_source": expect_source,
                       "reason": reason, "note": e["note"], "size": e["size"],
                       "previous": prev if expect else None})
     info = {"entries": len(entries), "excluded": excluded, "claims": claims}
@@ -155,15 +180,15 @@ def take_lock(dst):
             time.sleep(0.05)
 
 
-def plan_dry_run(src, dst, settings, *, prune, overwrite, reporter):
+def plan_dry_run(src, dst, settings, *, prune, overwrite, reporter, verify=False):
     events = read_manifest(os.path.join(dst, MANIFEST_NAME))[0] if os.path.isdir(dst) else []
     run_seed, origin = choose_run_seed(settings, dst)
     if origin == "fresh":  # the real run draws its own
         run_seed = None
     sid = settings_id(settings, run_seed if run_seed is not None else 0)
-    tasks, parent_events, info = plan_tasks(src, dst, settings, prune=prune, run_seed=run_seed or 0,
-                                       sid=sid, overwrite=overwrite, events=events)
-    from requant.audio_io.reader import open_input
+    tasks, parent_events, info = plan_tasks(src, dst, settings, prune=prune,
+                                            run_seed=run_seed or 0, sid=sid,
+                                            overwrite=overwrite, events=events, verify=verify)
 
     items = []
     for ev in parent_events:
@@ -172,7 +197,10 @@ def plan_dry_run(src, dst, settings, *, prune, overwrite, reporter):
                       "reason": ev.get("error") or ev.get("reason")})
     for t in tasks:
         action, reason = "convert", t["reason"]
-        if t["expect_sha256"] and os.path.isfile(t["output_path"]):
+        source_changed = source_check(t) if t["expect_sha256"] else None
+        if source_changed:
+            reason = source_changed
+        elif t["expect_sha256"] and os.path.isfile(t["output_path"]):
             if sha256_file(t["output_path"]) == t["expect_sha256"]:
                 action, reason = "skip", "up to date"
             else:

@@ -36,7 +36,8 @@ __all__ = ["run_batch"]
 def run_batch(src: str | os.PathLike, dst: str | os.PathLike,
               settings: BatchSettings | None = None, *, jobs: int | None = None,
               overwrite: bool = False, dry_run: bool = False, reporter: Reporter | None = None,
-              executor: Executor | None = None, profile_path: str | None = None) -> dict:
+              executor: Executor | None = None, profile_path: str | None = None,
+              verify_sources: bool = False) -> dict:
     """Convert a folder tree of audio files into a mirrored tree.
 
     Parameters
@@ -60,6 +61,9 @@ def run_batch(src: str | os.PathLike, dst: str | os.PathLike,
         An executor with the protocol of :class:`SerialExecutor`.
     profile_path : str, optional
         Recorded in the summary.
+    verify_sources : bool, default False
+        Hash every source that was converted before, not only those whose
+        size or modification time changed, before deciding it is up to date.
 
     Returns
     -------
@@ -81,7 +85,8 @@ def run_batch(src: str | os.PathLike, dst: str | os.PathLike,
                         f"{type(settings).__name__}")
     src, dst, prune = check_folders(src, dst)
     if dry_run:
-        return plan_dry_run(src, dst, settings, prune=prune, overwrite=overwrite, reporter=reporter)
+        return plan_dry_run(src, dst, settings, prune=prune, overwrite=overwrite,
+                            reporter=reporter, verify=verify_sources)
     t_start = time.perf_counter()
     started = now_iso()
     try:
@@ -92,7 +97,7 @@ def run_batch(src: str | os.PathLike, dst: str | os.PathLike,
     lock_fd = take_lock(dst)
     try:
         run = _Run(src, dst, settings, prune=prune, reporter=reporter, started=started)
-        run.plan(overwrite=overwrite)
+        run.plan(overwrite=overwrite, verify=verify_sources)
         run.start(executor, jobs)
         try:
             try:
@@ -126,7 +131,7 @@ class _Run:
 
     # ------------------------------------------------------------------ plan
 
-    def plan(self, *, overwrite):
+    def plan(self, *, overwrite, verify=False):
         """Decide what each file needs, claim the outputs this run may write."""
         stale = remove_stale_temps(self.dst)
         self.manifest_path = os.path.join(self.dst, MANIFEST_NAME)
@@ -135,7 +140,7 @@ class _Run:
         self.sid = settings_id(self.settings, self.run_seed)
         self.tasks, self.parent_events, self.info = plan_tasks(
             self.src, self.dst, self.settings, prune=self.prune, run_seed=self.run_seed,
-            sid=self.sid, overwrite=overwrite, events=events)
+            sid=self.sid, overwrite=overwrite, events=events, verify=verify)
         del events
         self._claim(self.info["claims"] | {t["output"] for t in self.tasks})
         # biggest first: long files start early and do not trail at the end

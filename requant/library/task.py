@@ -9,6 +9,7 @@ import datetime as _dt
 import os
 import socket
 import sys
+import threading
 import time
 
 from requant.audio_io.atomic import pending_path
@@ -19,7 +20,8 @@ from requant.library.executors.base import WORKER, Terminated
 from requant.library.manifest import sha256_file
 from requant.recipe import Recipe
 
-__all__ = ["convert_task", "task_settings", "task_payloads", "now_iso", "worker_label"]
+__all__ = ["convert_task", "source_check", "task_settings", "task_payloads", "now_iso",
+           "worker_label"]
 
 
 HOST = socket.gethostname()
@@ -72,6 +74,8 @@ def _classify(report, meta):
         kinds.append("metadata-dropped")
     if meta is not None and meta.error:
         kinds.append("metadata-error")
+    if report.input.truncated:
+        kinds.append("truncated")
     return kinds
 
 
@@ -100,6 +104,65 @@ def _figures(report):
     }
 
 
+#: Sources at least this big are hashed on a thread of their own while they convert
+#: (hashlib releases the GIL); smaller ones after, from the page cache.
+_HASH_ON_THREAD_BYTES = 4 << 20
+
+
+def _stat_identity(path):
+    st = os.stat(path)
+    return {"size": st.st_size, "mtime_ns": st.st_mtime_ns}
+
+
+def source_check(task):
+    """Whether a previously converted source changed: a reason, or None when it did not.
+
+    Compares the source's size and modification time with the recorded ones;
+    when those differ (a copy may keep the content and change the time), or
+    when the plan asks to verify every source, compares the SHA-256 of its
+    bytes. Sets ``task["source_identity"]`` to what was found.
+    """
+    expected = task.get("expect_source")
+    if not expected:
+        return None
+    try:
+        now = _stat_identity(task["source_path"])
+    except OSError:
+        return None  # the conversion says what is wrong with it
+    same_stat = (now["size"], now["mtime_ns"]) == (expected.get("size"),
+                                                    expected.get("mtime_ns"))
+    if same_stat and not expected.get("check"):
+        task["source_identity"] = dict(now, sha256=expected.get("sha256"))
+        return None
+    digest = sha256_file(task["source_path"])
+    task["source_identity"] = dict(now, sha256=digest)
+    if digest == expected.get("sha256"):
+        return None  # touched or copied, same bytes
+    return "source changed since it was converted"
+
+
+def _converted_with_identity(src, convert):
+    """Run ``convert()`` and measure the source's identity around it: size and time before
+    and after (a source that changes meanwhile fails the file), SHA-256 of its bytes."""
+    before = _stat_identity(src)
+    hasher = None
+    if before["size"] >= _HASH_ON_THREAD_BYTES:
+        box = {}
+        hasher = threading.Thread(target=lambda: box.setdefault("d", sha256_file(src)),
+                                  name="requant-source-hash", daemon=True)
+        hasher.start()
+    report = convert()
+    if hasher is not None:
+        hasher.join()
+        digest = box.get("d")
+    else:
+        digest = sha256_file(src)
+    if _stat_identity(src) != before or digest is None:
+        raise InputError(f"{src!r} changed while it was being converted; the output was not "
+                         "kept; run the batch again")
+    return report, dict(before, sha256=digest)
+
+
 def _convert_one(task):
     src, out = task["source_path"], task["output_path"]
     for path in (src, out):
@@ -110,10 +173,14 @@ def _convert_one(task):
                              "so the audio library cannot open it; rename the file") from None
     expect = task.get("expect_sha256")
     reason = task.get("reason")
+    changed = source_check(task) if expect else None
+    if changed:
+        expect, reason = None, changed
     if expect and os.path.isfile(out) and not os.path.islink(out):
         digest = sha256_file(out)
         if digest == expect:
-            return {"status": "skipped", "reason": "up to date", "output_sha256": digest}
+            return {"status": "skipped", "reason": "up to date", "output_sha256": digest,
+                    "source_identity": task.get("source_identity")}
         reason = "output changed since it was written"
     folder = os.path.dirname(out)
     try:
@@ -128,9 +195,9 @@ def _convert_one(task):
     s = task["settings"]
     recipe = Recipe.from_dict(s["recipe"]).with_seed(task["seed"])
     out_fmt = format_for_path(out)
-    report = convert_file(src, out, recipe,
-                          outputs=Outputs(overwrite=task["overwrite"], metadata=True),
-                          block_frames=s["block_frames"], analyze=s["analyze"])
+    report, identity = _converted_with_identity(src, lambda: convert_file(
+        src, out, recipe, outputs=Outputs(overwrite=task["overwrite"], metadata=True),
+        block_frames=s["block_frames"], analyze=s["analyze"]))
     meta = report.output.metadata
     warnings = list(report.warnings)
     kinds = _classify(report, meta)
@@ -149,6 +216,7 @@ def _convert_one(task):
         "status": "converted",
         "reason": reason,
         "output_sha256": sha256_file(pending_path(out)),  # a CommitGroup may hold it
+        "source_identity": identity,
         "snr_db": report.measured.snr_db,
         "duration_s": report.input.duration_s,
         "warnings": warnings,
@@ -220,7 +288,7 @@ def convert_task(task):
 
 
 TASK_KEYS = ("source", "output", "source_path", "output_path", "seed", "settings", "overwrite",
-              "expect_sha256", "reason", "note", "size")
+              "expect_sha256", "expect_source", "reason", "note", "size")
 
 
 def task_payloads(tasks):

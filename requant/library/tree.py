@@ -87,8 +87,8 @@ def walk_tree(src, *, include=(), exclude=(), prune=()):
     -------
     entries : list of dict
         ``source`` (relative, POSIX), ``kind`` (``audio``, ``other``,
-        ``unreadable-folder``), ``size`` (bytes), and ``reason`` for the
-        others.
+        ``unreadable-folder``), ``size`` (bytes), ``reason`` for the others,
+        and for audio files ``mtime_ns`` (the modification time, ns).
     excluded : int
         Files left out by the patterns.
     """
@@ -130,9 +130,9 @@ def walk_tree(src, *, include=(), exclude=(), prune=()):
             full = os.path.join(root, name)
             try:
                 st = os.stat(full)
-                size, regular = st.st_size, stat.S_ISREG(st.st_mode)
+                size, mtime, regular = st.st_size, st.st_mtime_ns, stat.S_ISREG(st.st_mode)
             except OSError:
-                size, regular = 0, True  # the conversion names what is wrong with it
+                size, mtime, regular = 0, None, True  # the conversion names what is wrong
             ext = posixpath.splitext(name)[1].lower()
             if name.startswith("."):
                 entries.append({"source": rel, "kind": "other", "size": size,
@@ -142,7 +142,8 @@ def walk_tree(src, *, include=(), exclude=(), prune=()):
                                 "reason": f"{non_regular_kind(full) or 'not a file'}, not a "
                                           "regular file"})
             elif ext in AUDIO_EXTENSIONS:
-                entries.append({"source": rel, "kind": "audio", "size": size, "reason": None})
+                entries.append({"source": rel, "kind": "audio", "size": size, "reason": None,
+                                "mtime_ns": mtime})
             else:
                 entries.append({"source": rel, "kind": "other", "size": size,
                                 "reason": f"not an audio file ({ext or 'no extension'})"})

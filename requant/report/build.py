@@ -237,9 +237,10 @@ def build_report(rq, conv, *, analysis=None, metadata=None):
     total, pred_total, channels = _figures(rq, conv.frames, conv.passthrough)
     warnings, notes = _sentences(total, bits=rq.bits, dither=conv.recipe.dither,
                                  passthrough=conv.passthrough)
-    if conv.frames != conv.source.frames:
+    if conv.frames != conv.source.declared_frames:
         warnings.append(f"{conv.targets.src!r} holds {conv.frames} frames although its header "
-                        f"declares {conv.source.frames}; the frames that are there were "
+                        f"declares {conv.source.declared_frames} (the file was cut short); the "
+                        "frames that are there were "
                         "converted.")
     section = None
     if analysis is not None:
@@ -274,7 +275,7 @@ def _files(rq, conv, metadata):
         "input": InputFacts(path=targets.src, format=source.format, sample_rate=source.rate,
                             channels=source.channels, frames=frames,
                             duration_s=frames / source.rate if source.rate else 0.0,
-                            subtype=source.subtype),
+                            subtype=source.subtype, declared_frames=source.declared_frames),
         "output": OutputFacts(path=targets.dst, format=conv.out_format, subtype=targets.subtype,
                               bits=rq.bits, container_bits=container_bits_of(targets.subtype),
                               passthrough=bool(conv.passthrough), metadata=record),

@@ -131,6 +131,9 @@ class InputFacts:
     duration_s : float, s
     subtype : str
         Sample encoding (``'PCM_24'``, ``'FLOAT'``, ...).
+    declared_frames : int, frames
+        What the file's header declares (WAV/AIFF); more than ``frames`` when
+        the file was cut short. Equal to ``frames`` for other containers.
     """
 
     path: str
@@ -140,11 +143,17 @@ class InputFacts:
     frames: int
     duration_s: float
     subtype: str
+    declared_frames: int
+
+    @property
+    def truncated(self) -> bool:
+        """The file holds fewer frames than its header declares."""
+        return self.declared_frames > self.frames
 
     def to_dict(self) -> dict[str, Any]:
         """The JSON form."""
         return _pick(self, ("path", "format", "sample_rate", "channels", "frames", "duration_s",
-                            "subtype"))
+                            "subtype", "declared_frames"))
 
 
 @dataclass(frozen=True)
