@@ -42,6 +42,7 @@ from requant.audio_io.formats import (
 from requant.audio_io.probe import declared_frames
 from requant.audio_io.reader import BlockReader, first_nonfinite, on_grid, open_input, read_blocks
 from requant.audio_io.writers import BlockWriter, SyncWriter, open_output, wrap_write_error
+from requant.dsp.kernel import ACC_FIELDS
 from requant.dsp.quantizer import Requantizer, new_seed
 from requant.dsp.shaping import coefficients_for
 from requant.errors import InputError, UsageError
@@ -258,6 +259,8 @@ def _stream(f, rq, files, *, source, targets, analysis, block_frames, progress):
             rq.process(x, codes=bufs[0], error=want_err, err_out=bufs[1] if want_err else None)
             if analysis is not None:
                 bufs[2][:n] = x
+            if rq.acc[:, _MAX_ABS_E].max() > _ABSURD_FULL_SCALE * rq.scale:
+                _refuse_absurd(x, start, source, targets)
             if rq.acc[:, 6].any():
                 frame, ch, kind = first_nonfinite(x, start)
                 at = frame / source.rate
@@ -274,6 +277,27 @@ def _stream(f, rq, files, *, source, targets, analysis, block_frames, progress):
     finally:
         _close_quietly(writer, files, targets)
     return done
+
+
+#: Column of the largest error magnitude among the kernel's running sums.
+_MAX_ABS_E = ACC_FIELDS.index("max_abs_e")
+#: A float sample more than this many times full scale (+80 dBFS) is not audio a delivery
+#: can be made from: the file is damaged or mislabelled. Below it, samples beyond full scale
+#: are clipped and counted, and every figure stays finite (the error file too).
+_ABSURD_FULL_SCALE = 1e4
+
+
+def _refuse_absurd(x, start, source, targets):
+    """Fail with the place and size of the first sample far beyond full scale."""
+    flat = np.argmax(np.abs(np.where(np.isfinite(x), x, 0.0)))
+    frame, ch = divmod(int(flat), source.channels)
+    value = float(x.reshape(-1)[flat])
+    level = 20 * np.log10(abs(value))
+    raise InputError(
+        f"{targets.src!r} has a sample of {value:.3g} ({level:+.0f} dBFS) at "
+        f"{(start + frame) / source.rate:.6f} s (frame {start + frame}, channel {ch + 1}); a float "
+        "file this far beyond full scale is damaged or not audio; repair or rescale it and run "
+        "again")
 
 
 def _close_quietly(writer, files, targets):

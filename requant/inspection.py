@@ -186,7 +186,16 @@ class _Accumulator:
 
     # -- per block -------------------------------------------------------
     def feed(self, x, ints=None):
-        """Add one block: ``x`` float64 (frames, channels); ``ints`` its int32 codes."""
+        """Add one block: ``x`` float64 (frames, channels); ``ints`` its int32 codes.
+
+        A damaged float file may hold samples whose squares overflow; those figures
+        become infinite here and null in JSON (:func:`~requant.audio_io.writers.json_safe`),
+        without a warning from numpy on the way.
+        """
+        with np.errstate(over="ignore", invalid="ignore"):
+            self._feed(x, ints)
+
+    def _feed(self, x, ints):
         n = x.shape[0]
         if n == 0:
             return

@@ -6,6 +6,9 @@ import os
 import numpy as np
 import pytest
 import soundfile as sf
+from hypothesis import given
+from hypothesis import settings as hyp_settings
+from hypothesis import strategies as st
 
 from requant.audio_io.probe import declared_frames, non_regular_kind
 
@@ -222,3 +225,107 @@ def test_dry_run_names_a_changed_source(tmp_path):
     assert code == 0, err
     lines = {ln.split()[2]: ln for ln in out.splitlines() if ln.startswith("would")}
     assert "up to date" in lines["a.wav"] and "source changed" in lines["b.wav"]
+
+
+# --------------------------------------------------------------------------- absurd magnitudes
+
+def _float_file(path, values, subtype="DOUBLE"):
+    x = np.random.default_rng(3).uniform(-0.5, 0.5, (4800, 2))
+    for (frame, ch), v in values.items():
+        x[frame, ch] = v
+    with np.errstate(over="ignore"):  # a float32 file may hold infinities on purpose
+        data = x if subtype == "DOUBLE" else x.astype(np.float32)
+    sf.write(path, data, 48000, subtype=subtype)
+    return path
+
+
+@pytest.mark.parametrize("value, subtype", [(1e30, "DOUBLE"), (-1e300, "DOUBLE"),
+                                            (3e38, "FLOAT"), (2e4, "FLOAT")])
+def test_absurd_magnitudes_fail_with_one_line(tmp_path, value, subtype):
+    src = _float_file(tmp_path / "in.wav", {(1000, 1): value}, subtype)
+    code, out, err = run_cli("convert", src, tmp_path / "o.wav", "--error", tmp_path / "e.wav",
+                             "--report", tmp_path / "r.json")
+    lines = [ln for ln in err.splitlines() if ln.strip()]
+    assert code == 2 and len(lines) == 1 and "beyond full scale" in lines[0], err
+    assert "frame 1000, channel 2" in lines[0]
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["in.wav"]  # nothing partial
+
+
+def test_large_overs_are_clipped_counted_and_finite(tmp_path):
+    # +40 dBFS is far over, but a number: clipped, counted, every figure finite
+    src = _float_file(tmp_path / "in.wav", {(1000, 0): 100.0, (2000, 1): -100.0})
+    rep = tmp_path / "r.json"
+    code, _, err = run_cli("convert", src, tmp_path / "o.wav", "--error", tmp_path / "e.wav",
+                           "--report", rep)
+    assert code == 0, err
+    doc = json.loads(rep.read_text())  # strict: our reader refuses NaN
+    assert doc["measured"]["clipped_samples"] == 2 and doc["measured"]["snr_db"] is not None
+    e = sf.read(tmp_path / "e.wav")[0]
+    assert np.all(np.isfinite(e))
+
+
+def test_one_poisoned_file_does_not_stop_a_library(tmp_path):
+    lib = tmp_path / "lib"
+    lib.mkdir()
+    _float_file(lib / "bad.wav", {(10, 0): 1e300})
+    _float_file(lib / "good.wav", {})
+    for _ in range(2):  # and the rerun does not crash on what the first run recorded
+        code, _, err = run_cli("batch", lib, tmp_path / "out", "--jobs", 1, "--analyze",
+                               "--seed", 1)
+        assert code == 1 and "Traceback" not in err
+    events = [json.loads(line) for line in
+              (tmp_path / "out" / "requant-manifest.jsonl").read_text().splitlines()]
+    latest = {e["source"]: e for e in events}
+    assert latest["good.wav"]["status"] in ("converted", "skipped")
+    assert latest["bad.wav"]["status"] == "failed"
+    assert "beyond full scale" in latest["bad.wav"]["error"]
+
+
+def test_json_safe_and_the_manifest_writer(tmp_path):
+    from requant.audio_io.writers import json_safe
+    from requant.library.manifest import ManifestWriter, read_manifest
+
+    doc, n = json_safe({"a": float("nan"), "b": [1.0, float("inf"), np.float32(2.5)],
+                        "c": {"d": -np.inf}, "e": "x", "f": True, "g": np.int64(3)})
+    assert n == 3 and doc == {"a": None, "b": [1.0, None, 2.5], "c": {"d": None}, "e": "x",
+                              "f": True, "g": 3}
+    w = ManifestWriter(str(tmp_path / "m.jsonl"))
+    w.append({"source": "x.wav", "status": "converted", "snr_db": float("inf"), "warnings": []})
+    w.close()
+    events, bad = read_manifest(str(tmp_path / "m.jsonl"))
+    assert bad == 0 and events[0]["snr_db"] is None
+    assert "non-finite-figure" in events[0]["warning_kinds"]
+
+
+def test_inspect_of_a_damaged_file_writes_strict_json(tmp_path):
+    src = _float_file(tmp_path / "in.wav", {(10, 0): 1e300})
+    code, _, err = run_cli("inspect", src, "--json", tmp_path / "i.json")
+    assert code == 0 and "Traceback" not in err and "RuntimeWarning" not in err
+    doc = json.loads((tmp_path / "i.json").read_text())
+    assert any("no finite value" in s for s in doc["recommendations"])
+
+
+@pytest.mark.slow
+@given(values=st.lists(st.tuples(st.integers(0, 4799), st.integers(0, 1),
+                                 st.floats(allow_nan=True, allow_infinity=True)),
+                       min_size=1, max_size=4),
+       double=st.booleans())
+@hyp_settings(max_examples=40, deadline=None)
+def test_any_float_magnitudes(tmp_path_factory, values, double):
+    # whatever floats a file holds: the report is strict JSON, or one clear error; no temps
+    from requant.convert import Outputs, convert_file
+    from requant.errors import RequantError
+    from requant.recipe import Recipe
+
+    tmp = tmp_path_factory.mktemp("mag")
+    src = _float_file(tmp / "in.wav", {(f, c): v for f, c, v in values},
+                      "DOUBLE" if double else "FLOAT")
+    try:
+        convert_file(src, tmp / "o.wav", Recipe(seed=1),
+                     outputs=Outputs(error=tmp / "e.wav", report=tmp / "r.json"))
+    except RequantError as exc:
+        assert "\n" not in str(exc)
+        assert sorted(p.name for p in tmp.iterdir()) == ["in.wav"]
+        return
+    json.loads((tmp / "r.json").read_text())
+    assert np.all(np.isfinite(sf.read(tmp / "e.wav")[0]))

@@ -7,6 +7,7 @@ this one; :class:`SyncWriter` does the same work inline for files of one block.
 
 import errno
 import json
+import math
 import os
 import queue
 import threading
@@ -17,7 +18,8 @@ from requant.audio_io.atomic import AtomicOutputs
 from requant.audio_io.wavwrite import RAW_SUBTYPES, WavWriter
 from requant.errors import OutputError
 
-__all__ = ["open_output", "wrap_write_error", "write_json_atomic", "BlockWriter", "SyncWriter"]
+__all__ = ["open_output", "wrap_write_error", "write_json_atomic", "json_safe", "BlockWriter",
+           "SyncWriter"]
 
 _END = object()
 
@@ -71,23 +73,70 @@ def wrap_write_error(exc, path):
                        "check the destination")
 
 
-def open_output(path, rate, nch, subtype, fmt, *, plain):
+def open_output(path, rate, nch, subtype, fmt, *, plain, comment=None):
     """An audio output: our own WAV writer where it can (``plain``: no tags
-    to write), else libsndfile."""
+    to write), else libsndfile. ``comment`` (one line of text) is stored as the
+    file's comment where the container has one."""
     if plain and fmt == "WAV" and subtype in RAW_SUBTYPES:
         return WavWriter(path, samplerate=rate, channels=nch, subtype=subtype,
-                         background_sync=True)
+                         background_sync=True, comment=comment)
     import soundfile as sf
 
-    return sf.SoundFile(path, "w", samplerate=rate, channels=nch, subtype=subtype, format=fmt)
+    f = sf.SoundFile(path, "w", samplerate=rate, channels=nch, subtype=subtype, format=fmt)
+    if comment is not None:
+        try:
+            f.comment = comment
+        except (sf.LibsndfileError, RuntimeError, AttributeError, TypeError):
+            pass  # a container without text fields: the report still states it
+    return f
 
 
-def write_json_atomic(obj, path):
-    """Write ``obj`` as indented JSON through a temporary file and rename."""
+#: The sentence added to a document's warnings when some of its figures had no finite value.
+NON_FINITE_WARNING = ("{n} figure(s) had no finite value (the input is far beyond full scale or "
+                      "damaged) and are written as null")
+
+
+def json_safe(obj):
+    """``obj`` with every non-finite float replaced by None, and how many were replaced.
+
+    JSON has no NaN or infinity; strict readers (and ours, ``allow_nan=False``)
+    refuse them. Numbers of numpy types become plain Python numbers.
+    """
+    count = 0
+
+    def clean(v):
+        nonlocal count
+        if isinstance(v, bool) or v is None or isinstance(v, str):
+            return v
+        if isinstance(v, dict):
+            return {k: clean(x) for k, x in v.items()}
+        if isinstance(v, (list, tuple)):
+            return [clean(x) for x in v]
+        if isinstance(v, (float, np.floating)):
+            if math.isfinite(v):
+                return float(v)
+            count += 1
+            return None
+        if isinstance(v, np.integer):
+            return int(v)
+        return v
+
+    return clean(obj), count
+
+
+def write_json_atomic(obj, path, *, warnings_key=None):
+    """Write ``obj`` as indented JSON through a temporary file and rename.
+
+    Non-finite numbers become null; with ``warnings_key`` (the name of a list of
+    sentences in ``obj``) a sentence saying how many is added to that list.
+    """
+    doc, replaced = json_safe(obj)
+    if replaced and warnings_key is not None and isinstance(doc.get(warnings_key), list):
+        doc[warnings_key].append(NON_FINITE_WARNING.format(n=replaced))
     with AtomicOutputs() as outs:
         tmp = outs.path_for(path)
         with open(tmp, "w", encoding="utf-8") as fh:
-            json.dump(obj, fh, indent=2, allow_nan=False)
+            json.dump(doc, fh, indent=2, allow_nan=False)
             fh.write("\n")
 
 

@@ -30,7 +30,7 @@ def inspect_command(
     rep = inspect_file(file)
     print(format_inspection(rep))
     if json_path is not None:
-        write_json_atomic(rep, json_path)
+        write_json_atomic(rep, json_path, warnings_key="recommendations")
 
 
 def shaper_show(

@@ -11,6 +11,7 @@ import json
 import os
 import time
 
+from requant.audio_io.writers import NON_FINITE_WARNING, json_safe
 from requant.errors import OutputError
 
 __all__ = ["MANIFEST_NAME", "ManifestWriter", "read_manifest", "sha256_file", "latest_by_source"]
@@ -126,7 +127,14 @@ class ManifestWriter:
             raise self._error(exc) from None
 
     def append(self, event):
-        """Write one event as one JSON line."""
+        """Write one event as one JSON line (a non-finite figure becomes null, with a warning
+        of kind ``non-finite-figure``, so that one damaged file cannot stop a library)."""
+        event, replaced = json_safe(event)
+        if replaced:
+            event.setdefault("warnings", []).append(NON_FINITE_WARNING.format(n=replaced))
+            kinds = event.setdefault("warning_kinds", [])
+            if "non-finite-figure" not in kinds:
+                kinds.append("non-finite-figure")
         try:
             line = json.dumps(event, ensure_ascii=False, allow_nan=False).encode("utf-8")
         except UnicodeEncodeError:  # undecodable file names: keep the escapes

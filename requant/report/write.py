@@ -9,6 +9,8 @@ JSON is its :meth:`~requant.report.model.Report.to_dict`. Every file goes throug
 import json
 import os
 
+from requant.audio_io.writers import NON_FINITE_WARNING, json_safe
+
 __all__ = ["write_report"]
 
 
@@ -29,8 +31,11 @@ def write_report(report, analyzer, path, outs):
     ext = os.path.splitext(path)[1].lower()
     if ext == ".json":
         tmp = outs.path_for(path)
+        doc, replaced = json_safe(report.to_dict())
+        if replaced:
+            doc["warnings"].append(NON_FINITE_WARNING.format(n=replaced))
         with open(tmp, "w", encoding="utf-8") as fh:
-            json.dump(report.to_dict(), fh, indent=2, allow_nan=False)
+            json.dump(doc, fh, indent=2, allow_nan=False)
             fh.write("\n")
         return
     from requant.report import render as report_render
