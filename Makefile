@@ -43,6 +43,7 @@ lint: $(STAMP)
 bench: $(STAMP)
 	$(BIN)/python benchmarks/bench_convert.py
 	$(BIN)/python benchmarks/bench_batch.py
+	$(BIN)/python benchmarks/bench_audit.py
 
 clean:
 	rm -rf $(VENV) demo_output bench_output .pytest_cache

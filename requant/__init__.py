@@ -29,6 +29,8 @@ _EXPORTS = {
     "resolve_settings": "requant.library.settings",
     "run_batch": "requant.library.run",
     "make_listening_kit": "requant.listening.kit",
+    "audit_pair": "requant.audit.pair",
+    "audit_tree": "requant.audit.tree",
     "Excerpt": "requant.listening.excerpt",
     "RequantError": "requant.errors",
     "UsageError": "requant.errors",

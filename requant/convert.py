@@ -20,6 +20,7 @@ reports and commits.
 
 from __future__ import annotations
 
+import math
 import os
 import sys
 from collections.abc import Callable, Sequence
@@ -28,7 +29,7 @@ from typing import Any
 
 import numpy as np
 
-from requant.audio_io.atomic import AtomicOutputs, check_outputs
+from requant.audio_io.atomic import AtomicOutputs, check_outputs, remove_stale_temps_of
 from requant.audio_io.formats import (
     DEFAULT_BLOCK_FRAMES,
     MAX_BLOCK_FRAMES,
@@ -42,16 +43,17 @@ from requant.audio_io.formats import (
 from requant.audio_io.probe import declared_frames
 from requant.audio_io.reader import BlockReader, first_nonfinite, on_grid, open_input, read_blocks
 from requant.audio_io.writers import BlockWriter, SyncWriter, open_output, wrap_write_error
+from requant.dsp.cap import CAP_DBFS, MAX_GAIN_DB, hard_limit, raise_to_target_db
 from requant.dsp.kernel import ACC_FIELDS
 from requant.dsp.quantizer import Requantizer, new_seed
 from requant.dsp.shaping import coefficients_for
 from requant.errors import InputError, UsageError
 from requant.recipe import Recipe
 from requant.report.build import Conversion, build_report
-from requant.report.model import Report
+from requant.report.model import ErrorGain, Report
 
 __all__ = ["convert_file", "Outputs", "DEFAULT_BLOCK_FRAMES", "MAX_BLOCK_FRAMES",
-           "check_block_frames"]
+           "check_block_frames", "error_gain_db"]
 
 _ERROR_FORMATS = {".wav": "WAV", ".wave": "WAV", ".aif": "AIFF", ".aiff": "AIFF", ".aifc": "AIFF"}
 _REPORT_KINDS = (".json", ".html", ".htm", ".md")
@@ -77,6 +79,12 @@ class Outputs:
         Carry the source's metadata over: a WAV's chunks into a WAV output
         (``bext`` with a coding-history row appended), text tags into FLAC and
         AIFF; what cannot be carried is listed in the report.
+    error_gain : float (dB), 'auto' or None, default None
+        Write the error signal raised for listening: by this gain (-120 to
+        +120 dB), or ``'auto'`` (:func:`error_gain_db`: flat TPDF noise of the
+        word length at -40 dBFS RMS), then hard-limited at -6 dBFS sample peak
+        (:mod:`requant.dsp.cap`). The gain is stated in the report and in the
+        file's comment. None (default): the exact error at unity gain.
     """
 
     error: str | os.PathLike | None = None
@@ -84,6 +92,7 @@ class Outputs:
     overwrite: bool = False
     container: str | None = None
     metadata: bool = False
+    error_gain: float | str | None = None
 
     @property
     def reports(self) -> tuple[str, ...]:
@@ -106,6 +115,7 @@ class _Targets:
     error: str | None
     error_fmt: str | None
     reports: tuple[str, ...]
+    error_gain: tuple[float, str] | None = None
 
 
 @dataclass(frozen=True)
@@ -141,8 +151,82 @@ def _targets(src, dst, recipe, outputs):
             from requant.report.render import picture_paths
 
             pictures.extend(picture_paths(path).values())
+    gain = error_gain_db(outputs.error_gain, recipe.bits)
+    if gain is not None and error is None:
+        raise UsageError("an error gain was given without an error file; add --error PATH.wav "
+                         "or leave out --error-gain")
     check_outputs([src], [dst, error, *reports, *pictures], overwrite=outputs.overwrite)
-    return _Targets(src, dst, fmt, subtype, error, err_fmt, reports)
+    for path in (dst, error, *reports, *pictures):  # what a killed run of these left behind
+        if path is not None:
+            remove_stale_temps_of(path)
+    return _Targets(src, dst, fmt, subtype, error, err_fmt, reports, gain)
+
+
+def error_gain_db(value, bits):
+    """The error signal's gain: ``(gain dB, rule)``, or None for the exact error.
+
+    Parameters
+    ----------
+    value : float, str or None
+        A gain in dB (-120 to +120; a number or its text), ``'auto'``, or None.
+    bits : int
+        The target word length; ``'auto'`` raises flat TPDF noise (Δ²/4,
+        Lipshitz, Wannamaker & Vanderkooy 1992) of this word length to
+        -40 dBFS RMS (:func:`requant.dsp.cap.raise_to_target_db`), at most +120 dB.
+
+    Returns
+    -------
+    (float, str) or None
+        The rule is ``'auto'`` or ``'fixed'``.
+
+    Raises
+    ------
+    UsageError
+        For anything else.
+    """
+    if value is None:
+        return None
+    number = value
+    if isinstance(value, str):
+        text = value.strip().lower()
+        if text == "auto":
+            return raise_to_target_db(0.25, bits), "auto"
+        try:
+            number = float(text)
+        except ValueError:
+            number = None
+    if isinstance(number, bool) or not isinstance(number, (int, float)) or not (
+            math.isfinite(number) and abs(number) <= MAX_GAIN_DB):
+        raise UsageError(f"error gain {value!r} is not allowed: give 'auto' or a gain in dB from "
+                         f"{-MAX_GAIN_DB:g} to {MAX_GAIN_DB:g}")
+    return float(number), "fixed"
+
+
+class _RaisedError:
+    """The error file, written raised by a stated gain and hard-limited at the cap.
+
+    The exact error stays in the block buffers (the report's analysis reads
+    them after the write); each block is raised into a copy.
+    """
+
+    def __init__(self, file, gain_db):
+        self._file = file
+        self._gain = 10.0 ** (gain_db / 20.0)
+        self.limited = 0
+
+    def write(self, block):
+        y, n = hard_limit(np.multiply(block, self._gain, dtype=np.float64))
+        self.limited += n
+        self._file.write(y)
+
+    def close(self):
+        self._file.close()
+
+
+def _error_comment(gain):
+    """The raised error file's comment: what it is and how loud it was made."""
+    return (f"requant error signal (output minus input), raised by {gain[0]:+.1f} dB "
+            f"({gain[1]}), hard-limited at {CAP_DBFS:.0f} dBFS sample peak")
 
 
 def _open_source(f, path):
@@ -196,12 +280,16 @@ def _open_files(outs, source, targets, out_fmt, e_fmt, tags):
                            plain=not tags)
     except (sf.LibsndfileError, RuntimeError, OSError) as exc:
         raise wrap_write_error(exc, targets.dst) from None
+    gain = targets.error_gain
     try:
-        werr = (open_output(tmp_err, source.rate, source.channels, "FLOAT", e_fmt, plain=True)
+        werr = (open_output(tmp_err, source.rate, source.channels, "FLOAT", e_fmt, plain=True,
+                            comment=None if gain is None else _error_comment(gain))
                 if tmp_err else None)
     except (sf.LibsndfileError, RuntimeError, OSError) as exc:
         wout.close()
         raise wrap_write_error(exc, targets.error) from None
+    if werr is not None and gain is not None:
+        werr = _RaisedError(werr, gain[0])
     for key, value in (tags or {}).items():
         try:
             setattr(wout, key, value)
@@ -273,7 +361,9 @@ def _stream(f, rq, files, *, source, targets, analysis, block_frames, progress):
                 progress(done, source.frames)
         writer.close()
     except (sf.LibsndfileError, RuntimeError, OSError) as exc:
-        raise wrap_write_error(exc, targets.dst) from None
+        # blame the file whose write failed: the error file's folder may be the full one
+        failed = targets.error if writer.failed_file == 1 and targets.error else targets.dst
+        raise wrap_write_error(exc, failed) from None
     finally:
         _close_quietly(writer, files, targets)
     return done
@@ -389,12 +479,22 @@ def convert_file(src, dst, recipe: Recipe | None = None, *, outputs: Outputs | N
                            block_frames=block_frames, progress=progress)
             conv = Conversion(recipe=recipe, coeffs=coeffs, source=source, targets=targets,
                               frames=done, out_format=out_fmt, error_format=e_fmt,
-                              passthrough=passthrough, block_frames=block_frames)
+                              passthrough=passthrough, block_frames=block_frames,
+                              error_gain=_gain_record(targets, files))
             report = _finish(rq, conv, analysis, outs, tmp_out=tmp_out, finalize=finalize)
         except BaseException:
             outs.discard()
             raise
     return report
+
+
+def _gain_record(targets, files):
+    """The report's record of the error file's gain."""
+    if targets.error_gain is None:
+        return ErrorGain()
+    raised = next(f for f in files if isinstance(f, _RaisedError))
+    return ErrorGain(gain_db=targets.error_gain[0], rule=targets.error_gain[1],
+                     cap_dbfs=CAP_DBFS, limited_samples=raised.limited)
 
 
 def _finish(rq, conv, analysis, outs, *, tmp_out, finalize):

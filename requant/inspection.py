@@ -344,7 +344,7 @@ def inspect_file(path, *, block_frames=DEFAULT_BLOCK_FRAMES, clip_run=3,
     TypeError
         If an option has the wrong type.
     """
-    from requant.audio_io.reader import open_input
+    from requant.audio_io.reader import open_input, read_block
 
     _check_int("block_frames", block_frames, 1)
     _check_int("clip_run", clip_run, 1)
@@ -361,21 +361,24 @@ def inspect_file(path, *, block_frames=DEFAULT_BLOCK_FRAMES, clip_run=3,
         acc = _Accumulator(ch, sample_rate=rate, container_bits=container_bits,
                            clip_run=clip_run, floor_block_s=floor_block_s,
                            floor_percentile=floor_percentile)
+        done = 0
         if pcm_bits:
             buf = np.empty((block_frames, ch), dtype=np.int32)
             while True:
-                ints = f.read(block_frames, dtype="int32", out=buf)
+                ints = read_block(f, block_frames, "int32", buf, done)
                 if ints.shape[0] == 0:
                     break
                 # int32 / 2^31 equals libsndfile's own float64 reading, exactly.
                 acc.feed(ints * 2.0**-31, ints)
+                done += ints.shape[0]
         else:
             buf = np.empty((block_frames, ch), dtype=np.float64)
             while True:
-                x = f.read(block_frames, dtype="float64", out=buf)
+                x = read_block(f, block_frames, "float64", buf, done)
                 if x.shape[0] == 0:
                     break
                 acc.feed(x)
+                done += x.shape[0]
     acc.finish()
     return _build_report(
         acc, path=os.fspath(path), container=container, subtype=subtype, rate=rate,

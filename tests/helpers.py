@@ -15,7 +15,7 @@ import time
 import numpy as np
 
 __all__ = ["run_cli", "run_cli_timed", "cli_command", "u32", "chunk", "riff_wave", "rf64_wave",
-           "fmt_pcm", "pcm24"]
+           "fmt_pcm", "pcm24", "played_level"]
 
 
 def cli_command(*args):
@@ -95,3 +95,24 @@ def fmt_pcm(channels: int, rate: int, bits: int) -> bytes:
 def pcm24(codes: np.ndarray) -> bytes:
     # RIFF 1991: PCM samples of 17..24 bits take 3 bytes, little-endian, channels interleaved.
     return codes.astype("<i4").view(np.uint8).reshape(-1, 4)[:, :3].tobytes()
+
+
+def played_level(path, gain_db, measure):
+    """Level of a listening-kit file as its player plays it: the file's level plus the
+    playback gain, measured independently of requant.
+
+    ``measure`` 'LUFS': ITU-R BS.1770-4 integrated loudness by pyloudnorm (the reference
+    library, REFERENCES.md §7); 'dBFS RMS': AES17 RMS (a full-scale sine is 0 dBFS). None
+    for digital silence.
+    """
+    import soundfile as sf
+
+    x, rate = sf.read(path, dtype="float64", always_2d=True)
+    if measure == "LUFS":
+        import pyloudnorm
+
+        value = pyloudnorm.Meter(rate).integrated_loudness(x)
+    else:
+        ms = float(np.mean(x * x))
+        value = 10 * np.log10(2 * ms) if ms > 0 else -np.inf
+    return None if not np.isfinite(value) else float(value) + gain_db

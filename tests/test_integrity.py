@@ -293,7 +293,7 @@ def test_json_safe_and_the_manifest_writer(tmp_path):
     w.append({"source": "x.wav", "status": "converted", "snr_db": float("inf"), "warnings": []})
     w.close()
     events, bad = read_manifest(str(tmp_path / "m.jsonl"))
-    assert bad == 0 and events[0]["snr_db"] is None
+    assert int(bad) == 0 and events[0]["snr_db"] is None
     assert "non-finite-figure" in events[0]["warning_kinds"]
 
 
@@ -329,3 +329,314 @@ def test_any_float_magnitudes(tmp_path_factory, values, double):
         return
     json.loads((tmp / "r.json").read_text())
     assert np.all(np.isfinite(sf.read(tmp / "e.wav")[0]))
+
+
+# --------------------------------------------------------------------------- damaged bookkeeping
+
+@pytest.mark.parametrize("line", [
+    b'{"source": "a.wav", "status": "converted", "settings_id": ["x"]}',
+    b'{"source": "a.wav", "status": "converted", "output": 7}',
+    b'{"source": "a.wav", "status": "converted", "source_identity": "big"}',
+    b'{"source": "a.wav", "status": "converted", "output_sha256": NaN}',
+    b'{"source": "a.wav", "status": "exploded"}',
+    b"[" * 100000 + b"]" * 100000,
+    b"\xff\xfe not json",
+])
+def test_a_damaged_manifest_line_is_named_and_left_out(tmp_path, line):
+    src, dst = tmp_path / "lib", tmp_path / "out"
+    _library(src, ["a.wav", "b.wav"])
+    code, _, err = run_cli("batch", src, dst, "--seed", 2, "--jobs", 1, "-q")
+    assert code == 0, err
+    manifest = dst / "requant-manifest.jsonl"
+    lines = manifest.read_bytes().splitlines()
+    manifest.write_bytes(b"\n".join(lines[:1] + [line] + lines[1:]) + b"\n")
+    code, out, err = run_cli("batch", src, dst, "--seed", 2, "--jobs", 1)
+    assert code == 0 and "Traceback" not in err, err
+    said = err + out
+    assert "unreadable line(s) (first: line 2" in said and "move the manifest aside" in said
+
+
+def test_a_manifest_that_is_a_folder_is_one_line(tmp_path):
+    src, dst = tmp_path / "lib", tmp_path / "out"
+    _library(src, ["a.wav"])
+    (dst / "requant-manifest.jsonl").mkdir(parents=True)
+    code, _, err = run_cli("batch", src, dst, "--jobs", 1)
+    lines = [ln for ln in err.splitlines() if ln.strip()]
+    assert code == 2 and len(lines) == 1 and "move it aside" in lines[0]
+    # the lock went with the process: the next run is not told another batch is writing
+    (dst / "requant-manifest.jsonl").rmdir()
+    code, _, err = run_cli("batch", src, dst, "--jobs", 1, "-q")
+    assert code == 0, err
+
+
+@pytest.mark.parametrize("state", [b"not json", b"[1, 2]", b'{"run_seed": "7"}',
+                                   b'{"claimed_outputs": "a.wav"}', b"{" * 100000])
+def test_a_damaged_state_file_is_named_and_safe(tmp_path, state):
+    src, dst = tmp_path / "lib", tmp_path / "out"
+    _library(src, ["a.wav"])
+    code, _, err = run_cli("batch", src, dst, "--seed", 3, "--jobs", 1, "-q")
+    assert code == 0, err
+    (dst / "requant-batch.json").write_bytes(state)
+    code, out, err = run_cli("batch", src, dst, "--seed", 3, "--jobs", 1)
+    assert code == 0 and "Traceback" not in err, err
+    assert "requant-batch.json" in err and "damaged" in err and "move it aside" in err
+
+
+# --------------------------------------------------------------------------- kills and temporaries
+
+def _long_input(path, seconds=20.0):
+    rate = 48000
+    x = np.random.default_rng(4).uniform(-0.5, 0.5, (int(seconds * rate), 2)).astype(np.float32)
+    sf.write(path, x, rate, subtype="FLOAT")
+    return path
+
+
+def _temps(folder):
+    return [p.name for p in folder.iterdir() if p.name.endswith(".requant-part")]
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("sig, code", [("SIGTERM", 143), ("SIGINT", 130)])
+def test_a_stopped_convert_leaves_nothing(tmp_path, sig, code):
+    import signal
+    import subprocess
+    import time
+
+    from helpers import cli_command
+
+    src = _long_input(tmp_path / "in.wav")
+    out = tmp_path / "out"
+    out.mkdir()
+    proc = subprocess.Popen(cli_command("convert", src, out / "o.wav", "--error",
+                                        out / "e.wav", "--report", out / "r.json",
+                                        "--block-frames", 4096),
+                            stderr=subprocess.PIPE, text=True)
+    deadline = time.monotonic() + 30
+    while not _temps(out) and time.monotonic() < deadline:
+        time.sleep(0.01)
+    proc.send_signal(getattr(signal, sig))
+    _, err = proc.communicate(timeout=60)
+    lines = [ln for ln in err.splitlines() if ln.strip()]
+    assert proc.returncode == code and len(lines) == 1 and "no partial output" in lines[0], err
+    assert list(out.iterdir()) == []
+
+
+@pytest.mark.slow
+def test_temporaries_of_a_killed_convert_are_removed_by_the_next(tmp_path):
+    import signal
+    import subprocess
+    import time
+
+    from helpers import cli_command
+
+    src = _long_input(tmp_path / "in.wav")
+    out = tmp_path / "out"
+    out.mkdir()
+    proc = subprocess.Popen(cli_command("convert", src, out / "o.wav", "--error",
+                                        out / "e.wav", "--block-frames", 4096))
+    deadline = time.monotonic() + 30
+    while len(_temps(out)) < 2 and time.monotonic() < deadline:
+        time.sleep(0.01)
+    proc.send_signal(signal.SIGKILL)  # no chance to clean up
+    proc.wait(timeout=30)
+    assert len(_temps(out)) == 2 and not (out / "o.wav").exists()
+    code, _, err = run_cli("convert", src, out / "o.wav", "--error", out / "e.wav")
+    assert code == 0, err
+    assert _temps(out) == [] and sorted(p.name for p in out.iterdir()) == ["e.wav", "o.wav"]
+
+
+def test_a_live_temporary_is_not_taken_for_a_stale_one(tmp_path):
+    from requant.audio_io.atomic import AtomicOutputs, is_stale_temp, remove_stale_temps_of
+
+    outs = AtomicOutputs()
+    tmp = outs.path_for(tmp_path / "take.wav")
+    assert not is_stale_temp(tmp)  # its writer holds it
+    assert remove_stale_temps_of(tmp_path / "take.wav") == [] and os.path.exists(tmp)
+    outs.discard()
+    leftover = tmp_path / ".take.wav.0123abcd.requant-part"
+    leftover.write_bytes(b"half a file")
+    assert is_stale_temp(leftover)
+    assert remove_stale_temps_of(tmp_path / "take.wav") == [leftover.name]
+    other = tmp_path / ".take.wav.more.0123abcd.requant-part"  # another output's temporary
+    other.write_bytes(b"x")
+    assert remove_stale_temps_of(tmp_path / "take.wav") == [] and other.exists()
+
+
+def test_a_legal_long_name_still_converts(tmp_path):
+    # a 250-byte name is legal (255 on most file systems); its temporary must fit too
+    src = _float_file(tmp_path / "in.wav", {})
+    name = "n" * 246 + ".wav"
+    code, _, err = run_cli("convert", src, tmp_path / name, "--error",
+                           tmp_path / ("e" * 246 + ".wav"), "--report",
+                           tmp_path / ("r" * 245 + ".json"))
+    assert code == 0, err
+    assert (tmp_path / name).exists() and _temps(tmp_path) == []
+
+
+# ------------------------------------------------------------------- one line, not a traceback
+
+def test_a_source_folder_named_like_the_batch_bookkeeping(tmp_path):
+    src, dst = tmp_path / "lib", tmp_path / "out"
+    _library(src / "requant-summary.json", ["a.wav"])
+    _library(src, ["b.wav"])
+    code, out, err = run_cli("batch", src, dst, "--jobs", 1)
+    assert code == 1 and "Traceback" not in err
+    assert "where the batch keeps its 'requant-summary.json'" in err
+    assert json.loads((dst / "requant-summary.json").read_text())["counts"]["converted"] == 1
+
+
+@pytest.mark.parametrize("rate", [1, 2, 4])
+def test_extreme_sample_rates_with_reports(tmp_path, rate):
+    sf.write(tmp_path / "in.wav", np.random.default_rng(1).uniform(-0.5, 0.5, (40, 1)), rate,
+             subtype="FLOAT")
+    for ext in ("json", "html", "md"):
+        code, _, err = run_cli("convert", tmp_path / "in.wav", tmp_path / f"o.{ext}.wav",
+                               "--report", tmp_path / f"r.{ext}")
+        assert code == 0 and "Traceback" not in err, err
+
+
+def test_names_that_are_not_utf8(tmp_path):
+    src = _float_file(tmp_path / "ok.wav", {})
+    odd = os.fsencode(tmp_path) + b"/bad\xffname.wav"
+    os.symlink(src, odd)
+    out = os.fsencode(tmp_path) + b"/o\xfe.flac"
+    report = os.fsencode(tmp_path) + b"/r\xfc.md"
+    import subprocess
+
+    from helpers import cli_command
+
+    proc = subprocess.run(cli_command("convert", os.fsdecode(odd), os.fsdecode(out), "--report",
+                                      os.fsdecode(report)), capture_output=True)
+    assert proc.returncode == 0, proc.stderr
+    assert os.path.exists(out) and os.path.exists(report)
+    assert b"\\xff" in open(report, "rb").read()  # shown with an escape, still UTF-8 text
+    open(report, "rb").read().decode("utf-8")
+    proc = subprocess.run(cli_command("inspect", os.fsdecode(odd)), capture_output=True)
+    assert proc.returncode == 0, proc.stderr
+
+
+@pytest.mark.parametrize("damage", ["cut", "corrupt"])
+def test_a_damaged_flac_is_one_line(tmp_path, damage):
+    sf.write(tmp_path / "ok.flac", np.random.default_rng(1).uniform(-0.5, 0.5, (48000, 2)),
+             48000, subtype="PCM_24")
+    data = bytearray((tmp_path / "ok.flac").read_bytes())
+    if damage == "cut":
+        data = data[: len(data) // 2]
+    else:
+        data[len(data) // 2: len(data) // 2 + 200] = bytes(200)
+    (tmp_path / "bad.flac").write_bytes(bytes(data))
+    for args in (["inspect", tmp_path / "bad.flac"],
+                 ["convert", tmp_path / "bad.flac", tmp_path / "o.wav"]):
+        code, _, err = run_cli(*args)
+        lines = [ln for ln in err.splitlines() if ln.strip()]
+        assert code == 2 and len(lines) == 1 and "damaged or cut short" in lines[0], err
+        assert "o.wav" not in lines[0]  # the input's fault, not the output's
+    assert not (tmp_path / "o.wav").exists()
+
+
+def test_stdout_that_cannot_be_written(tmp_path):
+    import subprocess
+
+    from helpers import cli_command
+
+    src = _float_file(tmp_path / "in.wav", {})
+    with open("/dev/full", "w") as full:
+        proc = subprocess.run(cli_command("convert", src, tmp_path / "o.wav"), stdout=full,
+                              stderr=subprocess.PIPE, text=True)
+    lines = [ln for ln in proc.stderr.splitlines() if ln.strip()]
+    assert proc.returncode == 1 and len(lines) == 1 and "standard output" in lines[0]
+    assert (tmp_path / "o.wav").exists()  # the work itself was done
+
+
+def test_write_failures_name_the_file_that_failed(tmp_path, monkeypatch):
+    # a full disk while writing the JSON report: one sentence about the report, no traceback
+    import errno
+
+    from requant.audio_io import writers
+    from requant.convert import Outputs, convert_file
+    from requant.errors import OutputError
+    from requant.recipe import Recipe
+
+    src = _float_file(tmp_path / "in.wav", {})
+    real_dump = json.dump
+
+    def full(*args, **kwargs):
+        raise OSError(errno.ENOSPC, "No space left on device")
+
+    monkeypatch.setattr(json, "dump", full)
+    with pytest.raises(OutputError, match=r"disk is full while writing '.*r\.json'"):
+        convert_file(src, tmp_path / "o.wav", Recipe(seed=1),
+                     outputs=Outputs(report=tmp_path / "r.json"))
+    with pytest.raises(OutputError, match=r"disk is full while writing '.*i\.json'"):
+        writers.write_json_atomic({"a": 1}, tmp_path / "i.json")
+    monkeypatch.setattr(json, "dump", real_dump)
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["in.wav"]  # nothing partial
+    # a library message quoting a temporary name is told with the final one
+    exc = writers.wrap_write_error(RuntimeError(
+        "Error opening '/x/.take.wav.0a1b2c3d.requant-part': System error"), "/x/take.wav")
+    assert "requant-part" not in str(exc) and "take.wav" in str(exc)
+
+
+# --------------------------------------------------------------------------- random damage
+
+def _riff_like(draw_bytes, chunks):
+    from helpers import fmt_pcm, riff_wave
+
+    body = [(b"fmt ", fmt_pcm(2, 48000, 16))] + chunks + [(b"data", draw_bytes)]
+    return riff_wave(body)[0]
+
+
+@pytest.mark.slow
+@given(data=st.one_of(
+    st.binary(max_size=600),
+    st.builds(_riff_like, st.binary(max_size=400),
+              st.lists(st.tuples(st.sampled_from([b"LIST", b"bext", b"smpl", b"JUNK", b"zzzz",
+                                                  b"data", b"fmt "]),
+                                 st.binary(max_size=64)), max_size=4)),
+    st.builds(lambda b, cut: b[:cut], st.builds(_riff_like, st.binary(min_size=8, max_size=400),
+                                                st.just([])), st.integers(0, 500))))
+@hyp_settings(max_examples=150, deadline=None)
+def test_random_bytes_never_make_a_traceback(tmp_path_factory, data):
+    # convert and inspect: one clear error or a result; strict JSON; nothing partial
+    from requant.convert import Outputs, convert_file
+    from requant.errors import RequantError
+    from requant.inspection import inspect_file
+    from requant.recipe import Recipe
+
+    tmp = tmp_path_factory.mktemp("bytes")
+    src = tmp / "in.wav"
+    src.write_bytes(data)
+    try:
+        convert_file(src, tmp / "o.wav", Recipe(seed=1),
+                     outputs=Outputs(error=tmp / "e.wav", report=tmp / "r.json"))
+        json.loads((tmp / "r.json").read_text())
+    except RequantError as exc:
+        assert "\n" not in str(exc)
+        assert sorted(p.name for p in tmp.iterdir()) == ["in.wav"]
+    try:
+        from requant.audio_io.writers import json_safe
+
+        json.dumps(json_safe(inspect_file(src))[0], allow_nan=False)
+    except RequantError as exc:
+        assert "\n" not in str(exc)
+    assert src.read_bytes() == data  # the input is never touched
+
+
+@given(lines=st.lists(st.one_of(
+    st.binary(max_size=80),
+    st.dictionaries(st.sampled_from(["source", "status", "output", "settings_id",
+                                     "output_sha256", "source_identity", "seed", "warnings"]),
+                    st.one_of(st.none(), st.integers(), st.floats(), st.text(max_size=8),
+                              st.lists(st.integers(), max_size=2)),
+                    max_size=6).map(lambda d: json.dumps(d).encode())), max_size=12))
+@hyp_settings(max_examples=200, deadline=None)
+def test_random_manifests_are_read_not_trusted(tmp_path_factory, lines):
+    from requant.library.manifest import latest_by_source, read_manifest
+
+    path = tmp_path_factory.mktemp("m") / "m.jsonl"
+    path.write_bytes(b"\n".join(lines))
+    events, bad = read_manifest(str(path))
+    latest_by_source(events)  # what the plan does with them
+    for ev in events:
+        assert isinstance(ev["source"], str) and ev["status"] in ("converted", "skipped", "failed")
+    assert int(bad) >= 0 and (bad == 0) == (bad.first_line is None)

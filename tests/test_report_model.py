@@ -128,7 +128,8 @@ def test_json_structure_is_pinned(written):
     assert list(d["output"]) == OUTPUT + (["metadata"] if carried else [])
     if carried:
         assert list(d["output"]["metadata"]) == ["copied", "rewritten", "dropped", "tags"]
-    assert d["error_signal"] is None or list(d["error_signal"]) == ["path", "format", "subtype"]
+    assert d["error_signal"] is None or list(d["error_signal"]) == ["path", "format", "subtype",
+                                                                    "gain"]
     assert list(d["measured"]) == (MEASURED_ANALYSED if analysed else MEASURED)
     assert list(d["predicted"]) == PREDICTED + (WEIGHTED if analysed else [])
     # a channel's analysis figures appear when the analysis measured spectra; a pass-through

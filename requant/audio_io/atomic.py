@@ -16,13 +16,20 @@ little left to do. The guarantee is unchanged: nothing is renamed into place
 before it is on disk.
 """
 
+import fcntl
 import os
 import secrets
 import threading
 
 from requant.errors import OutputError, UsageError
 
-__all__ = ["check_outputs", "AtomicOutputs", "CommitGroup", "pending_path", "same_file"]
+__all__ = ["check_outputs", "AtomicOutputs", "CommitGroup", "pending_path", "same_file",
+           "temp_name", "temp_stem", "remove_stale_temps_of", "is_stale_temp", "TEMP_SUFFIX"]
+
+#: What every temporary name ends with (the batch's clean-up looks for it too).
+TEMP_SUFFIX = ".requant-part"
+#: Longest file name most file systems take, in bytes, when the folder does not say.
+_NAME_MAX = 255
 
 _local = threading.local()  # the active CommitGroup of this thread, if any
 
@@ -72,6 +79,76 @@ def check_outputs(inputs, outputs, *, overwrite=False):
             raise OutputError(f"{out!r} already exists; pass --overwrite to replace it")
 
 
+def _name_max(folder):
+    try:
+        return os.pathconf(folder, "PC_NAME_MAX")
+    except (OSError, ValueError):
+        return _NAME_MAX
+
+
+def temp_name(folder, name):
+    """A hidden temporary name for ``name`` in ``folder`` that the file system accepts.
+
+    ``.NAME.XXXXXXXX.requant-part``; when that would be longer than the
+    folder's name limit (a legal name near 255 bytes), the copy of ``name`` in
+    it is shortened (to a whole character) so that the write does not fail.
+    """
+    return f".{temp_stem(folder, name)}.{secrets.token_hex(4)}{TEMP_SUFFIX}"
+
+
+def temp_stem(folder, name):
+    """``name``, shortened if needed so that a temporary name made from it (with a dot
+    before, and a dot, eight random characters and :data:`TEMP_SUFFIX` after) fits the
+    folder's name limit."""
+    room = _name_max(folder) - len(f"..{'0' * 8}{TEMP_SUFFIX}")
+    stem = name
+    while len(os.fsencode(stem)) > room and stem:
+        stem = stem[:-1]
+    return stem
+
+
+def is_stale_temp(path):
+    """True when ``path`` is one of our temporary files that no running process writes.
+
+    A writer holds an exclusive ``flock`` on its temporary files until they are
+    renamed or removed, so a temporary file that can be locked was left by a
+    process that was killed (SIGKILL, a power cut).
+    """
+    try:
+        fd = os.open(path, os.O_RDONLY | os.O_NOFOLLOW)
+    except OSError:
+        return False
+    try:
+        fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+    except OSError:
+        return False  # held: a live writer
+    finally:
+        os.close(fd)
+    return True
+
+
+def remove_stale_temps_of(final):
+    """Remove temporary files a killed run left for output ``final``; return their names."""
+    folder, name = os.path.split(os.path.abspath(os.fspath(final)))
+    prefix = f".{temp_stem(folder, name)}."
+    removed = []
+    try:
+        entries = os.listdir(folder)
+    except OSError:
+        return removed
+    for entry in entries:
+        if (entry.startswith(prefix) and entry.endswith(TEMP_SUFFIX)
+                and len(entry) == len(prefix) + 8 + len(TEMP_SUFFIX)):
+            path = os.path.join(folder, entry)
+            if is_stale_temp(path):
+                try:
+                    os.unlink(path)
+                    removed.append(entry)
+                except OSError:
+                    pass
+    return removed
+
+
 class AtomicOutputs:
     """Context manager handing out temporary paths that become final together.
 
@@ -85,18 +162,42 @@ class AtomicOutputs:
 
     def __init__(self):
         self._pairs = []
+        self._held = []
 
     def path_for(self, final):
-        """A temporary path in ``final``'s folder, renamed to ``final`` on success."""
+        """A temporary path in ``final``'s folder, renamed to ``final`` on success.
+
+        The file is created here and locked (``flock``) until it is renamed or
+        removed, so that a later run can tell it from one a killed run left
+        behind (:func:`is_stale_temp`).
+        """
         final = os.fspath(final)
         folder, name = os.path.split(os.path.abspath(final))
-        tmp = os.path.join(folder, f".{name}.{secrets.token_hex(4)}.requant-part")
+        tmp = os.path.join(folder, temp_name(folder, name))
         self._pairs.append((tmp, final))
+        try:
+            fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o666)
+        except OSError:
+            return tmp  # the writer will say what is wrong with the folder
+        try:
+            fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except OSError:
+            pass
+        self._held.append(fd)
         return tmp
+
+    def _release(self):
+        fds, self._held = self._held, []
+        for fd in fds:
+            try:
+                os.close(fd)
+            except OSError:
+                pass
 
     def discard(self):
         """Remove every temporary file (errors while removing are ignored)."""
         _remove_temps(self._pairs)
+        self._release()
 
     def commit(self):
         """Flush each temporary file to disk and rename it to its final name.
@@ -109,11 +210,13 @@ class AtomicOutputs:
             # the group will rename (at worst a temporary is left for the next run to remove)
             pairs, self._pairs = self._pairs, []
             group.add(pairs)
+            self._release()  # the group's owner (a batch, under its own lock) renames them
             return
         _fsync_temps(self._pairs)
         for tmp, final in self._pairs:
             os.replace(tmp, final)
         self._pairs = []
+        self._release()
 
     def __enter__(self):
         return self

@@ -9,6 +9,7 @@ import struct
 
 from requant import __version__
 from requant.audio_io import riff
+from requant.audio_io.probe import sndfile_target
 from requant.errors import OutputError
 
 __all__ = ["CarryMetadata", "is_riff_wave", "source_tags", "history_text"]
@@ -34,7 +35,8 @@ def source_tags(path):
     import soundfile as sf
 
     try:
-        with sf.SoundFile(path) as f:
+        target, closefd = sndfile_target(path)
+        with sf.SoundFile(target, closefd=closefd) as f:
             return {k: v for k, v in f.copy_metadata().items() if v}
     except Exception:  # convert_file reports an unreadable source with its own message
         return {}

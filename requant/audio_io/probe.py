@@ -7,8 +7,29 @@ stays light.
 import os
 import stat
 import struct
+import sys
 
-__all__ = ["non_regular_kind", "declared_frames"]
+__all__ = ["non_regular_kind", "declared_frames", "sndfile_target"]
+
+
+def sndfile_target(path, mode="r"):
+    """What to hand python-soundfile for ``path``: the name, or an open file descriptor.
+
+    python-soundfile encodes a name strictly, so a file whose name is not valid
+    in the file system's encoding (bytes a Linux name may hold) cannot be opened
+    by name; opened here and handed over as a descriptor, libsndfile reads and
+    writes it natively. Returns ``(target, closefd)``.
+    """
+    name = os.fspath(path)
+    try:
+        if isinstance(name, str):
+            name.encode(sys.getfilesystemencoding())
+        else:
+            raise UnicodeEncodeError("bytes", "", 0, 1, "a bytes name")
+        return name, True
+    except UnicodeEncodeError:
+        flags = os.O_RDONLY if mode == "r" else os.O_RDWR | os.O_CREAT | os.O_TRUNC
+        return os.open(name, flags, 0o666), True
 
 
 def non_regular_kind(path):

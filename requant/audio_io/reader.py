@@ -13,10 +13,11 @@ import threading
 import numpy as np
 
 from requant.audio_io.formats import container_bits_of
-from requant.audio_io.probe import non_regular_kind
+from requant.audio_io.probe import non_regular_kind, sndfile_target
 from requant.errors import InputError
 
-__all__ = ["open_input", "on_grid", "first_nonfinite", "BlockReader", "read_blocks"]
+__all__ = ["open_input", "read_block", "read_failed", "on_grid", "first_nonfinite", "BlockReader",
+           "read_blocks"]
 
 _END = object()
 
@@ -41,7 +42,8 @@ def open_input(path):
         raise InputError(f"{p!r} is {kind}, not a regular file; give an audio file saved on "
                          "disk")
     try:
-        return sf.SoundFile(p)
+        target, closefd = sndfile_target(p)
+        return sf.SoundFile(target, closefd=closefd)
     except (sf.LibsndfileError, RuntimeError, TypeError) as exc:
         detail = str(exc).split(":")[-1].strip() or "unreadable"
         raise InputError(
@@ -88,6 +90,25 @@ def first_nonfinite(x, start_frame):
     return start_frame + int(bad[0]), int(bad[1]), kind
 
 
+def read_failed(f, start_frame, exc):
+    """The one sentence for a read that failed part-way: a damaged input, not an output."""
+    detail = str(exc).split(":")[-1].strip() or type(exc).__name__
+    at = start_frame / f.samplerate if f.samplerate else 0.0
+    return InputError(f"{f.name!r} fails to read in the block that starts at {at:.3f} s (frame "
+                      f"{start_frame}: {detail}); the file is damaged or cut short; repair it "
+                      "or use a complete copy")
+
+
+def read_block(f, frames, dtype, out, start_frame):
+    """``f.read`` of one block, with a failure blamed on the input, in one sentence."""
+    import soundfile as sf
+
+    try:
+        return f.read(frames, dtype=dtype, out=out)
+    except (sf.LibsndfileError, RuntimeError) as exc:
+        raise read_failed(f, start_frame, exc) from None
+
+
 class BlockReader:
     """Iterate over (start_frame, block) read ahead on a background thread.
 
@@ -125,7 +146,7 @@ class BlockReader:
                 buf = self._free.get()
                 if buf is None:
                     break
-                x = self._f.read(self._n, dtype=self._dtype, out=buf)
+                x = read_block(self._f, self._n, self._dtype, buf, start)
                 if x.shape[0] == 0:
                     break
                 self._full.put((start, x, buf))
@@ -164,7 +185,7 @@ def read_blocks(f, block_frames, dtype):
     buf = np.empty((block_frames, f.channels), dtype=dtype)
     start = 0
     while True:
-        x = f.read(block_frames, dtype=dtype, out=buf)
+        x = read_block(f, block_frames, dtype, buf, start)
         if x.shape[0] == 0:
             return
         yield start, x

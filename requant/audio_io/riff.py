@@ -40,6 +40,7 @@ from collections.abc import Callable
 from pathlib import Path
 from typing import BinaryIO
 
+from requant.audio_io.atomic import TEMP_SUFFIX, temp_stem
 from requant.errors import InputError, OutputError, UsageError
 
 __all__ = [
@@ -725,8 +726,9 @@ def _write_temp(output: Path, header: bytes, items: list[_Item]) -> Path:
     Returns the temporary file's path; removes it again on any error.
     """
     try:
-        fd, tmp_name = tempfile.mkstemp(dir=output.parent, prefix=f".{output.name}.",
-                                        suffix=".part")
+        stem = temp_stem(output.parent, output.name)
+        fd, tmp_name = tempfile.mkstemp(dir=output.parent, prefix=f".{stem}.",
+                                        suffix=TEMP_SUFFIX)
     except OSError as exc:
         raise _write_failed(output, exc) from exc
     tmp = Path(tmp_name)

@@ -39,6 +39,14 @@ RAW_SUBTYPES = {
 }
 
 
+def _info_chunk(text):
+    """A ``LIST``/``INFO`` chunk holding ``text`` as its ``ICMT`` (comment), padded to even size."""
+    body = str(text).encode("ascii", "replace") + b"\0"
+    icmt = b"ICMT" + struct.pack("<I", len(body)) + body + b"\0" * (len(body) & 1)
+    payload = b"INFO" + icmt
+    return b"LIST" + struct.pack("<I", len(payload)) + payload
+
+
 class WavWriter:
     """Write one WAV file block by block, like a ``soundfile.SoundFile`` in 'w' mode.
 
@@ -56,6 +64,10 @@ class WavWriter:
         :data:`SYNC_BYTES`, while writing goes on. The caller's final
         ``fsync`` (outputs are durable before they are renamed into place)
         then has little left to do, instead of waiting for the whole file.
+    comment : str, optional
+        A line of ASCII text stored as the file's comment: a ``LIST`` chunk of
+        type ``INFO`` holding one ``ICMT`` chunk (NUL-terminated), before the
+        ``data`` chunk (RIFF 1991, "INFO List Chunk").
 
     Notes
     -----
@@ -63,9 +75,11 @@ class WavWriter:
     as the operating system reports it (disk full, size limit).
     """
 
-    def __init__(self, path, *, samplerate, channels, subtype, background_sync=False):
+    def __init__(self, path, *, samplerate, channels, subtype, background_sync=False,
+                 comment=None):
         if subtype not in RAW_SUBTYPES:
             raise ValueError(f"subtype {subtype!r} is not one of {', '.join(RAW_SUBTYPES)}")
+        self._info = b"" if comment is None else _info_chunk(comment)
         if sys.byteorder != "little":  # pragma: no cover - every platform we run on
             raise ValueError("WavWriter writes host-order samples; this host is big-endian")
         self.samplerate = int(samplerate)
@@ -107,6 +121,7 @@ class WavWriter:
         chunks = b"fmt " + struct.pack("<I", len(fmt)) + fmt
         if self._tag == 3:
             chunks += b"fact" + struct.pack("<II", 4, frames)
+        chunks += self._info
         riff = 4 + len(chunks) + 8 + data + (data & 1)
         return b"RIFF" + struct.pack("<I", riff) + b"WAVE" + chunks + b"data" + struct.pack(
             "<I", data)

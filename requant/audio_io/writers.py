@@ -10,11 +10,13 @@ import json
 import math
 import os
 import queue
+import re
 import threading
 
 import numpy as np
 
 from requant.audio_io.atomic import AtomicOutputs
+from requant.audio_io.probe import sndfile_target
 from requant.audio_io.wavwrite import RAW_SUBTYPES, WavWriter
 from requant.errors import OutputError
 
@@ -55,8 +57,11 @@ def _write_limits_hit(folder):
 
 
 def wrap_write_error(exc, path):
+    """An OS or libsndfile write error as one sentence about ``path`` (the final name: a
+    temporary name in the library's message is replaced by it)."""
+    path = os.fspath(path)
     code = getattr(exc, "errno", None)
-    text = str(exc)
+    text = re.sub(r"[^\s'\"]*\.requant-part", os.path.basename(os.fspath(path)), str(exc))
     folder = os.path.dirname(os.path.abspath(path))
     limit = _write_limits_hit(folder) if code is None else None
     if (code in (errno.EACCES, errno.EPERM, errno.EROFS) or "ermission" in text
@@ -82,7 +87,9 @@ def open_output(path, rate, nch, subtype, fmt, *, plain, comment=None):
                          background_sync=True, comment=comment)
     import soundfile as sf
 
-    f = sf.SoundFile(path, "w", samplerate=rate, channels=nch, subtype=subtype, format=fmt)
+    target, closefd = sndfile_target(path, "w")
+    f = sf.SoundFile(target, "w", samplerate=rate, channels=nch, subtype=subtype, format=fmt,
+                     closefd=closefd)
     if comment is not None:
         try:
             f.comment = comment
@@ -100,13 +107,21 @@ def json_safe(obj):
     """``obj`` with every non-finite float replaced by None, and how many were replaced.
 
     JSON has no NaN or infinity; strict readers (and ours, ``allow_nan=False``)
-    refuse them. Numbers of numpy types become plain Python numbers.
+    refuse them. Numbers of numpy types become plain Python numbers. Text that
+    holds bytes of a file name that are not UTF-8 (lone surrogates, which strict
+    readers refuse too) shows them as ``\\xNN``.
     """
     count = 0
 
     def clean(v):
         nonlocal count
-        if isinstance(v, bool) or v is None or isinstance(v, str):
+        if isinstance(v, str):
+            try:
+                v.encode("utf-8")
+                return v
+            except UnicodeEncodeError:
+                return v.encode("utf-8", "surrogateescape").decode("utf-8", "backslashreplace")
+        if isinstance(v, bool) or v is None:
             return v
         if isinstance(v, dict):
             return {k: clean(x) for k, x in v.items()}
@@ -133,11 +148,14 @@ def write_json_atomic(obj, path, *, warnings_key=None):
     doc, replaced = json_safe(obj)
     if replaced and warnings_key is not None and isinstance(doc.get(warnings_key), list):
         doc[warnings_key].append(NON_FINITE_WARNING.format(n=replaced))
-    with AtomicOutputs() as outs:
-        tmp = outs.path_for(path)
-        with open(tmp, "w", encoding="utf-8") as fh:
-            json.dump(doc, fh, indent=2, allow_nan=False)
-            fh.write("\n")
+    try:
+        with AtomicOutputs() as outs:
+            tmp = outs.path_for(path)
+            with open(tmp, "w", encoding="utf-8") as fh:
+                json.dump(doc, fh, indent=2, allow_nan=False)
+                fh.write("\n")
+    except OSError as exc:
+        raise wrap_write_error(exc, path) from None
 
 
 class BlockWriter:
@@ -172,6 +190,7 @@ class BlockWriter:
         if consumer is not None:
             self._free.put(tuple(np.empty(s, dtype=d) for s, d in shapes_dtypes))
         self._error = None
+        self.failed_file = None
         self._thread = threading.Thread(target=self._run, name="requant-writer", daemon=True)
         self._thread.start()
         self._athread = None
@@ -191,8 +210,10 @@ class BlockWriter:
             bufs, n = item
             if self._error is None:
                 try:
-                    for f, b in zip(self._files, bufs):
+                    for i, (f, b) in enumerate(zip(self._files, bufs)):
+                        self.failed_file = i  # which file a write error belongs to
                         f.write(b[:n])
+                    self.failed_file = None
                 except BaseException as exc:
                     self._error = exc
             if self._athread is not None:
@@ -247,13 +268,16 @@ class SyncWriter:
         self._files = list(files)
         self._consumer = consumer
         self._bufs = tuple(np.empty(s, dtype=d) for s, d in shapes_dtypes)
+        self.failed_file = None
 
     def buffers(self):
         return self._bufs
 
     def submit(self, bufs, frames):
-        for f, b in zip(self._files, bufs):
+        for i, (f, b) in enumerate(zip(self._files, bufs)):
+            self.failed_file = i  # which file a write error belongs to
             f.write(b[:frames])
+        self.failed_file = None
         if self._consumer is not None:
             self._consumer(bufs, frames)
 

@@ -1,7 +1,7 @@
 """The ``requant`` command line: parsing and printing only.
 
 One module per command group (:mod:`.convert`, :mod:`.batch`, :mod:`.listen`,
-:mod:`.info` for ``inspect`` and ``shaper``, :mod:`.demo`), registered here;
+:mod:`.info` for ``inspect`` and ``shaper``, :mod:`.audit`, :mod:`.demo`), registered here;
 options shared by several commands are declared once in :mod:`.common`.
 Nothing below imports this package. Heavy modules (numpy, soundfile, numba,
 scipy, matplotlib) are imported inside the commands, so that ``requant
@@ -19,12 +19,13 @@ try:  # typer >= 0.20 vendors click
 except ImportError:  # pragma: no cover - older typer with click installed
     import click.exceptions as _cx
 
+from requant.cli import audit as _audit
 from requant.cli import batch as _batch
 from requant.cli import convert as _convert
 from requant.cli import demo as _demo
 from requant.cli import info as _info
 from requant.cli import listen as _listen
-from requant.cli.common import err, friendly, set_debug
+from requant.cli.common import err, friendly, handle_sigterm, set_debug, stop_exit_code
 
 __all__ = ["app", "main", "console"]
 
@@ -68,11 +69,37 @@ COMMANDS = (
     (app, "batch", _batch.batch),
     (app, "listen", _listen.listen),
     (app, "score", _listen.score),
+    (app, "audit", _audit.audit),
     (shaper_app, "show", _info.shaper_show),
 )
 for _app, _name, _fn in COMMANDS:
     _app.command(_name)(friendly(_fn))
 app.add_typer(shaper_app, name="shaper")
+
+
+class _GuardedStdout:
+    """Standard output that cannot raise: a failed write (``> /dev/full``, a closed pipe)
+    is noted, and :func:`main` says so in one line once the work is done."""
+
+    def __init__(self, stream):
+        self._stream = stream
+        self.failure = None
+
+    def write(self, text):
+        try:
+            return self._stream.write(text)
+        except OSError as exc:
+            self.failure = self.failure or exc
+            return len(text)
+
+    def flush(self):
+        try:
+            self._stream.flush()
+        except OSError as exc:
+            self.failure = self.failure or exc
+
+    def __getattr__(self, name):
+        return getattr(self._stream, name)
 
 
 def main(argv=None):
@@ -84,6 +111,22 @@ def main(argv=None):
         # a file-size limit then fails the write (EFBIG) instead of killing the process,
         # so the temporary files are removed and the user gets one clear line
         signal.signal(signal.SIGXFSZ, signal.SIG_IGN)
+    handle_sigterm()
+    guard = sys.stdout = _GuardedStdout(sys.stdout)
+    try:
+        rc = _run(args)
+    finally:
+        sys.stdout = guard._stream
+    guard.flush()
+    if guard.failure is not None:
+        err(f"could not write to standard output ({guard.failure.strerror or guard.failure}); "
+            "what was asked for was done, but its summary was not shown")
+        return rc or 1
+    return rc
+
+
+def _run(args):
+    """The app, with click's and typer's exceptions turned into exit codes."""
     try:
         rc = app(args=args, prog_name="requant", standalone_mode=False)
     except typer.Exit as exc:
@@ -99,7 +142,7 @@ def main(argv=None):
         return 2
     except typer.Abort:
         err("interrupted; no partial output was left behind")
-        return 130
+        return stop_exit_code()
     except _cx.ClickException as exc:
         err(exc.format_message())
         return exc.exit_code

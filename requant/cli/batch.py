@@ -17,6 +17,9 @@ import typer
 
 from requant.cli.common import (
     CAUTION,
+    Cluster,
+    ClusterTimeout,
+    Jobs,
     MaybeBits,
     MaybeBlockFrames,
     MaybeDither,
@@ -27,8 +30,11 @@ from requant.cli.common import (
     Seed,
     ShapingLimit,
     ShapingOrder,
+    cluster_executor,
     err,
     recipe_options,
+    stop_exit_code,
+    stop_reason,
 )
 from requant.library.tree import OUTPUT_CHOICES
 
@@ -247,16 +253,9 @@ def batch(
     profile: Annotated[Path | None, typer.Option(
         "--profile", help="Saved delivery settings (TOML); options given here override "
                           "it.")] = None,
-    jobs: Annotated[int | None, typer.Option(
-        "--jobs", "-j", min=1, help="Worker processes [default: all cores].")] = None,
-    cluster: Annotated[str | None, typer.Option(
-        "--cluster", metavar="tcp://HOST:PORT",
-        help="Convert on the workers of an existing dask.distributed scheduler (needs "
-             "requant[cluster]); SRC and DST must be shared storage at the same paths on "
-             "every worker.")] = None,
-    cluster_timeout: Annotated[float, typer.Option(
-        "--cluster-timeout", min=0.1, max=600.0,
-        help="Seconds to wait for the dask scheduler to answer.")] = 10.0,
+    jobs: Jobs = None,
+    cluster: Cluster = None,
+    cluster_timeout: ClusterTimeout = 10.0,
     overwrite: Annotated[bool, typer.Option(
         "--overwrite", help="Replace outputs in DST that requant batch did not write.")] = False,
     dry_run: Annotated[bool, typer.Option(
@@ -289,7 +288,7 @@ def batch(
                     "exclude": exclude or None, "block_frames": block_frames,
                     "analyze": analyze})
     settings = resolve_settings(options, prof)
-    executor = _executor(cluster, jobs, cluster_timeout)
+    executor = cluster_executor(cluster, jobs, cluster_timeout)
     reporter = ConsoleReporter(quiet=quiet)
     try:
         if executor is not None and not dry_run:
@@ -305,20 +304,6 @@ def batch(
     _report_outcome(result, settings, dry_run=dry_run, quiet=quiet)
 
 
-def _executor(cluster, jobs, timeout_s):
-    """The cluster executor when --cluster is given, else None (run_batch picks local)."""
-    if cluster is None:
-        return None
-    from requant.errors import UsageError
-    from requant.library.executors.cluster import DaskExecutor
-
-    if jobs is not None:
-        raise UsageError("--jobs sets local worker processes and does not combine with "
-                         "--cluster (the dask workers' --nworkers and --nthreads decide); "
-                         "leave out --jobs")
-    return DaskExecutor(cluster, connect_timeout=timeout_s)
-
-
 def _report_outcome(result, settings, *, dry_run, quiet):
     """Print the end of a run and leave with its exit code."""
     if dry_run:
@@ -328,10 +313,10 @@ def _report_outcome(result, settings, *, dry_run, quiet):
         import os
 
         c = result["counts"]
-        err(f"interrupted after {c['converted']} converted and {c['failed']} failed "
+        err(f"{stop_reason()} after {c['converted']} converted and {c['failed']} failed "
             f"(summary in {os.path.join(result['dst'], 'requant-summary.json')}); no "
             "partial output was left behind; run the same command again to resume")
-        raise typer.Exit(code=130)
+        raise typer.Exit(code=stop_exit_code())
     _print_summary(result, quiet)
     if settings.recipe.bits <= 8 and not quiet and result["counts"]["converted"]:
         print(CAUTION, file=sys.stderr)

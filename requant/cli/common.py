@@ -31,12 +31,14 @@ from requant.recipe import (
     Recipe,
 )
 
-__all__ = ["CAUTION", "DEFAULTS", "err", "friendly", "set_debug", "Quantizer", "Dither",
+__all__ = ["CAUTION", "DEFAULTS", "err", "friendly", "set_debug", "handle_sigterm", "stop_reason",
+           "stop_exit_code", "Quantizer", "Dither",
            "recipe_options", "OPTIONS", "Bits", "QuantizerOpt", "DitherOpt", "ShapingOpt",
            "ShapingOrder", "ShapingLimit", "ShaperOrder", "ShaperLimit", "Seed", "ForceDither",
            "Overwrite", "Quiet",
            "BlockFrames", "MaybeBits", "MaybeQuantizer", "MaybeDither", "MaybeShaping",
-           "MaybeForceDither", "MaybeBlockFrames", "ErrorPath", "ReportPaths"]
+           "MaybeForceDither", "MaybeBlockFrames", "ErrorPath", "ErrorGainOpt", "ReportPaths",
+           "Jobs", "Cluster", "ClusterTimeout", "cluster_executor"]
 
 #: The short caution printed after work that may be loud.
 CAUTION = ("Caution: few-bit outputs and error signals can be loud. Start playback at a low "
@@ -51,6 +53,33 @@ _DEBUG = {"on": False}
 def set_debug(on):
     """Show tracebacks instead of one-line errors (``requant --debug``)."""
     _DEBUG["on"] = bool(on)
+
+
+_STOP = {"signal": None}
+
+
+def _on_sigterm(signum, frame):
+    """SIGTERM (a service stopping, a scheduler's kill) stops the work as Ctrl-C does:
+    temporary files are removed on the way out."""
+    _STOP["signal"] = signum
+    raise KeyboardInterrupt
+
+
+def handle_sigterm():
+    """Treat SIGTERM like Ctrl-C in this process (main thread only)."""
+    import signal
+
+    signal.signal(signal.SIGTERM, _on_sigterm)
+
+
+def stop_reason():
+    """How the work was stopped, for the one line the user sees."""
+    return "stopped by SIGTERM" if _STOP["signal"] is not None else "interrupted"
+
+
+def stop_exit_code():
+    """130 after Ctrl-C, 143 after SIGTERM (128 + the signal number, as shells report)."""
+    return 128 + (_STOP["signal"] or 2)
 
 
 def err(text):
@@ -75,8 +104,8 @@ def friendly(fn):
         except KeyboardInterrupt:
             if _DEBUG["on"]:
                 raise
-            err("interrupted; no partial output was left behind")
-            raise typer.Exit(code=130) from None
+            err(f"{stop_reason()}; no partial output was left behind")
+            raise typer.Exit(code=stop_exit_code()) from None
 
     return wrapper
 
@@ -141,9 +170,48 @@ MaybeBlockFrames = Annotated[int | None, _option("block_frames", layered=True)]
 
 ErrorPath = Annotated[Path | None, typer.Option(
     "--error", help="Write the error signal (output minus input), 32-bit float .wav or .aiff.")]
+ErrorGainOpt = Annotated[str | None, typer.Option(
+    "--error-gain", metavar="DB|auto",
+    help="Write the error signal raised for listening: by DB decibels (-120 to 120), or 'auto' "
+         "(flat TPDF noise of the word length at about -40 dBFS RMS); then hard-limited at -6 "
+         "dBFS peak. The gain is stated in the report and the file. Default: the exact error, "
+         "unity gain.")]
 ReportPaths = Annotated[list[Path] | None, typer.Option(
     "--report", help="Write the report: .json, .html (one self-contained page) or .md "
                      "(pictures beside it); repeat for several forms.")]
+
+
+#: Worker processes and the cluster, for the commands that run many files (batch, audit).
+Jobs = Annotated[int | None, typer.Option(
+    "--jobs", "-j", min=1, help="Worker processes [default: all cores].")]
+Cluster = Annotated[str | None, typer.Option(
+    "--cluster", metavar="tcp://HOST:PORT",
+    help="Run on the workers of an existing dask.distributed scheduler (needs "
+         "requant[cluster]); the folders must be shared storage at the same paths on "
+         "every worker.")]
+ClusterTimeout = Annotated[float, typer.Option(
+    "--cluster-timeout", min=0.1, max=600.0,
+    help="Seconds to wait for the dask scheduler to answer.")]
+
+
+def cluster_executor(cluster, jobs, timeout_s):
+    """The batch's cluster executor when ``--cluster`` is given, else None (local workers).
+
+    Raises
+    ------
+    UsageError
+        ``--jobs`` given with ``--cluster``.
+    """
+    if cluster is None:
+        return None
+    from requant.errors import UsageError
+    from requant.library.executors.cluster import DaskExecutor
+
+    if jobs is not None:
+        raise UsageError("--jobs sets local worker processes and does not combine with "
+                         "--cluster (the dask workers' --nworkers and --nthreads decide); "
+                         "leave out --jobs")
+    return DaskExecutor(cluster, connect_timeout=timeout_s)
 
 
 def recipe_options(*, bits, quantizer, dither, shaping, shaping_order, shaping_limit, seed,

@@ -16,6 +16,7 @@ from requant.cli.common import (
     BlockFrames,
     Dither,
     DitherOpt,
+    ErrorGainOpt,
     ErrorPath,
     ForceDither,
     Overwrite,
@@ -30,7 +31,7 @@ from requant.cli.common import (
     recipe_options,
 )
 
-__all__ = ["convert", "summary_line"]
+__all__ = ["convert", "summary_line", "error_line"]
 
 
 def convert(
@@ -45,6 +46,7 @@ def convert(
     shaping_limit: ShapingLimit = None,
     seed: Seed = DEFAULTS.seed,
     error: ErrorPath = None,
+    error_gain: ErrorGainOpt = None,
     report: ReportPaths = None,
     overwrite: Overwrite = False,
     force_dither: ForceDither = DEFAULTS.force_dither,
@@ -59,7 +61,8 @@ def convert(
         bits=bits, quantizer=quantizer, dither=dither, shaping=shaping,
         shaping_order=shaping_order, shaping_limit=shaping_limit, seed=seed,
         force_dither=force_dither))
-    outputs = Outputs(error=error, report=tuple(report or ()), overwrite=overwrite)
+    outputs = Outputs(error=error, report=tuple(report or ()), overwrite=overwrite,
+                      error_gain=error_gain)
     progress = _ProgressPrinter(quiet)
     try:
         rep = convert_file(input, output, recipe, outputs=outputs, block_frames=block_frames,
@@ -68,12 +71,29 @@ def convert(
         progress.close()
     if not quiet:
         print(summary_line(rep))
+        if rep.error_signal is not None:
+            print(error_line(rep.error_signal))
         for note in rep.notes:
             print(f"note: {note}")
     for w in rep.warnings:
         print(f"warning: {w}", file=sys.stderr)
-    if (bits <= 8 or error is not None) and not quiet:
+    if rep.error_signal is not None or (bits <= 8 and not quiet):
         print(CAUTION, file=sys.stderr)
+
+
+def error_line(err):
+    """What was written as the error signal, and how loud: one line.
+
+    Parameters
+    ----------
+    err : requant.report.model.ErrorSignalFacts
+    """
+    g = err.gain
+    if g.rule == "exact":
+        return f"error signal: {err.path} (the exact error, unity gain)"
+    how = ("auto: flat TPDF noise at -40 dBFS RMS" if g.rule == "auto" else "as asked")
+    return (f"error signal: {err.path} raised by {g.gain_db:+.1f} dB ({how}), hard-limited at "
+            f"{g.cap_dbfs:.0f} dBFS peak; {g.limited_samples} sample(s) limited")
 
 
 def _fmt(v, spec=".2f", none="n/a"):

@@ -6,6 +6,8 @@ code; :mod:`.quantizer` is the array API around it (``Requantizer``, the
 dither models and the predicted error power); :mod:`.shaping` designs and
 describes noise-shaping filters; :mod:`.weighting` holds the A, ITU-R BS.468-4
 and hearing-threshold curves; :mod:`.truepeak` the ITU-R BS.1770-4 true-peak
-meters; :mod:`.analysis` the report's streaming measurements; :mod:`.figures`
-turns running sums into SNR, LSB² and dBFS.
+meters and :mod:`.loudness` its integrated loudness; :mod:`.cap` the rules
+for signals raised for listening (the -6 dBFS cap); :mod:`.analysis` the
+report's streaming measurements; :mod:`.figures` turns running sums into SNR,
+LSB² and dBFS.
 """

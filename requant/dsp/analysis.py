@@ -44,6 +44,10 @@ __all__ = [
     "segment_frames",
     "quiet_window_frames",
     "error_pdf",
+    "tonal_fraction",
+    "noise_floor",
+    "passage_correlation",
+    "correlated_summary",
     "MAX_SEGMENTS",
     "TONE_THRESHOLD_DB",
     "CORRELATED_WARNING_FRACTION",
@@ -85,7 +89,7 @@ def segment_frames(sample_rate, total_frames=None):
     detector needs averaged spectra, and the integrated figures do not need
     fine resolution.
     """
-    n = max(256, 1 << int(math.ceil(math.log2(max(sample_rate, 1) / 8.0))))
+    n = max(256, 1 << max(0, int(math.ceil(math.log2(max(sample_rate, 1) / 8.0)))))
     if total_frames:
         fit = 1 << max(0, int(math.floor(math.log2(max(total_frames, 1) * 2 / (MIN_SEGMENTS + 1)))))
         n = max(256, min(n, fit))
@@ -114,6 +118,16 @@ def _running_median(values, half):
     return np.median(windows, axis=-1)
 
 
+def noise_floor(psd):
+    """The smooth part of a spectrum: its running median over ±:data:`MEDIAN_HALF_WIDTH` bins.
+
+    Tones (lines a few bins wide) do not move it; :func:`tonal_fraction`
+    measures what stands above it, and the audit (:mod:`requant.audit`) reads
+    the shape of the noise from it.
+    """
+    return _running_median(psd, MEDIAN_HALF_WIDTH)
+
+
 def tonal_fraction(psd):
     """Share of the power of ``psd`` standing above its running median.
 
@@ -124,9 +138,48 @@ def tonal_fraction(psd):
     total = psd.sum()
     if total <= 0.0 or psd.size < 8:
         return 0.0
-    floor = _running_median(psd, MEDIAN_HALF_WIDTH)
+    floor = noise_floor(psd)
     tone = psd > floor * 10.0 ** (TONE_THRESHOLD_DB / 10.0)
     return float(np.sum((psd - floor)[tone]) / total)
+
+
+def passage_correlation(x, e):
+    """How much of a passage's error follows its signal: (squared correlation, tonal share).
+
+    The convert report's measure of its quietest passage, for any passage:
+    the largest over channels of the squared correlation coefficient of
+    signal and error, and of the tonal share (:func:`tonal_fraction`) of the
+    error's spectrum averaged over Hann segments of an eighth of the passage
+    (half overlapping). The mean of the error (a truncation bias) is no tone.
+
+    Parameters
+    ----------
+    x, e : ndarray (frames, channels)
+        Signal and error of the passage (any units; at least 16 frames).
+
+    Returns
+    -------
+    (float, float)
+    """
+    x = np.asarray(x, dtype=np.float64)
+    e = np.asarray(e, dtype=np.float64)
+    n = x.shape[0]
+    L = max(2, n // 8)
+    hop = max(1, L // 2)
+    win = _hann(L)
+    starts = np.arange(0, n - L + 1, hop)
+    idx = starts[:, None] + np.arange(L)[None, :]
+    xc = x - x.mean(axis=0)
+    ec = e - e.mean(axis=0)  # the truncation bias is no tone of the signal
+    fe = np.fft.rfft(ec[idx] * win[None, :, None], axis=1)
+    psd = np.sum(np.abs(fe) ** 2, axis=0).T  # (channels, bins), unnormalised
+    tonal = max(tonal_fraction(p[2:]) for p in psd)
+    rho2 = 0.0
+    for c in range(x.shape[1]):
+        den = float(np.sum(xc[:, c] ** 2) * np.sum(ec[:, c] ** 2))
+        if den > 0.0:
+            rho2 = max(rho2, float(np.sum(xc[:, c] * ec[:, c]) ** 2 / den))
+    return rho2, tonal
 
 
 def error_pdf(lsb, *, quantizer, dither, coeffs=()):
@@ -241,6 +294,17 @@ class ErrorAnalyzer:
             from requant.dsp.truepeak import DualTruePeakMeter
 
             self._tp = DualTruePeakMeter(self.channels)
+
+    def set_model(self, *, quantizer, dither, coeffs=()):
+        """Name the method the predictions are made for, after feeding.
+
+        For callers that learn the method from the data (the audit identifies
+        it from the error it fed). Only :meth:`finish` reads the model; the
+        histogram's span stays the one chosen at construction.
+        """
+        self.quantizer = quantizer
+        self.dither = dither
+        self.coeffs = np.asarray(coeffs, dtype=np.float64)
 
     # -- feeding -------------------------------------------------------------------------------
 
@@ -377,6 +441,19 @@ class ErrorAnalyzer:
         p[:, 1:-1] *= 2.0
         return p
 
+    def spectrum(self):
+        """The bins and the error's spectrum so far (callable before :meth:`finish`).
+
+        Returns
+        -------
+        freqs : ndarray, Hz
+        psd : ndarray (channels, bins), full scale²/Hz, or None
+            One-sided Welch PSD of the segments analysed so far; None before
+            the first.
+        """
+        freqs = np.arange(self.L // 2 + 1) * self.rate / self.L
+        return freqs, (self._psd(self._see) if self._nseg > 0 else None)
+
     def _weights(self, freqs):
         from requant.dsp.weighting import weighting_power
 
@@ -422,23 +499,8 @@ class ErrorAnalyzer:
         q = self._quiet
         if q is None:
             return None
-        x = q["x"].astype(np.float64)
         e = q["e"].astype(np.float64)
-        L = self.QW // 8
-        hop = L // 2
-        win = _hann(L)
-        starts = np.arange(0, self.QW - L + 1, hop)
-        idx = starts[:, None] + np.arange(L)[None, :]
-        xc = x - x.mean(axis=0)
-        ec = e - e.mean(axis=0)  # the truncation bias is no tone of the signal
-        fe = np.fft.rfft(ec[idx] * win[None, :, None], axis=1)
-        psd = np.sum(np.abs(fe) ** 2, axis=0).T  # (channels, bins), unnormalised
-        tonal = max(tonal_fraction(p[2:]) for p in psd)
-        rho2 = 0.0
-        for c in range(self.channels):
-            den = float(np.sum(xc[:, c] ** 2) * np.sum(ec[:, c] ** 2))
-            if den > 0.0:
-                rho2 = max(rho2, float(np.sum(xc[:, c] * ec[:, c]) ** 2 / den))
+        rho2, tonal = passage_correlation(q["x"], e)
         ep = float(np.mean(e**2))
         model = predicted_error_power_lsb2(self.quantizer, self.dither, self.coeffs)
         ep_lsb2 = ep * self.scale**2

@@ -122,6 +122,7 @@ class Family(NamedTuple):
 KERNELS = {
     "quantize": Family("requant.dsp.kernel", "build", "SIGNATURE", {"taps": (0, 9)}),
     "truepeak-dual": Family("requant.dsp.truepeak", "build_dual", "DUAL_SIGNATURE", {}),
+    "residual": Family("requant.dsp.residual", "build", "SIGNATURE", {}),
 }
 
 

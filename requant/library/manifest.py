@@ -6,6 +6,8 @@ one ``os.write`` on an ``O_APPEND`` descriptor (:class:`ManifestWriter`). The re
 crash is harmless.
 """
 
+from __future__ import annotations
+
 import hashlib
 import json
 import os
@@ -14,7 +16,8 @@ import time
 from requant.audio_io.writers import NON_FINITE_WARNING, json_safe
 from requant.errors import OutputError
 
-__all__ = ["MANIFEST_NAME", "ManifestWriter", "read_manifest", "sha256_file", "latest_by_source"]
+__all__ = ["MANIFEST_NAME", "ManifestWriter", "ManifestDamage", "read_manifest", "sha256_file",
+           "latest_by_source", "escape_name", "unescape_name"]
 
 
 MANIFEST_NAME = "requant-manifest.jsonl"
@@ -37,8 +40,112 @@ def sha256_file(path):
     return h.hexdigest()
 
 
+#: Fields a manifest event may carry, and the types they must have to be used.
+_EVENT_TYPES = {
+    "source": str, "status": str, "output": (str, type(None)), "settings_id": str,
+    "output_sha256": (str, type(None)), "source_identity": (dict, type(None)),
+    "reason": (str, type(None)), "error": (str, type(None)), "seed": (int, type(None)),
+    "warnings": list, "warning_kinds": list, "figures": dict, "metadata": dict,
+}
+_STATUSES = ("converted", "skipped", "failed")
+
+
+#: Event fields that hold file names (relative paths).
+_NAME_FIELDS = ("source", "output")
+
+
+def escape_name(name):
+    """A file name as strict UTF-8 text that :func:`unescape_name` turns back into it.
+
+    Linux names may hold bytes that are not UTF-8; Python carries them as lone
+    surrogates, which strict JSON readers refuse. Each such byte is written
+    ``\\xNN`` and a backslash ``\\\\``; every other character is kept.
+    """
+    if not isinstance(name, str) or ("\\" not in name and not _has_surrogate(name)):
+        return name
+    out = []
+    for ch in name:
+        if ch == "\\":
+            out.append("\\\\")
+        elif 0xDC80 <= ord(ch) <= 0xDCFF:
+            out.append(f"\\x{ord(ch) - 0xDC00:02x}")
+        else:
+            out.append(ch)
+    return "".join(out)
+
+
+def unescape_name(text):
+    """The file name :func:`escape_name` wrote as ``text``."""
+    if not isinstance(text, str) or "\\" not in text:
+        return text
+    out, i = [], 0
+    while i < len(text):
+        ch = text[i]
+        if ch == "\\" and text[i + 1:i + 2] == "\\":
+            out.append("\\")
+            i += 2
+        elif ch == "\\" and text[i + 1:i + 2] == "x" and len(text) >= i + 4:
+            try:
+                out.append(chr(0xDC00 + int(text[i + 2:i + 4], 16)))
+                i += 4
+                continue
+            except ValueError:
+                out.append(ch)
+                i += 1
+        else:
+            out.append(ch)
+            i += 1
+    return "".join(out)
+
+
+def _has_surrogate(name):
+    return any(0xDC80 <= ord(c) <= 0xDCFF for c in name)
+
+
+def _usable(ev):
+    """True when a parsed line is an event whose known fields have their types."""
+    if not isinstance(ev, dict) or ev.get("status") not in _STATUSES:
+        return False
+    for key, kind in _EVENT_TYPES.items():
+        if key in ev and not isinstance(ev[key], kind):
+            return False
+    if "source" not in ev:
+        return False
+    ident = ev.get("source_identity")
+    if ident is not None and not (isinstance(ident.get("size"), int)
+                                  and isinstance(ident.get("sha256"), str)):
+        return False
+    return True
+
+
+class ManifestDamage(int):
+    """How many manifest lines :func:`read_manifest` left out (an int), and the first one."""
+
+    first_line: int | None = None
+
+    @classmethod
+    def of(cls, lines):
+        """The damage of these left-out line numbers."""
+        damage = cls(len(lines))
+        damage.first_line = lines[0] if lines else None
+        return damage
+
+    def sentence(self, path):
+        """A note for the run: what was ignored and the way out."""
+        return (f"the manifest {path!r} has {int(self)} unreadable line(s) (first: line "
+                f"{self.first_line}; a run was cut off, or the file was edited); they were "
+                "ignored, so the files they describe are checked or converted again; to start "
+                "afresh, move the manifest aside and run again")
+
+
 def read_manifest(path):
-    """Read the events of a manifest, skipping lines that do not parse.
+    """Read the events of a manifest, leaving out lines that cannot be used.
+
+    A line is used when it parses as a JSON object (not nested absurdly deep),
+    its ``status`` is ``converted``, ``skipped`` or ``failed``, it has a
+    ``source``, and every known field has its type (:data:`_EVENT_TYPES`).
+    Anything else, a torn last line after a crash or a line edited by hand,
+    is counted and left out; the run then treats its file as not recorded.
 
     Parameters
     ----------
@@ -47,29 +154,45 @@ def read_manifest(path):
     Returns
     -------
     events : list of dict
-        In file order; only JSON objects with a ``source`` and a ``status``.
-    bad_lines : int
-        Lines skipped (a torn last line after a crash, or damage).
+        In file order.
+    damage : ManifestDamage
+        How many lines were left out (an int) and the first one (``first_line``).
+
+    Raises
+    ------
+    OutputError
+        If the manifest is a folder or cannot be read: one sentence with the
+        way out.
     """
-    events, bad = [], 0
+    events, left_out = [], []
     try:
         with open(path, "rb") as fh:
             data = fh.read()
     except FileNotFoundError:
-        return events, 0
-    for line in data.split(b"\n"):
+        return events, ManifestDamage.of(left_out)
+    except IsADirectoryError:
+        raise OutputError(f"{os.fspath(path)!r} is a folder where the batch keeps its manifest; "
+                          "move it aside and run again") from None
+    except OSError as exc:
+        raise OutputError(f"the manifest {os.fspath(path)!r} cannot be read "
+                          f"({exc.strerror or exc}); fix its permissions, or move it aside and "
+                          "run again") from None
+    for number, line in enumerate(data.split(b"\n"), 1):
         if not line.strip():
             continue
         try:
             ev = json.loads(line)
-        except ValueError:
-            bad += 1
+        except (ValueError, RecursionError):
+            left_out.append(number)
             continue
-        if isinstance(ev, dict) and isinstance(ev.get("source"), str) and "status" in ev:
+        if _usable(ev):
+            for key in _NAME_FIELDS:
+                if key in ev:
+                    ev[key] = unescape_name(ev[key])
             events.append(ev)
         else:
-            bad += 1
-    return events, bad
+            left_out.append(number)
+    return events, ManifestDamage.of(left_out)
 
 
 class ManifestWriter:
@@ -129,6 +252,7 @@ class ManifestWriter:
     def append(self, event):
         """Write one event as one JSON line (a non-finite figure becomes null, with a warning
         of kind ``non-finite-figure``, so that one damaged file cannot stop a library)."""
+        event = {k: (escape_name(v) if k in _NAME_FIELDS else v) for k, v in event.items()}
         event, replaced = json_safe(event)
         if replaced:
             event.setdefault("warnings", []).append(NON_FINITE_WARNING.format(n=replaced))
@@ -137,7 +261,7 @@ class ManifestWriter:
                 kinds.append("non-finite-figure")
         try:
             line = json.dumps(event, ensure_ascii=False, allow_nan=False).encode("utf-8")
-        except UnicodeEncodeError:  # undecodable file names: keep the escapes
+        except UnicodeEncodeError:  # a surrogate elsewhere (an error text quoting a name)
             line = json.dumps(event, ensure_ascii=True, allow_nan=False).encode("ascii")
         self._write(line + b"\n")
         self._unsynced += 1

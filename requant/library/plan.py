@@ -13,11 +13,13 @@ import json
 import os
 import time
 
+from requant.audio_io.atomic import is_stale_temp
 from requant.audio_io.reader import open_input
 from requant.dsp.quantizer import new_seed
 from requant.errors import OutputError, RequantError, UsageError
 from requant.library.manifest import MANIFEST_NAME, latest_by_source, read_manifest, sha256_file
 from requant.library.settings import derive_seed, settings_id
+from requant.library.summary import INDEX_NAME, SUMMARY_NAME
 from requant.library.task import source_check, task_settings
 from requant.library.tree import output_name, walk_tree
 from requant.recipe import SEED_MAX
@@ -32,15 +34,49 @@ STATE_NAME = "requant-batch.json"
 LOCK_NAME = ".requant-batch.lock"
 
 
-def read_state(dst):
+#: Names the batch keeps for itself at the top of DST.
+_BOOKKEEPING = frozenset({MANIFEST_NAME, STATE_NAME, LOCK_NAME, SUMMARY_NAME, INDEX_NAME})
+
+
+def read_state(dst, problems=None):
+    """The batch state in DST (run seed, claimed outputs), with only fields of the right type.
+
+    A missing file is an empty state. A damaged one (not JSON, nested absurdly
+    deep, a folder, fields of the wrong type) is read as far as it is usable,
+    and a sentence naming it and the way out goes to ``problems``. Losing the
+    claims is safe: outputs not in the manifest are then refused, not replaced.
+    """
+    path = os.path.join(dst, STATE_NAME)
     try:
-        with open(os.path.join(dst, STATE_NAME), "rb") as fh:
+        with open(path, "rb") as fh:
             state = json.loads(fh.read())
-        if isinstance(state, dict):
-            return state
-    except (OSError, ValueError):
-        pass
-    return {}
+    except FileNotFoundError:
+        return {}
+    except (OSError, ValueError, RecursionError) as exc:
+        _state_problem(problems, path, getattr(exc, "strerror", None) or "not valid JSON")
+        return {}
+    if not isinstance(state, dict):
+        _state_problem(problems, path, "not a JSON object")
+        return {}
+    clean = {}
+    seed = state.get("run_seed")
+    if isinstance(seed, int) and not isinstance(seed, bool) and 0 <= seed <= SEED_MAX:
+        clean["run_seed"] = seed
+    elif seed is not None:
+        _state_problem(problems, path, f"run_seed is {seed!r}")
+    claims = state.get("claimed_outputs")
+    if isinstance(claims, list) and all(isinstance(c, str) for c in claims):
+        clean["claimed_outputs"] = claims
+    elif claims is not None:
+        _state_problem(problems, path, "claimed_outputs is not a list of names")
+    return clean
+
+
+def _state_problem(problems, path, what):
+    if problems is not None and not problems:
+        problems.append(f"the batch state {path!r} is damaged ({what}); what it held was "
+                        "ignored (a new run seed may be drawn, and outputs not in the manifest "
+                        "are refused rather than replaced); move it aside to silence this")
 
 
 def _is_stale_temp(name):
@@ -52,13 +88,22 @@ def remove_stale_temps(dst):
     removed = []
     for root, _dirs, files in os.walk(dst, followlinks=False):
         for name in files:
-            if _is_stale_temp(name):
+            if _is_stale_temp(name) and is_stale_temp(os.path.join(root, name)):
                 try:
                     os.unlink(os.path.join(root, name))
                     removed.append(os.path.relpath(os.path.join(root, name), dst))
                 except OSError:
                     pass
     return removed
+
+
+def _bookkeeping_clash(rel_out):
+    """The sentence for an output that would land on the batch's own files in DST, or None."""
+    top = rel_out.split("/", 1)[0]
+    if top in _BOOKKEEPING or (top.startswith(".") and top.startswith(LOCK_NAME)):
+        return (f"{rel_out!r} would be written where the batch keeps its {top!r} in the "
+                "destination; rename that file or folder in the source")
+    return None
 
 
 def _resume_decision(prev, ident, entry, *, sid, rel_out, verify):
@@ -95,7 +140,8 @@ def plan_tasks(src, dst, settings, *, prune, run_seed, sid, overwrite, events, v
     entries, excluded = walk_tree(src, include=settings.include, exclude=settings.exclude,
                                   prune=prune)
     _, converted, identities, seen_outputs = latest_by_source(events)
-    claims = set(read_state(dst).get("claimed_outputs") or ())
+    problems = []
+    claims = set(read_state(dst, problems).get("claimed_outputs") or ())
     ours = seen_outputs | claims
     shared = task_settings(settings)
 
@@ -119,6 +165,11 @@ def plan_tasks(src, dst, settings, *, prune, run_seed, sid, overwrite, events, v
         out_path = os.path.join(dst, *rel_out.split("/"))
         src_path = os.path.join(src, *e["source"].split("/"))
         seed = derive_seed(run_seed, e["source"])
+        clash = _bookkeeping_clash(rel_out)
+        if clash:
+            parent_events.append({"source": e["source"], "output": rel_out, "status": "failed",
+                                  "seed": seed, "error": clash})
+            continue
         if others:
             parent_events.append({
                 "source": e["source"], "output": rel_out, "status": "failed", "seed": seed,
@@ -145,7 +196,7 @@ def plan_tasks(src, dst, settings, *, prune, run_seed, sid, overwrite, events, v
                       "expect_source": expect_source,
                       "reason": reason, "note": e["note"], "size": e["size"],
                       "previous": prev if expect else None})
-    info = {"entries": len(entries), "excluded": excluded, "claims": claims}
+    info = {"entries": len(entries), "excluded": excluded, "claims": claims, "notes": problems}
     return tasks, parent_events, info
 
 

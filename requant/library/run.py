@@ -149,8 +149,8 @@ class _Run:
         if stale:
             self.notes.append(f"removed {len(stale)} temporary file(s) left by an interrupted run")
         if bad_lines:
-            self.notes.append(f"the manifest had {bad_lines} unreadable line(s) (a run was cut "
-                              "off); they were ignored")
+            self.notes.append(bad_lines.sentence(self.manifest_path))
+        self.notes.extend(self.info["notes"])
 
     def _claim(self, claims):
         try:

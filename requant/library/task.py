@@ -8,7 +8,6 @@ process or on a cluster.
 import datetime as _dt
 import os
 import socket
-import sys
 import threading
 import time
 
@@ -165,12 +164,6 @@ def _converted_with_identity(src, convert):
 
 def _convert_one(task):
     src, out = task["source_path"], task["output_path"]
-    for path in (src, out):
-        try:
-            path.encode(sys.getfilesystemencoding())
-        except UnicodeEncodeError:
-            raise InputError(f"{path!r}: the name is not valid {sys.getfilesystemencoding()}, "
-                             "so the audio library cannot open it; rename the file") from None
     expect = task.get("expect_sha256")
     reason = task.get("reason")
     changed = source_check(task) if expect else None

@@ -17,19 +17,32 @@ What :func:`make_listening_kit` writes into ``OUTDIR``
 ``mK_<method>_error.wav`` (error renders)
     Output minus input, faded like the excerpt, raised by one stated gain
     (the same for every method, so that their levels can be compared; see
-    :func:`~requant.listening.levels.error_render_gain_db`) and then hard-limited so that no sample
-    exceeds :data:`~requant.listening.levels.CAP_DBFS` (-6 dBFS). 32-bit float.
+    :func:`~requant.listening.levels.error_render_gain_db`, from the fewest bits
+    of the kit) and then hard-limited so that no sample exceeds
+    :data:`~requant.listening.levels.CAP_DBFS` (-6 dBFS). 32-bit float.
 ``original_quiet.wav``, ``mK_<method>_quiet.wav`` (with ``quiet``)
     The quietest non-silent stretch of the source
-    (:func:`~requant.listening.levels.find_quiet_passage`),
-    faded, requantized with each method, then raised by a stated gain
-    (:func:`~requant.listening.levels.quiet_gain_db`) *after* requantization and hard-limited at the
-    same cap. 32-bit float.
+    (:func:`~requant.listening.levels.find_quiet_passage`), faded,
+    requantized with each method, then raised *after* requantization: the
+    original by a stated gain (:func:`~requant.listening.levels.quiet_gain_db`),
+    each render by the same gain unless that would leave it more than 1 dB
+    from the raised original, in which case by its own stated gain, to the
+    original's loudness (:func:`~requant.listening.render.quiet_render_gain_db`);
+    hard-limited at the same cap. 32-bit float.
 ``figures.json``
     Settings, each method's figures (from :func:`requant.dsp.analysis.analyze_arrays`),
-    the level-match check, gains, cap and limiter counts.
+    loudness of every file, gains, cap and limiter counts, and the
+    comparisons with the level plan of each
+    (:func:`~requant.listening.levels.plan_levels`).
 ``index.html``
     One page, no server, no network: open it from the file system.
+
+Loudness: within one comparison every player the listener can switch between
+plays within 1 dB of the others (ITU-R BS.1770-4 integrated loudness over the
+excerpt, or RMS where that is undefined): as written when they already are,
+otherwise with a stated playback attenuation. Error renders are the
+exception, their loudness being the point: the page states the difference
+before they play and fades when switching to or from them.
 
 Levels are in dBFS per AES17 (a full-scale sine is 0 dBFS): a mean square
 ``p`` is ``10*log10(2*p)`` dBFS; peaks are ``20*log10(|x|)`` dBFS.
@@ -60,23 +73,28 @@ from requant.listening.excerpt import (
 )
 from requant.listening.levels import (
     CAP_DBFS,
+    CROSSFADE_SECONDS,
     ERROR_TARGET_DBFS,
     LEVEL_MATCH_FACTOR,
+    LOUDNESS_TOLERANCE_DB,
     MAX_GAIN_DB,
+    MAX_MATCH_DB,
     QUIET_CHUNK_SECONDS,
+    STATED_FADE_SECONDS,
     apply_fades,
     cap_value,
     error_render_gain_db,
     fade_envelope,
     find_quiet_in_file,
+    measure_level,
+    plan_levels,
     quiet_floor_dbfs,
     rounding_noise_dbfs,
 )
-from requant.listening.methods import DEFAULT_METHODS, parse_methods
+from requant.listening.methods import plan_methods
 from requant.listening.page import render_page
 from requant.listening.render import (
     Material,
-    container_bits,
     jsonable,
     quiet_setup,
     read_excerpt,
@@ -87,6 +105,7 @@ from requant.listening.render import (
 from requant.recipe import Recipe
 
 __all__ = ["make_listening_kit"]
+
 
 @dataclass
 class _Read:
@@ -144,16 +163,16 @@ def _read_source(src, excerpt, *, bits, quiet_seconds):
                      found, quiet_x, floor)
 
 
-def _quiet_passage(got, *, bits, gain_db, quiet_seconds):
+def _quiet_passage(got, *, quiet_seconds):
     """(quiet material or None, the raised original or None, the kit's quiet_passage entry)."""
     if got.found is not None:
-        qx, q_gain, q_raised, q_figs = quiet_setup(got.quiet_x, got.rate, bits=bits,
-                                                   error_gain_db=gain_db)
+        qx, q_gain, q_raised, q_figs = quiet_setup(got.quiet_x, got.rate)
         info = {"found": True, "start_s": got.found[0] / got.rate,
                 "duration_s": got.found[1] / got.rate, "start_frame": got.found[0],
                 "frames": got.found[1], "silence_floor_dbfs": got.floor,
                 "original_file": "original_quiet.wav", **q_figs}
-        return (qx, q_gain), q_raised, info
+        original = {"lufs": q_figs["lufs"], "rms_dbfs": q_figs["rms_dbfs"]}
+        return (qx, q_gain, original), q_raised, info
     if quiet_seconds is not None:
         return None, None, {
             "found": False, "silence_floor_dbfs": got.floor,
@@ -163,30 +182,99 @@ def _quiet_passage(got, *, bits, gain_db, quiet_seconds):
     return None, None, None
 
 
-def _render_methods(methods, base, coeffs, *, names, tmp, material, q_info):
-    """Every method's files and figures row, and the page's comparisons."""
-    rows, comparisons = [], []
+def _players(rows, names, orig_levels, q_info):
+    """Every file the page plays, by player id, with its loudness and RMS as written."""
+    def entry(file, kind, label, levels, method=None):
+        return {"file": file, "kind": kind, "label": label, "method": method,
+                "lufs": levels["lufs"], "rms_dbfs": levels["rms_dbfs"]}
+
+    players = {"original": entry(names["original"], "original", "Original", orig_levels)}
+    if q_info is not None and q_info["found"]:
+        players["original-quiet"] = entry(names["original_quiet"], "quiet-original",
+                                          "Original, raised", q_info)
+    for row in rows:
+        k, label = row["id"], row["method"]
+        players[k] = entry(row["file"], "program", label, row, k)
+        players[f"{k}-error"] = entry(row["error_file"], "error", f"Error of {label}",
+                                      row["error_render"], k)
+        if row["quiet"] is not None:
+            players[f"{k}-quiet"] = entry(row["quiet"]["file"], "quiet", f"{label}, raised",
+                                          row["quiet"], k)
+    return players
+
+
+def _comparison(cid, label, *, kind, passage, players, a, b, extra=()):
+    """One comparison: its players (A, B, then stated extras) and how each plays."""
+    spec = [(a, False, "A"), (b, False, "B")] + [(e, True, "extra") for e in extra]
+    plan = plan_levels([{"player": pid, "lufs": players[pid]["lufs"],
+                         "rms_dbfs": players[pid]["rms_dbfs"], "stated": stated}
+                        for pid, stated, _ in spec])
+    for row, (_, _, role) in zip(plan["players"], spec):
+        row["role"] = role
+    return {"id": cid, "label": label, "kind": kind, "passage": passage,
+            "a": players[a]["file"], "b": players[b]["file"], **plan}
+
+
+def _comparisons(rows, pairs, players, q_info):
+    """Each method against the original, then each pair; the quiet passage after each."""
+    quiet = q_info is not None and q_info["found"]
+    out = []
+    for row in rows:
+        k, m = row["id"], row["method"]
+        out.append(_comparison(k, f"original vs {m}", kind="original", passage="excerpt",
+                               players=players, a="original", b=k, extra=[f"{k}-error"]))
+        if quiet:
+            out.append(_comparison(f"{k}q", f"original vs {m}, quiet passage", kind="original",
+                                   passage="quiet", players=players, a="original-quiet",
+                                   b=f"{k}-quiet"))
+    for n, (i, j) in enumerate(pairs, 1):
+        a, b = rows[i], rows[j]
+        out.append(_comparison(f"p{n}", f"{a['method']} vs {b['method']}", kind="pair",
+                               passage="excerpt", players=players, a=a["id"], b=b["id"]))
+        if quiet:
+            out.append(_comparison(f"p{n}q", f"{a['method']} vs {b['method']}, quiet passage",
+                                   kind="pair", passage="quiet", players=players,
+                                   a=f"{a['id']}-quiet", b=f"{b['id']}-quiet"))
+    return out
+
+
+def _render_methods(methods, base, coeffs, *, names, tmp, material):
+    """Every method's files and figures row."""
+    rows = []
     for i, m in enumerate(methods, 1):
         recipe = m.recipe(base)
-        row = render_one(m, recipe, coeffs[m.shaping], key=f"m{i}", files=(names, tmp),
-                         material=material)
-        rows.append(row)
-        comparisons.append({"id": row["id"], "label": f"original vs {m.label}",
-                            "a": names["original"], "b": row["file"]})
-        if material.quiet is not None:
-            comparisons.append({"id": f"{row['id']}q",
-                                "label": (f"original vs {m.label}, quiet passage "
-                                          f"(+{q_info['gain_db']:.1f} dB)"),
-                                "a": names["original_quiet"], "b": row["quiet"]["file"]})
-    return rows, comparisons
+        rows.append(render_one(m, recipe, coeffs[m.shaping], key=f"m{i}", files=(names, tmp),
+                               material=material))
+    return rows
 
 
-def _kit_figures(src, got, base, *, names, gain_db, rows, comparisons, q_info):
-    """The kit's figures, as written to ``figures.json`` and shown by the page."""
+def _loudness_rule():
+    return {
+        "measure": ("ITU-R BS.1770-4 integrated loudness over the whole file (LUFS); RMS "
+                    "(dBFS, AES17) where the loudness is undefined"),
+        "tolerance_db": LOUDNESS_TOLERANCE_DB,
+        "max_match_db": MAX_MATCH_DB,
+        "rule": (f"within one comparison every player plays within {LOUDNESS_TOLERANCE_DB:g} dB "
+                 "of the others: as written when it already does, otherwise turned down by a "
+                 f"stated playback gain (at most {MAX_MATCH_DB:g} dB); error renders keep "
+                 "their level, and the page states their difference before they play and "
+                 "fades when switching to or from them"),
+        "crossfade_s": CROSSFADE_SECONDS,
+        "stated_fade_s": STATED_FADE_SECONDS,
+    }
+
+
+def _kit_figures(src, got, base, *, names, gain_db, error_bits, parts, hide_answers):
+    """The kit's figures, as written to ``figures.json`` and shown by the page.
+
+    ``parts`` is ``(rows, comparisons, players, pairs, q_info)``.
+    """
+    rows, comparisons, players, pairs, q_info = parts
     bits, rate = base.bits, got.rate
+    word_lengths = sorted({row["bits"] for row in rows})
     return jsonable({
         "format": "requant-listening-kit",
-        "version": 1,
+        "version": 2,
         "requant_version": __version__,
         "created": _dt.datetime.now(_dt.UTC).replace(microsecond=0).isoformat(),
         "kit_id": secrets.token_hex(8),
@@ -197,39 +285,50 @@ def _kit_figures(src, got, base, *, names, gain_db, rows, comparisons, q_info):
                     "fade_s": got.fade_frames / rate, "fade_frames": got.fade_frames,
                     "fade_shape": "raised cosine, sin² over each fade"},
         "bits": bits,
+        "word_lengths": word_lengths,
         "seed": base.seed,
         "files": {"original": names["original"], "page": names["page"],
                   "figures": names["figures"]},
         "formats": {
             "original": "32-bit float WAV: the faded excerpt exactly as requantized",
-            "program": (f"{container_bits(bits)}-bit integer WAV holding exactly "
-                        f"the {bits}-bit codes (no gain, no limiting)"),
+            "program": ("integer WAV (16-bit container up to 16 bits, 24-bit up to 24, "
+                        "32-bit above) holding exactly the requantized codes (no gain, no "
+                        "limiting)"),
             "raised": "32-bit float WAV (error renders and quiet passage)",
         },
         "cap_dbfs": CAP_DBFS,
         "cap_value": float(cap_value()),
         "error_gain": {
             "gain_db": gain_db,
-            "rule": (f"plain rounding noise at {bits} bits "
-                     f"({rounding_noise_dbfs(bits):.1f} dBFS RMS) plays at "
+            "bits": error_bits,
+            "rule": (f"plain rounding noise at {error_bits} bits "
+                     f"({rounding_noise_dbfs(error_bits):.1f} dBFS RMS) plays at "
                      f"{ERROR_TARGET_DBFS:.1f} dBFS RMS; at most {MAX_GAIN_DB:.0f} dB; "
-                     "one gain for every method"),
+                     "one gain for every method"
+                     + ("" if len(word_lengths) == 1 else
+                        f", set by the fewest bits of the kit ({error_bits})")),
         },
-        "level_match": {
+        "consistency": {
             "rule": (f"|RMS(render) - RMS(original)| <= {LEVEL_MATCH_FACTOR:g} x the "
-                     "predicted error RMS; renders get no gain, so they differ from the "
+                     "predicted error RMS: renders get no gain, so they differ from the "
                      "original only by the requantization error"),
-            "held": all(row["level"]["matched"] for row in rows),
+            "held": all(row["level"]["consistent"] for row in rows),
         },
+        "loudness": {**_loudness_rule(),
+                     "held": all(c["matched"] for c in comparisons)},
         "methods": rows,
+        "pairs": [[rows[i]["id"], rows[j]["id"]] for i, j in pairs],
         "quiet_passage": q_info,
+        "players": players,
         "comparisons": comparisons,
+        "page": {"hide_answers": bool(hide_answers)},
     })
 
 
 def make_listening_kit(src: str | os.PathLike, outdir: str | os.PathLike, *,
-                       recipe: Recipe | None = None, methods: Sequence[str] = DEFAULT_METHODS,
-                       excerpt: Excerpt | None = None, quiet: float | None = None,
+                       recipe: Recipe | None = None, methods: Sequence[str] | None = None,
+                       pairs: Sequence[str] = (), excerpt: Excerpt | None = None,
+                       quiet: float | None = None, hide_answers: bool = False,
                        overwrite: bool = False) -> dict:
     """Render a listening kit: every method on one excerpt, and the page.
 
@@ -240,17 +339,27 @@ def make_listening_kit(src: str | os.PathLike, outdir: str | os.PathLike, *,
     outdir : path
         Created if missing. Existing kit files are replaced only with ``overwrite``.
     recipe : Recipe, optional
-        What every method shares: the word length (default 16), the seed
-        (drawn fresh when None, the same for every method) and the ``hearing``
-        design (when its shaping is ``hearing``). Each method sets its own
-        quantizer, dither and shaping kind (:meth:`Method.recipe`).
-    methods : sequence of str
+        What every method shares: the word length (default 16; a method may
+        name its own, ``tpdf@12``), the seed (drawn fresh when None, the same
+        for every method) and the ``hearing`` design (when its shaping is
+        ``hearing``). Each method sets its own quantizer, dither and shaping
+        kind (:meth:`Method.recipe`).
+    methods : sequence of str, optional
         Method strings (:func:`~requant.listening.methods.parse_method`).
+        Default: :data:`~requant.listening.methods.DEFAULT_METHODS`, or only
+        the methods ``pairs`` name when pairs are given.
+    pairs : sequence of str
+        Pairs of methods to compare with each other, openly and blind:
+        ``'tpdf,tpdf+hearing'``, ``'tpdf@12,tpdf@16'``
+        (:func:`~requant.listening.methods.plan_methods`).
     excerpt : Excerpt, optional
         Start and length of the excerpt (default: 30 s from the start).
     quiet : float, s, 0.5..60, optional
         Also render the quietest non-silent stretch of this length from the
         whole source, raised after requantization.
+    hide_answers : bool, default False
+        The page starts with answers and the running score hidden until the
+        end of a session (the listener can change it before the first trial).
     overwrite : bool, default False
 
     Returns
@@ -273,7 +382,11 @@ def make_listening_kit(src: str | os.PathLike, outdir: str | os.PathLike, *,
     if not isinstance(base, Recipe):
         raise TypeError(f"recipe must be a requant.Recipe, not {type(base).__name__}")
     base = base.with_seed(new_seed()) if base.seed is None else base
-    parsed = parse_methods(list(methods))
+    if isinstance(pairs, str):
+        pairs = [pairs]
+    parsed, pair_index = plan_methods(None if methods is None else list(methods), list(pairs),
+                                      base.bits)
+    all_bits = [m.recipe(base).bits for m in parsed]
     excerpt = Excerpt() if excerpt is None else excerpt
     if quiet is not None:
         quiet = check_seconds("quiet_seconds", quiet, low=MIN_EXCERPT_SECONDS, high=60.0)
@@ -284,10 +397,9 @@ def make_listening_kit(src: str | os.PathLike, outdir: str | os.PathLike, *,
         check_outputs([src], list(_kit_names(parsed, outdir, False)[1].values()),
                       overwrite=overwrite)
 
-    got = _read_source(src, excerpt, bits=base.bits, quiet_seconds=quiet)
-    gain_db = error_render_gain_db(base.bits)
-    q_material, q_raised, q_info = _quiet_passage(got, bits=base.bits, gain_db=gain_db,
-                                                  quiet_seconds=quiet)
+    got = _read_source(src, excerpt, bits=max(all_bits), quiet_seconds=quiet)
+    gain_db = error_render_gain_db(min(all_bits))
+    q_material, q_raised, q_info = _quiet_passage(got, quiet_seconds=quiet)
     names, finals = _kit_names(parsed, outdir, q_material is not None)
     os.makedirs(outdir, exist_ok=True)
     check_outputs([src], list(finals.values()), overwrite=overwrite)
@@ -301,10 +413,13 @@ def make_listening_kit(src: str | os.PathLike, outdir: str | os.PathLike, *,
         material = Material(x=got.x, orig=orig, rate=got.rate,
                             env=fade_envelope(got.frames, fade_frames=got.fade_frames)[:, None],
                             gain=10.0 ** (gain_db / 20.0), quiet=q_material)
-        rows, comparisons = _render_methods(parsed, base, coeffs, names=names, tmp=tmp,
-                                            material=material, q_info=q_info)
-        kit = _kit_figures(src, got, base, names=names, gain_db=gain_db, rows=rows,
-                           comparisons=comparisons, q_info=q_info)
+        rows = _render_methods(parsed, base, coeffs, names=names, tmp=tmp, material=material)
+        players = _players(rows, names, measure_level(orig, got.rate), q_info)
+        comparisons = _comparisons(rows, pair_index, players, q_info)
+        kit = _kit_figures(src, got, base, names=names, gain_db=gain_db,
+                           error_bits=min(all_bits),
+                           parts=(rows, comparisons, players, pair_index, q_info),
+                           hide_answers=hide_answers)
         with open(tmp["figures"], "w", encoding="utf-8") as fh:
             json.dump(kit, fh, indent=2, allow_nan=False)
             fh.write("\n")

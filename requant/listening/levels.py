@@ -1,5 +1,6 @@
 """Levels for listening: fades, the cap, gains for error renders and quiet passages,
-the level-match check, and the search for the quietest passage.
+loudness and the level plan of a comparison, the check that a render differs
+from the original only by its error, and the search for the quietest passage.
 
 Levels are in dBFS per AES17 (a full-scale sine is 0 dBFS): a mean square ``p``
 is ``10*log10(2*p)`` dBFS; peaks are ``20*log10(|x|)`` dBFS.
@@ -9,39 +10,34 @@ import math
 
 import numpy as np
 
+from requant.dsp.cap import (
+    CAP_DBFS,
+    ERROR_TARGET_DBFS,
+    MAX_GAIN_DB,
+    cap_value,
+    hard_limit,
+    noise_dbfs,
+    raise_to_target_db,
+)
 from requant.errors import InputError
 from requant.listening.excerpt import QUIET_SECONDS
 
 __all__ = ["CAP_DBFS", "FADE_SECONDS", "ERROR_TARGET_DBFS", "MAX_GAIN_DB", "QUIET_TARGET_DBFS",
            "QUIET_SECONDS", "QUIET_FLOOR_BELOW_NOISE_DB", "QUIET_CHUNK_SECONDS",
-           "LEVEL_MATCH_FACTOR", "cap_value", "fade_envelope", "apply_fades", "hard_limit",
+           "LEVEL_MATCH_FACTOR", "LOUDNESS_TOLERANCE_DB", "MAX_MATCH_DB", "CROSSFADE_SECONDS",
+           "STATED_FADE_SECONDS", "cap_value", "fade_envelope", "apply_fades", "hard_limit",
            "rounding_noise_dbfs", "error_render_gain_db", "quiet_gain_db", "level_match",
-           "quiet_floor_dbfs", "find_quiet_passage", "db_power", "db_peak",
-           "chunk_mean_squares", "find_quiet_in_file"]
-
-
-#: Hard limit on every raised render (error renders, quiet passage), dBFS sample peak.
-CAP_DBFS = -6.0
+           "measure_level", "level_in", "plan_levels", "quiet_floor_dbfs",
+           "find_quiet_passage", "db_power", "db_peak", "chunk_mean_squares",
+           "find_quiet_in_file"]
 
 
 #: Length of the raised-cosine fade at each edge of every render, s.
 FADE_SECONDS = 0.05
 
 
-#: Level at which plain rounding noise (Δ²/12) of the target word length plays in
-#: the error renders, dBFS RMS. Other methods play above or below it by their
-#: own noise power, so their loudness can be compared.
-ERROR_TARGET_DBFS = -40.0
-
-
-#: Most gain applied to any render, dB.
-MAX_GAIN_DB = 120.0
-
-
 #: Level the loudest tenth of a second of the quiet passage is raised towards, dBFS RMS.
 QUIET_TARGET_DBFS = -24.0
-
-
 
 
 #: A 0.1 s chunk counts as silent below the target's rounding-noise RMS minus this, dB.
@@ -52,8 +48,27 @@ QUIET_FLOOR_BELOW_NOISE_DB = 20.0
 QUIET_CHUNK_SECONDS = 0.1
 
 
-#: Level match holds when |RMS(render) - RMS(original)| <= this × predicted error RMS.
+#: A render differs from the original only by its error when
+#: |RMS(render) - RMS(original)| <= this × predicted error RMS.
 LEVEL_MATCH_FACTOR = 2.0
+
+
+#: Players one can switch between within a comparison play within this of each other:
+#: ITU-R BS.1770-4 integrated loudness, or RMS where that is undefined, dB.
+LOUDNESS_TOLERANCE_DB = 1.0
+
+
+#: Most attenuation the page applies to bring players within the tolerance, dB; players
+#: further apart keep their levels, and the page states the difference.
+MAX_MATCH_DB = 40.0
+
+
+#: Crossfade when switching between players of matched loudness, s.
+CROSSFADE_SECONDS = 0.04
+
+
+#: Fade when switching to or from a player whose level differs by a stated amount, s.
+STATED_FADE_SECONDS = 0.6
 
 
 def db_power(ms):
@@ -63,22 +78,6 @@ def db_power(ms):
 
 def db_peak(peak):
     return None if peak <= 0.0 else 20.0 * math.log10(peak)
-
-
-def cap_value(cap_dbfs=CAP_DBFS):
-    """The largest float32 magnitude that does not exceed ``cap_dbfs``.
-
-    Returns
-    -------
-    numpy.float32
-        ``10**(cap_dbfs/20)`` rounded down to float32, so that the written
-        32-bit float samples never read above the cap.
-    """
-    exact = 10.0 ** (cap_dbfs / 20.0)
-    c = np.float32(exact)
-    while float(c) > exact:
-        c = np.nextafter(c, np.float32(0.0))
-    return c
 
 
 def fade_envelope(frames, *, fade_frames):
@@ -129,30 +128,12 @@ def apply_fades(x, sample_rate, *, fade_seconds=FADE_SECONDS):
     return np.ascontiguousarray(x * w[:, None], dtype=np.float32), fade_frames
 
 
-def hard_limit(x, *, cap_dbfs=CAP_DBFS):
-    """Clip to the cap and return float32 samples whose peak is <= the cap.
-
-    Returns
-    -------
-    y : ndarray, float32
-    limited : int
-        Samples that had to be clipped.
-    """
-    c = cap_value(cap_dbfs)
-    x = np.asarray(x, dtype=np.float64)
-    limited = int(np.count_nonzero(np.abs(x) > float(c)))
-    y = np.clip(x, -float(c), float(c)).astype(np.float32)
-    np.clip(y, -c, c, out=y)  # the cast could round a clipped value up
-    return y, limited
-
-
 def rounding_noise_dbfs(bits):
     """Level of plain rounding noise (Δ²/12) at ``bits``, dBFS RMS (AES17).
 
     16 bits: -98.09 dBFS, the familiar 6.02·N + 1.76 dB below a full-scale sine.
     """
-    delta = 2.0 ** -(bits - 1)
-    return db_power(delta * delta / 12.0)
+    return noise_dbfs(1.0 / 12.0, bits)
 
 
 def error_render_gain_db(bits, *, target_dbfs=ERROR_TARGET_DBFS, max_gain_db=MAX_GAIN_DB):
@@ -170,11 +151,11 @@ def error_render_gain_db(bits, *, target_dbfs=ERROR_TARGET_DBFS, max_gain_db=MAX
         ``min(target_dbfs - rounding_noise_dbfs(bits), max_gain_db)``. At
         few bits this is negative: the error is loud already and is turned down.
     """
-    return min(target_dbfs - rounding_noise_dbfs(bits), max_gain_db)
+    return raise_to_target_db(1.0 / 12.0, bits, target_dbfs=target_dbfs, max_gain_db=max_gain_db)
 
 
-def quiet_gain_db(loudest_dbfs, *, error_gain_db, target_dbfs=QUIET_TARGET_DBFS):
-    """Gain applied to the quiet passage after requantization, dB.
+def quiet_gain_db(loudest_dbfs, *, target_dbfs=QUIET_TARGET_DBFS, max_gain_db=MAX_GAIN_DB):
+    """Gain applied to the original quiet passage, dB.
 
     Parameters
     ----------
@@ -182,19 +163,103 @@ def quiet_gain_db(loudest_dbfs, *, error_gain_db, target_dbfs=QUIET_TARGET_DBFS)
         Level of the loudest chunk (:data:`QUIET_CHUNK_SECONDS`) of the passage.
         A fade tail spans tens of dB; its loudest part sets the gain so that
         the limiter has nothing to do in normal cases.
-    error_gain_db : float, dB
-        The error renders' gain (:func:`error_render_gain_db`).
     target_dbfs : float, dBFS RMS
+    max_gain_db : float, dB
 
     Returns
     -------
     float, dB
-        ``target_dbfs - loudest_dbfs``, but never more than ``error_gain_db``
-        (the requantization noise then plays no louder than in the error
-        renders) and never below 0 (the passage is never turned down).
+        ``target_dbfs - loudest_dbfs``, never more than ``max_gain_db`` and
+        never below 0 (the passage is never turned down). Each render of the
+        passage starts from the same gain and is then brought to the raised
+        original's loudness (:func:`plan_levels`, ``render.py``).
     """
-    want = target_dbfs - loudest_dbfs
-    return max(0.0, min(want, error_gain_db, MAX_GAIN_DB))
+    return max(0.0, min(target_dbfs - loudest_dbfs, max_gain_db))
+
+
+def measure_level(x, sample_rate):
+    """Loudness and RMS of a signal as it will play.
+
+    Parameters
+    ----------
+    x : ndarray, (frames, channels), full scale 1.0
+    sample_rate : float, Hz
+
+    Returns
+    -------
+    dict
+        ``lufs``: ITU-R BS.1770-4 integrated loudness, LUFS, None when undefined
+        (:func:`requant.dsp.loudness.integrated_loudness`, every channel weighted
+        1.0); ``rms_dbfs``: AES17 RMS of all channels, None for digital silence.
+    """
+    from requant.dsp.loudness import integrated_loudness
+
+    x = np.asarray(x, dtype=np.float64)
+    ms = float(np.mean(x * x)) if x.size else 0.0
+    return {"lufs": integrated_loudness(x, sample_rate) if x.size else None,
+            "rms_dbfs": db_power(ms)}
+
+
+def level_in(levels, measure):
+    """The value of a :func:`measure_level` result in ``measure`` ('LUFS' or 'dBFS RMS')."""
+    return levels["lufs"] if measure == "LUFS" else levels["rms_dbfs"]
+
+
+def plan_levels(players, *, tolerance_db=LOUDNESS_TOLERANCE_DB, max_match_db=MAX_MATCH_DB):
+    """How the players of one comparison play, so that none jumps in loudness.
+
+    The rule: every player one can switch between plays within
+    ``tolerance_db`` of the others, or its difference is stated before it
+    plays (and the page fades when switching to or from it). Players already
+    within the tolerance play as written; otherwise each is turned down to
+    the quietest (playback attenuation, never more than ``max_match_db``).
+
+    Parameters
+    ----------
+    players : sequence of dict
+        In order, the first being the reference: ``player`` (id), ``lufs``,
+        ``rms_dbfs`` (:func:`measure_level`) and ``stated`` (True for a player
+        whose difference is the point, like an error render: never matched,
+        always stated).
+
+    Returns
+    -------
+    dict
+        ``measure``: 'LUFS' when every non-silent player has a loudness, else
+        'dBFS RMS'; ``tolerance_db``; ``matched``: whether every player not
+        stated plays within the tolerance; ``spread_db``: the largest
+        difference between those players as written; ``players``: per player
+        ``player``, ``level`` (as written), ``gain_db`` (applied when playing,
+        <= 0), ``played`` (level + gain), ``difference_db`` (played minus the
+        reference as played; None if either is silent) and ``state``
+        ('matched', 'stated' or 'silent').
+    """
+    players = list(players)
+    live = [p for p in players if p["rms_dbfs"] is not None]
+    measure = "LUFS" if all(p["lufs"] is not None for p in live) else "dBFS RMS"
+    core = [p for p in live if not p["stated"]]
+    vals = [level_in(p, measure) for p in core]
+    spread = (max(vals) - min(vals)) if vals else 0.0
+    matched = spread <= tolerance_db
+    gains = dict.fromkeys((p["player"] for p in players), 0.0)
+    if not matched and spread <= max_match_db:
+        for p, v in zip(core, vals):
+            gains[p["player"]] = min(vals) - v
+        matched = True
+    rows = []
+    for p in players:
+        level = level_in(p, measure)
+        state = ("silent" if level is None else
+                 "stated" if p["stated"] or not matched else "matched")
+        rows.append({"player": p["player"], "level": level, "gain_db": gains[p["player"]],
+                     "played": None if level is None else level + gains[p["player"]],
+                     "state": state})
+    ref = rows[0]["played"]
+    for r in rows:
+        r["difference_db"] = (None if r["played"] is None or ref is None
+                              else r["played"] - ref)
+    return {"measure": measure, "tolerance_db": tolerance_db, "matched": matched,
+            "spread_db": spread, "players": rows}
 
 
 def level_match(x, y, *, bits, predicted_power_lsb2, factor=LEVEL_MATCH_FACTOR):
@@ -218,7 +283,10 @@ def level_match(x, y, *, bits, predicted_power_lsb2, factor=LEVEL_MATCH_FACTOR):
     dict
         ``original_rms_dbfs``, ``render_rms_dbfs``, ``difference_db``
         (render minus original), ``difference_lsb`` (of RMS), ``tolerance_lsb``,
-        ``tolerance_db`` (the largest level rise allowed), ``matched``.
+        ``tolerance_db`` (the largest level rise allowed), ``consistent``
+        (the difference is within the tolerance). This is not a loudness
+        match: at few bits the error itself makes a render louder
+        (:func:`plan_levels` decides how renders play).
     """
     x = np.asarray(x, dtype=np.float64)
     y = np.asarray(y, dtype=np.float64)
@@ -235,7 +303,7 @@ def level_match(x, y, *, bits, predicted_power_lsb2, factor=LEVEL_MATCH_FACTOR):
         "difference_lsb": diff / delta,
         "tolerance_lsb": tol / delta,
         "tolerance_db": 20.0 * math.log10(1.0 + tol / rx) if rx > 0 else None,
-        "matched": bool(abs(diff) <= tol),
+        "consistent": bool(abs(diff) <= tol),
     }
 
 

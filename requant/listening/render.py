@@ -9,6 +9,8 @@ from requant.dsp.analysis import analyze_arrays
 from requant.dsp.quantizer import Requantizer, predicted_error_power_lsb2
 from requant.errors import InputError, OutputError
 from requant.listening.levels import (
+    LOUDNESS_TOLERANCE_DB,
+    MAX_GAIN_DB,
     QUIET_CHUNK_SECONDS,
     QUIET_TARGET_DBFS,
     apply_fades,
@@ -16,12 +18,14 @@ from requant.listening.levels import (
     db_peak,
     db_power,
     hard_limit,
+    level_in,
     level_match,
+    measure_level,
     quiet_gain_db,
 )
 
 __all__ = ["container_bits", "render_method", "read_excerpt", "write_wav", "verify", "jsonable",
-           "quiet_setup", "Material", "render_one"]
+           "quiet_setup", "quiet_render_gain_db", "Material", "render_one"]
 
 
 def container_bits(bits):
@@ -122,13 +126,25 @@ def jsonable(obj):
     return obj
 
 
-def quiet_setup(quiet_x, rate, *, bits, error_gain_db):
-    """Fade the quiet passage, choose its gain, raise the original. Returns (qx, gain, info)."""
+def quiet_setup(quiet_x, rate):
+    """Fade the quiet passage, choose its gain, raise the original.
+
+    Returns
+    -------
+    qx : ndarray, float32
+        The faded passage, as requantized.
+    gain : float
+        The original's linear gain.
+    raised : ndarray, float32
+        The raised, capped original, as written.
+    info : dict
+        Its figures for ``figures.json``.
+    """
     qx, _ = apply_fades(quiet_x, rate)
     chunk = max(1, int(round(QUIET_CHUNK_SECONDS * rate)))
     chunks = chunk_mean_squares(quiet_x, chunk)
     loudest = db_power(float(np.max(chunks)))
-    g_db = quiet_gain_db(loudest, error_gain_db=error_gain_db)
+    g_db = quiet_gain_db(loudest)
     g = 10.0 ** (g_db / 20.0)
     raised, limited = hard_limit(qx.astype(np.float64) * g)
     info = {
@@ -136,10 +152,15 @@ def quiet_setup(quiet_x, rate, *, bits, error_gain_db):
         "loudest_chunk_dbfs": loudest,
         "quietest_chunk_dbfs": db_power(float(np.min(chunks))),
         "gain_db": g_db,
-        "gain_rule": (f"the loudest {QUIET_CHUNK_SECONDS:g} s plays at {QUIET_TARGET_DBFS:.0f} "
-                      "dBFS RMS; never more than the error renders' gain, never below 0 dB"),
+        "gain_rule": (f"the loudest {QUIET_CHUNK_SECONDS:g} s of the original plays at "
+                      f"{QUIET_TARGET_DBFS:.0f} dBFS RMS (never below 0 dB, at most "
+                      f"{MAX_GAIN_DB:.0f} dB); each render starts from the same gain and, if "
+                      f"it would then play more than {LOUDNESS_TOLERANCE_DB:g} dB louder or "
+                      "quieter than the raised original, is raised by its own stated gain "
+                      "instead, to the original's loudness"),
         "original_limited_samples": limited,
         "original_peak_dbfs": db_peak(float(np.max(np.abs(raised)))),
+        **measure_level(raised, rate),
     }
     return qx, g, raised, info
 
@@ -159,8 +180,9 @@ class Material:
         The fade envelope, (frames, 1).
     gain : float
         The error renders' linear gain.
-    quiet : (ndarray, float) or None
-        The faded quiet passage and its linear gain, when rendered.
+    quiet : (ndarray, float, dict) or None
+        The faded quiet passage, the original's linear gain and the raised
+        original's :func:`~requant.listening.levels.measure_level`, when rendered.
     """
 
     x: np.ndarray
@@ -186,16 +208,19 @@ def render_one(method, recipe, coeffs, *, key, files, material):
     del codes
     y = verify(tmp[key], y)
     level = level_match(mat.orig, y, bits=bits, predicted_power_lsb2=predicted)
+    loudness = measure_level(y, mat.rate)
     del y
     err_r, limited = hard_limit(err * mat.env * mat.gain)
     write_wav(tmp[f"{key}_error"], err_r, mat.rate, "FLOAT")
     peak = float(np.max(np.abs(err_r))) if err_r.size else 0.0
+    err_loudness = measure_level(err_r, mat.rate)
     del err_r
     figures = _analyze(mat.orig, err, mat.rate, recipe, coeffs)
     del err
     row = {
         "id": key,
         "method": method.label,
+        "bits": bits,
         "quantizer": method.quantizer,
         "dither": method.dither,
         "shaping": method.shaping,
@@ -206,11 +231,13 @@ def render_one(method, recipe, coeffs, *, key, files, material):
         "predicted_error_dbfs": db_power(predicted * 4.0 ** -(bits - 1)),
         "figures": figures,
         "level": level,
+        **loudness,
         "error_render": {
             "gain_db": 20.0 * math.log10(mat.gain),
             "peak_dbfs": db_peak(peak),
             "limited_samples": limited,
             "limited_fraction": limited / max(mat.x.size, 1),
+            **err_loudness,
         },
         "quiet": None,
     }
@@ -220,16 +247,61 @@ def render_one(method, recipe, coeffs, *, key, files, material):
     return row
 
 
+def quiet_render_gain_db(qy, rate, *, shared_gain_db, original):
+    """The gain of one method's quiet render, and what it would play at the shared gain.
+
+    Parameters
+    ----------
+    qy : ndarray
+        The requantized quiet passage (not raised).
+    rate : float, Hz
+    shared_gain_db : float, dB
+        The original quiet passage's gain.
+    original : dict
+        The raised original's :func:`~requant.listening.levels.measure_level`.
+
+    Returns
+    -------
+    gain_db : float, dB
+        ``shared_gain_db``, unless the render raised by it would play more than
+        :data:`~requant.listening.levels.LOUDNESS_TOLERANCE_DB` from the raised
+        original: then the gain that brings it to the original's loudness
+        (at most :data:`~requant.listening.levels.MAX_GAIN_DB`).
+    measure : str
+        'LUFS' or 'dBFS RMS' (RMS when either loudness is undefined).
+    difference_db : float or None, dB
+        The render at the shared gain minus the raised original.
+    """
+    at_shared = measure_level(qy * 10.0 ** (shared_gain_db / 20.0), rate)
+    measure = ("LUFS" if at_shared["lufs"] is not None and original["lufs"] is not None
+               else "dBFS RMS")
+    mine, theirs = level_in(at_shared, measure), level_in(original, measure)
+    if mine is None or theirs is None:
+        return shared_gain_db, measure, None
+    diff = mine - theirs
+    if abs(diff) <= LOUDNESS_TOLERANCE_DB:
+        return shared_gain_db, measure, diff
+    return min(shared_gain_db - diff, MAX_GAIN_DB), measure, diff
+
+
 def _render_quiet(recipe, coeffs, *, key, files, material, predicted):
     """The quiet passage requantized with one method, then raised and capped."""
     names, tmp = files
-    qx, q_gain = material.quiet
+    qx, q_gain, original = material.quiet
     _, qy, _ = render_method(qx, recipe, coeffs=coeffs)
-    raised, q_limited = hard_limit(qy * q_gain)
+    shared_db = 20.0 * math.log10(q_gain)
+    gain_db, measure, diff = quiet_render_gain_db(qy, material.rate, shared_gain_db=shared_db,
+                                                  original=original)
+    raised, q_limited = hard_limit(qy * 10.0 ** (gain_db / 20.0))
     write_wav(tmp[f"{key}_quiet"], raised, material.rate, "FLOAT")
     return {
         "file": names[f"{key}_quiet"],
+        "gain_db": gain_db,
+        "own_gain": gain_db != shared_db,
+        "measure": measure,
+        "difference_at_shared_gain_db": diff,
         "limited_samples": q_limited,
         "peak_dbfs": db_peak(float(np.max(np.abs(raised)))),
+        **measure_level(raised, material.rate),
         "level": level_match(qx, qy, bits=recipe.bits, predicted_power_lsb2=predicted),
     }

@@ -10,6 +10,10 @@ least as well by guessing::
 computed exactly here with integers (no approximation, no scipy), then
 rounded once to float. It is one-sided: only scores above chance count as
 evidence of hearing a difference.
+
+The page saves the kit's seed as a decimal string, since JavaScript numbers
+lose digits past 2**53; :func:`read_seed` reads that and the plain number
+older pages saved.
 """
 
 import json
@@ -18,11 +22,17 @@ import os
 
 from requant.errors import InputError
 
-__all__ = ["guessing_p_value", "load_results", "score_results", "format_scores",
-           "RESULTS_FORMAT"]
+__all__ = ["guessing_p_value", "load_results", "score_results", "format_scores", "read_seed",
+           "RESULTS_FORMAT", "RESULTS_VERSIONS"]
 
 #: Value of the ``format`` key of a results file written by the listening page.
 RESULTS_FORMAT = "requant-listening-results"
+
+#: Versions of the results file this module reads (2 saves the seed as a string, the
+#: level each player was played at and the session).
+RESULTS_VERSIONS = (1, 2)
+
+_EXACT_LIMIT = 2**53
 
 
 def guessing_p_value(correct, total):
@@ -103,7 +113,45 @@ def load_results(path):
     if not isinstance(data.get("trials"), list):
         raise InputError(f"{p!r} has no list of \"trials\"; give the file saved by the "
                          "listening page")
+    if data.get("version", 1) not in RESULTS_VERSIONS:
+        raise InputError(f"{p!r} is a results file of version {data.get('version')!r}, which "
+                         "this requant does not know; score it with the requant that made the kit")
+    read_seed(data)  # refuse a damaged seed here, in one line
     return data
+
+
+def read_seed(results):
+    """The kit's seed as saved in a results file, in either form.
+
+    Parameters
+    ----------
+    results : dict
+        As returned by :func:`load_results`.
+
+    Returns
+    -------
+    seed : int or None
+        None when the file names no seed.
+    exact : bool
+        False when the seed was saved as a JSON number above 2**53 (pages
+        before version 2): a browser stores it as a double, so its last digits
+        may have been lost.
+
+    Raises
+    ------
+    InputError
+        For a seed that is neither a whole number nor a string of decimal digits.
+    """
+    kit = results.get("kit")
+    seed = kit.get("seed") if isinstance(kit, dict) else None
+    if seed is None:
+        return None, True
+    if isinstance(seed, str) and seed.isascii() and seed.isdigit():
+        return int(seed), True
+    if isinstance(seed, int) and not isinstance(seed, bool) and seed >= 0:
+        return seed, seed <= _EXACT_LIMIT
+    raise InputError(f"the kit's seed {seed!r} is not a whole number; the results file is "
+                     "damaged")
 
 
 def score_results(results):
@@ -154,14 +202,34 @@ def score_results(results):
     return out
 
 
-def format_scores(rows):
-    """Lines for the terminal: ``label: k/n right, p = ...`` per comparison."""
-    if not rows:
-        return "no trials were answered; nothing to score"
+def format_scores(rows, results=None):
+    """Lines for the terminal: the kit (when ``results`` is given), then
+    ``label: k/n right, p = ...`` per comparison."""
     lines = []
+    if results is not None:
+        lines.extend(_kit_lines(results))
+    if not rows:
+        return "\n".join(lines + ["no trials were answered; nothing to score"])
     for r in rows:
         lines.append(f"{r['label']}: {r['correct']}/{r['total']} correct, "
                      f"p = {r['p_value']:.4g}")
     lines.append("p: the chance of scoring at least this well by guessing "
                  "(one-sided binomial, 1/2 per trial).")
     return "\n".join(lines)
+
+
+def _kit_lines(results):
+    kit = results.get("kit") if isinstance(results.get("kit"), dict) else {}
+    seed, exact = read_seed(results)
+    parts = [str(kit["source"])] if kit.get("source") else []
+    if seed is not None:
+        parts.append(f"seed {seed}")
+    lines = [f"kit {kit.get('id', '?')}: " + ", ".join(parts)] if parts else []
+    if not exact:
+        lines.append("note: the seed was saved as a number above 2^53 by an older page; its "
+                     "last digits may be wrong (figures.json beside the page has it exactly)")
+    session = results.get("session")
+    if isinstance(session, dict) and session.get("hide_answers"):
+        lines.append(f"session: answers hidden until the end; {session.get('answered', '?')} "
+                     f"of {session.get('planned_trials', '?')} trials answered")
+    return lines

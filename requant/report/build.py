@@ -22,6 +22,7 @@ from requant.report.model import (
     Analysis,
     ChannelMeasured,
     ChannelRow,
+    ErrorGain,
     ErrorSignalFacts,
     InputFacts,
     MeasuredFigures,
@@ -202,6 +203,8 @@ class Conversion:
     passthrough : bool
         The input was on the grid and written unchanged.
     block_frames : int, frames
+    error_gain : requant.report.model.ErrorGain, optional
+        How loud the error signal was written; default exact (unity gain).
     """
 
     recipe: Recipe
@@ -213,6 +216,7 @@ class Conversion:
     error_format: str | None
     passthrough: bool
     block_frames: int
+    error_gain: ErrorGain = ErrorGain()
 
 
 def build_report(rq, conv, *, analysis=None, metadata=None):
@@ -280,5 +284,6 @@ def _files(rq, conv, metadata):
                               bits=rq.bits, container_bits=container_bits_of(targets.subtype),
                               passthrough=bool(conv.passthrough), metadata=record),
         "error_signal": (None if targets.error is None
-                         else ErrorSignalFacts(path=targets.error, format=conv.error_format)),
+                         else ErrorSignalFacts(path=targets.error, format=conv.error_format,
+                                               gain=conv.error_gain)),
     }

@@ -7,6 +7,7 @@ from pathlib import Path
 
 import numpy as np
 
+from requant.audio_io.atomic import TEMP_SUFFIX, temp_stem
 from requant.dsp.shaping import as_rate, as_taps, describe, noise_gain_db, ntf_response
 from requant.dsp.weighting import weighting_db
 from requant.errors import OutputError, UsageError
@@ -70,7 +71,8 @@ def _atomic_write(path, write, *, binary=False):
     folder = path.parent if str(path.parent) else Path(".")
     tmp = None
     try:
-        fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=folder)
+        stem = temp_stem(folder, path.name)
+        fd, tmp = tempfile.mkstemp(prefix=f".{stem}.", suffix=TEMP_SUFFIX, dir=folder)
         with os.fdopen(fd, "wb" if binary else "w",
                        **({} if binary else {"encoding": "utf-8"})) as fh:
             write(fh)

@@ -31,7 +31,7 @@ from dataclasses import dataclass
 from typing import Any
 
 __all__ = ["Report", "ReportSettings", "InputFacts", "OutputFacts", "MetadataRecord",
-           "ErrorSignalFacts", "ErrorFigures", "MeasuredFigures", "ChannelMeasured",
+           "ErrorSignalFacts", "ErrorGain", "ErrorFigures", "MeasuredFigures", "ChannelMeasured",
            "PredictedFigures", "ChannelRow", "Analysis"]
 
 
@@ -236,6 +236,34 @@ class OutputFacts:
 
 
 @dataclass(frozen=True)
+class ErrorGain:
+    """How loud the error signal was written.
+
+    Parameters
+    ----------
+    gain_db : float, dB
+        Gain applied to the error before writing (0 when exact).
+    rule : str
+        ``'exact'`` (unity gain, nothing limited: the file holds output minus
+        input exactly), ``'fixed'`` (the gain asked for) or ``'auto'`` (flat
+        TPDF noise of the word length raised to about -40 dBFS RMS).
+    cap_dbfs : float or None, dBFS
+        The hard limit on the written samples' peaks; None when exact.
+    limited_samples : int
+        Samples the cap clipped.
+    """
+
+    gain_db: float = 0.0
+    rule: str = "exact"
+    cap_dbfs: float | None = None
+    limited_samples: int = 0
+
+    def to_dict(self) -> dict[str, Any]:
+        """The JSON form."""
+        return _pick(self, ("gain_db", "rule", "cap_dbfs", "limited_samples"))
+
+
+@dataclass(frozen=True)
 class ErrorSignalFacts:
     """The error signal written (output minus input, 32-bit float).
 
@@ -245,15 +273,20 @@ class ErrorSignalFacts:
     format : str
         ``'WAV'``, ``'RF64'`` or ``'AIFF'``.
     subtype : str, default 'FLOAT'
+    gain : ErrorGain, default exact
+        The gain it was written with, and the cap.
     """
 
     path: str
     format: str
     subtype: str = "FLOAT"
+    gain: ErrorGain = ErrorGain()
 
     def to_dict(self) -> dict[str, Any]:
         """The JSON form."""
-        return _pick(self, ("path", "format", "subtype"))
+        out = _pick(self, ("path", "format", "subtype"))
+        out["gain"] = self.gain.to_dict()
+        return out
 
 
 _ERROR_KEYS = ("snr_db", "error_power_lsb2", "error_mean_lsb", "error_rms_dbfs",

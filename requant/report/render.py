@@ -58,7 +58,10 @@ def picture_paths(path):
     """
     path = os.fspath(path)
     folder, name = os.path.split(path)
-    stem = os.path.splitext(name)[0]
+    # a name that is not valid UTF-8 cannot be written in a link: name the pictures without
+    # the bytes that are not
+    stem = os.path.splitext(name)[0].encode("utf-8", "surrogateescape").decode("utf-8", "replace")
+    stem = stem.replace("\ufffd", "_")
     return {kind: os.path.join(folder, stem + suffix) for kind, suffix in PICTURE_KINDS.items()}
 
 
@@ -137,6 +140,8 @@ def write_markdown(report, analyzer, path, outs):
 def _write_text(outs, path, text):
     tmp = outs.path_for(path)
     try:
+        # a file name that is not valid UTF-8 is shown with \xNN escapes: the page stays text
+        text = text.encode("utf-8", "surrogateescape").decode("utf-8", "backslashreplace")
         with open(tmp, "w", encoding="utf-8", newline="\n") as fh:
             fh.write(text)
     except OSError as exc:

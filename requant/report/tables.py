@@ -360,6 +360,10 @@ def _files_table(report):
     if err is not None:
         rows.append(["error signal", Code(err.path or "")])
         rows.append(["error signal format", f"{err.format} {err.subtype}"])
+        g = err.gain
+        rows.append(["error signal gain", "none: the exact error" if g.rule == "exact" else
+                     f"{g.gain_db:+.1f} dB ({g.rule}), hard-limited at {g.cap_dbfs:.0f} dBFS "
+                     f"peak, {fmt_int(g.limited_samples)} sample(s) limited"])
     meta = out.metadata
     if meta is not None:
         for key, label in (("copied", "metadata chunks copied"),

@@ -9,7 +9,7 @@ JSON is its :meth:`~requant.report.model.Report.to_dict`. Every file goes throug
 import json
 import os
 
-from requant.audio_io.writers import NON_FINITE_WARNING, json_safe
+from requant.audio_io.writers import NON_FINITE_WARNING, json_safe, wrap_write_error
 
 __all__ = ["write_report"]
 
@@ -34,9 +34,12 @@ def write_report(report, analyzer, path, outs):
         doc, replaced = json_safe(report.to_dict())
         if replaced:
             doc["warnings"].append(NON_FINITE_WARNING.format(n=replaced))
-        with open(tmp, "w", encoding="utf-8") as fh:
-            json.dump(doc, fh, indent=2, allow_nan=False)
-            fh.write("\n")
+        try:
+            with open(tmp, "w", encoding="utf-8") as fh:
+                json.dump(doc, fh, indent=2, allow_nan=False)
+                fh.write("\n")
+        except OSError as exc:
+            raise wrap_write_error(exc, path) from None
         return
     from requant.report import render as report_render
 
