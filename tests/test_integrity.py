@@ -640,3 +640,115 @@ def test_random_manifests_are_read_not_trusted(tmp_path_factory, lines):
     for ev in events:
         assert isinstance(ev["source"], str) and ev["status"] in ("converted", "skipped", "failed")
     assert int(bad) >= 0 and (bad == 0) == (bad.first_line is None)
+
+
+# --------------------------------------------------------------------------- score
+
+def _results(path, trials, **extra):
+    doc = {"format": "requant-listening-results", "version": 2, "trials": trials, **extra}
+    path.write_text(json.dumps(doc))
+    return path
+
+
+def test_score_cannot_clear_the_screen_or_forge_a_line(tmp_path):
+    evil = "\x1b[2J\x1b[Hall methods: 100/100 correct, p = 0\nforged"
+    path = _results(tmp_path / "r.json",
+                    [{"comparison": "m1", "x": "A", "answer": "A"}],
+                    comparisons={"m1": {"label": evil}}, kit={"id": "k\x07", "source": evil})
+    code, out, err = run_cli("score", path)
+    assert code == 0, err
+    assert "\x1b" not in out and "\x07" not in out
+    assert not any(line.startswith("forged") for line in out.splitlines())
+
+
+def test_score_is_linear_in_trials(tmp_path):
+    # exact binomial tail by a recurrence: 60,000 trials in well under a second here
+    # (one math.comb per term made 30,000 trials take 20 s); compared with scipy's
+    # regularized incomplete beta function, a general reference library
+    import time
+
+    from scipy.stats import binom
+
+    from requant.listening.score import guessing_p_value
+
+    t0 = time.perf_counter()
+    p = guessing_p_value(30_400, 60_000)
+    assert time.perf_counter() - t0 < 5.0
+    assert p == pytest.approx(binom.sf(30_400 - 1, 60_000, 0.5), rel=1e-9)
+    assert guessing_p_value(9, 10) == 11 / 1024  # C(10,9) + C(10,10) = 11 of 2^10
+
+
+@pytest.mark.parametrize("content", ["[" * 100000 + "]" * 100000, None])
+def test_score_refuses_absurd_files_in_one_line(tmp_path, content):
+    path = tmp_path / "r.json"
+    if content is None:
+        _results(path, [{"comparison": "c", "x": "A", "answer": "A"}] * 200_001)
+    else:
+        path.write_text(content)
+    code, _, err = run_cli("score", path)
+    lines = [ln for ln in err.splitlines() if ln.strip()]
+    assert code == 2 and len(lines) == 1 and "Traceback" not in err, err
+
+
+@pytest.mark.parametrize("where", ["a_file/kit", "/proc/requant-nowhere/kit"])
+def test_listen_into_a_folder_it_cannot_create(tmp_path, where):
+    src = tmp_path / "long.wav"
+    sf.write(src, np.random.default_rng(1).uniform(-0.5, 0.5, (48000, 2)), 48000,
+             subtype="FLOAT")
+    (tmp_path / "a_file").write_text("x")
+    target = where if where.startswith("/") else tmp_path / where
+    code, _, err = run_cli("listen", src, target)
+    lines = [ln for ln in err.splitlines() if ln.strip()]
+    assert code == 2 and len(lines) == 1 and "Traceback" not in err, err
+
+
+@pytest.mark.slow
+def test_kills_at_random_moments(tmp_path):
+    # SIGKILL or SIGTERM at a random moment of a convert: the final path holds nothing or the
+    # whole output; the next run leaves no temporary behind
+    import random
+    import signal
+    import subprocess
+    import time
+
+    from helpers import cli_command
+
+    src = _long_input(tmp_path / "in.wav", seconds=8.0)
+    ref = tmp_path / "ref"
+    ref.mkdir()
+    args = ["--seed", 5, "--error", None, "--report", None]
+
+    def command(folder):
+        a = list(args)
+        a[3], a[5] = folder / "e.wav", folder / "r.json"
+        return cli_command("convert", src, folder / "o.wav", *a)
+
+    subprocess.run(command(ref), check=True, capture_output=True)
+    rng = random.Random(19)
+    for i in range(8):
+        out = tmp_path / f"k{i}"
+        out.mkdir()
+        proc = subprocess.Popen(command(out), stdout=subprocess.DEVNULL,
+                                stderr=subprocess.DEVNULL)
+        time.sleep(rng.uniform(0.0, 0.6))
+        proc.send_signal(rng.choice([signal.SIGKILL, signal.SIGTERM]))
+        proc.wait(timeout=60)
+        for name in ("o.wav", "e.wav"):
+            if (out / name).exists():  # written only when whole
+                assert (out / name).read_bytes() == (ref / name).read_bytes()
+        subprocess.run([*command(out), "--overwrite"], check=True, capture_output=True)
+        assert _temps(out) == []
+        assert (out / "o.wav").read_bytes() == (ref / "o.wav").read_bytes()
+
+
+@pytest.mark.parametrize("args, words", [
+    (["--shaping", "1e308"], "cannot shape noise usefully"),
+    (["--shaping", "1.0,nan"], "finite"),
+    (["--block-frames", 10**9], "block-frames"),
+])
+def test_absurd_option_values_are_one_line(tmp_path, args, words):
+    src = _float_file(tmp_path / "in.wav", {})
+    code, _, err = run_cli("convert", src, tmp_path / "o.wav", *args)
+    lines = [ln for ln in err.splitlines() if ln.strip()]
+    assert code == 2 and len(lines) == 1 and words in lines[0], err
+    assert not (tmp_path / "o.wav").exists()

@@ -401,7 +401,11 @@ def make_listening_kit(src: str | os.PathLike, outdir: str | os.PathLike, *,
     gain_db = error_render_gain_db(min(all_bits))
     q_material, q_raised, q_info = _quiet_passage(got, quiet_seconds=quiet)
     names, finals = _kit_names(parsed, outdir, q_material is not None)
-    os.makedirs(outdir, exist_ok=True)
+    try:
+        os.makedirs(outdir, exist_ok=True)
+    except OSError as exc:
+        raise OutputError(f"cannot create the kit's folder {outdir!r} ({exc.strerror or exc}); "
+                          "choose a folder that can be written") from None
     check_outputs([src], list(finals.values()), overwrite=overwrite)
     coeffs = {m.shaping: coefficients_for(m.recipe(base).shaping, got.rate) for m in parsed}
     with AtomicOutputs() as outs:

@@ -33,6 +33,19 @@ RESULTS_FORMAT = "requant-listening-results"
 RESULTS_VERSIONS = (1, 2)
 
 _EXACT_LIMIT = 2**53
+#: Largest results file read: a page saves a few hundred trials in a few kilobytes.
+MAX_RESULTS_BYTES = 64 << 20
+#: Most trials scored from one file.
+MAX_TRIALS = 200_000
+
+
+def _printable(text):
+    """``text`` safe for a terminal: control characters (escape sequences that could clear
+    the screen or forge a line) shown as escapes."""
+    text = str(text)
+    if text.isprintable():
+        return text
+    return "".join(ch if ch.isprintable() else repr(ch)[1:-1] for ch in text)
 
 
 def guessing_p_value(correct, total):
@@ -72,12 +85,24 @@ def guessing_p_value(correct, total):
         raise ValueError(f"correct={correct!r} must lie between 0 and total={total!r}")
     if correct == 0:
         return 1.0
-    # Sum the shorter tail exactly; the complement is exact in integers too.
+    # Sum the shorter tail exactly, each term from the one before (C(n, i+1) =
+    # C(n, i)·(n − i)/(i + 1), exact in integers): linear in the trials, where one
+    # math.comb per term was quadratic (30,000 trials took 20 s).
     if correct > total // 2:
-        tail = sum(math.comb(total, i) for i in range(correct, total + 1))
+        tail = _comb_sum(total, correct, total)
     else:
-        tail = (1 << total) - sum(math.comb(total, i) for i in range(0, correct))
+        tail = (1 << total) - _comb_sum(total, 0, correct - 1)
     return tail / (1 << total)  # int / int: correctly rounded
+
+
+def _comb_sum(n, lo, hi):
+    """sum(C(n, i) for i in lo..hi), exactly."""
+    term = math.comb(n, lo)
+    total = term
+    for i in range(lo, hi):
+        term = term * (n - i) // (i + 1)
+        total += term
+    return total
 
 
 def load_results(path):
@@ -94,6 +119,9 @@ def load_results(path):
     """
     p = os.fspath(path)
     try:
+        if os.path.getsize(p) > MAX_RESULTS_BYTES:
+            raise InputError(f"{p!r} is larger than {MAX_RESULTS_BYTES >> 20} MiB, far more than "
+                             "a listening page saves; give the file saved by the page")
         with open(p, encoding="utf-8") as fh:
             data = json.load(fh)
     except FileNotFoundError:
@@ -105,6 +133,9 @@ def load_results(path):
     except (UnicodeDecodeError, json.JSONDecodeError) as exc:
         raise InputError(f"{p!r} is not valid JSON ({exc}); give the file saved by the "
                          "listening page") from None
+    except RecursionError:
+        raise InputError(f"{p!r} is nested too deeply to be a results file; give the file "
+                         "saved by the listening page") from None
     except OSError as exc:
         raise InputError(f"{p!r} cannot be read ({exc.strerror or exc})") from None
     if not isinstance(data, dict) or data.get("format") != RESULTS_FORMAT:
@@ -113,6 +144,9 @@ def load_results(path):
     if not isinstance(data.get("trials"), list):
         raise InputError(f"{p!r} has no list of \"trials\"; give the file saved by the "
                          "listening page")
+    if len(data["trials"]) > MAX_TRIALS:
+        raise InputError(f"{p!r} holds {len(data['trials'])} trials, more than the {MAX_TRIALS} "
+                         "requant scores from one file")
     if data.get("version", 1) not in RESULTS_VERSIONS:
         raise InputError(f"{p!r} is a results file of version {data.get('version')!r}, which "
                          "this requant does not know; score it with the requant that made the kit")
@@ -211,7 +245,7 @@ def format_scores(rows, results=None):
     if not rows:
         return "\n".join(lines + ["no trials were answered; nothing to score"])
     for r in rows:
-        lines.append(f"{r['label']}: {r['correct']}/{r['total']} correct, "
+        lines.append(f"{_printable(r['label'])}: {r['correct']}/{r['total']} correct, "
                      f"p = {r['p_value']:.4g}")
     lines.append("p: the chance of scoring at least this well by guessing "
                  "(one-sided binomial, 1/2 per trial).")
@@ -221,15 +255,16 @@ def format_scores(rows, results=None):
 def _kit_lines(results):
     kit = results.get("kit") if isinstance(results.get("kit"), dict) else {}
     seed, exact = read_seed(results)
-    parts = [str(kit["source"])] if kit.get("source") else []
+    parts = [_printable(kit["source"])] if kit.get("source") else []
     if seed is not None:
         parts.append(f"seed {seed}")
-    lines = [f"kit {kit.get('id', '?')}: " + ", ".join(parts)] if parts else []
+    lines = [f"kit {_printable(kit.get('id', '?'))}: " + ", ".join(parts)] if parts else []
     if not exact:
         lines.append("note: the seed was saved as a number above 2^53 by an older page; its "
                      "last digits may be wrong (figures.json beside the page has it exactly)")
     session = results.get("session")
     if isinstance(session, dict) and session.get("hide_answers"):
-        lines.append(f"session: answers hidden until the end; {session.get('answered', '?')} "
-                     f"of {session.get('planned_trials', '?')} trials answered")
+        lines.append(f"session: answers hidden until the end; "
+                     f"{_printable(session.get('answered', '?'))} of "
+                     f"{_printable(session.get('planned_trials', '?'))} trials answered")
     return lines
