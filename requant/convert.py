@@ -46,7 +46,6 @@ from requant.audio_io.writers import BlockWriter, SyncWriter, open_output, wrap_
 from requant.dsp.cap import CAP_DBFS, MAX_GAIN_DB, hard_limit, raise_to_target_db
 from requant.dsp.kernel import ACC_FIELDS
 from requant.dsp.quantizer import Requantizer, new_seed
-from requant.dsp.shaping import coefficients_for
 from requant.errors import InputError, UsageError
 from requant.recipe import Recipe
 from requant.report.build import Conversion, build_report
@@ -244,7 +243,12 @@ def _requantizer(f, source, recipe, targets, block_frames):
     Input already on the target grid (and in range) is written unchanged: no
     dither, no shaping, unless the recipe forces dither.
     """
-    coeffs = coefficients_for(recipe.shaping, source.rate)
+    if recipe.shaping.kind == "none":
+        coeffs = np.zeros(0)
+    else:  # the design module (and its weighting curves) only when a file is shaped
+        from requant.dsp.shaping import coefficients_for
+
+        coeffs = coefficients_for(recipe.shaping, source.rate)
     scale = float(2 ** (recipe.bits - 1))
     passthrough = (not recipe.force_dither) and source.frames > 0 and on_grid(
         f, dtype=source.dtype, scale=scale, kmin=-(2 ** (recipe.bits - 1)),

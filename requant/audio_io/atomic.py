@@ -24,7 +24,8 @@ import threading
 from requant.errors import OutputError, UsageError
 
 __all__ = ["check_outputs", "AtomicOutputs", "CommitGroup", "pending_path", "same_file",
-           "temp_name", "temp_stem", "remove_stale_temps_of", "is_stale_temp", "TEMP_SUFFIX"]
+           "temp_name", "temp_stem", "remove_stale_temps_of", "is_stale_temp", "TEMP_SUFFIX",
+           "in_commit_group"]
 
 #: What every temporary name ends with (the batch's clean-up looks for it too).
 TEMP_SUFFIX = ".requant-part"
@@ -127,8 +128,21 @@ def is_stale_temp(path):
     return True
 
 
+def in_commit_group():
+    """True inside a :class:`CommitGroup` (a batch chunk, whose batch cleans its destination
+    under its own lock before any work)."""
+    return getattr(_local, "group", None) is not None
+
+
 def remove_stale_temps_of(final):
-    """Remove temporary files a killed run left for output ``final``; return their names."""
+    """Remove temporary files a killed run left for output ``final``; return their names.
+
+    Does nothing inside a :class:`CommitGroup`: a batch has cleaned its whole
+    destination already, and listing a folder of thousands of outputs per file
+    would cost more than converting a short clip.
+    """
+    if in_commit_group():
+        return []
     folder, name = os.path.split(os.path.abspath(os.fspath(final)))
     prefix = f".{temp_stem(folder, name)}."
     removed = []
@@ -175,6 +189,8 @@ class AtomicOutputs:
         folder, name = os.path.split(os.path.abspath(final))
         tmp = os.path.join(folder, temp_name(folder, name))
         self._pairs.append((tmp, final))
+        if in_commit_group():
+            return tmp  # a batch chunk: its owner holds the destination's lock and cleans it
         try:
             fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o666)
         except OSError:

@@ -253,16 +253,16 @@ class ManifestWriter:
         """Write one event as one JSON line (a non-finite figure becomes null, with a warning
         of kind ``non-finite-figure``, so that one damaged file cannot stop a library)."""
         event = {k: (escape_name(v) if k in _NAME_FIELDS else v) for k, v in event.items()}
-        event, replaced = json_safe(event)
-        if replaced:
-            event.setdefault("warnings", []).append(NON_FINITE_WARNING.format(n=replaced))
-            kinds = event.setdefault("warning_kinds", [])
-            if "non-finite-figure" not in kinds:
-                kinds.append("non-finite-figure")
-        try:
+        try:  # the usual case, at the cost of one dumps: finite numbers, UTF-8 text
             line = json.dumps(event, ensure_ascii=False, allow_nan=False).encode("utf-8")
-        except UnicodeEncodeError:  # a surrogate elsewhere (an error text quoting a name)
-            line = json.dumps(event, ensure_ascii=True, allow_nan=False).encode("ascii")
+        except (ValueError, TypeError):  # NaN or infinity, a lone surrogate, a numpy number
+            event, replaced = json_safe(event)
+            if replaced:
+                event.setdefault("warnings", []).append(NON_FINITE_WARNING.format(n=replaced))
+                kinds = event.setdefault("warning_kinds", [])
+                if "non-finite-figure" not in kinds:
+                    kinds.append("non-finite-figure")
+            line = json.dumps(event, ensure_ascii=False, allow_nan=False).encode("utf-8")
         self._write(line + b"\n")
         self._unsynced += 1
         now = time.monotonic()

@@ -14,7 +14,6 @@ from typing import Any
 
 from requant import __version__
 from requant.audio_io.formats import container_bits_of
-from requant.dsp.analysis import correlated_summary
 from requant.dsp.figures import measured_figures, predicted_figures
 from requant.dsp.quantizer import predicted_error_power_lsb2
 from requant.recipe import Recipe
@@ -72,6 +71,8 @@ def _fold_analysis(res, total, pred_total, channels, *, passthrough):
                 pred[key] = None
         summary = {"correlated_error_fraction": 0.0, "signal_correlated": False, "warnings": []}
     else:
+        from requant.dsp.analysis import correlated_summary  # only when analysed
+
         summary = correlated_summary(res)
     total["correlated_error_fraction"] = summary["correlated_error_fraction"]
     total["signal_correlated"] = summary["signal_correlated"]

@@ -21,7 +21,10 @@ seconds, ``_hz`` hertz, ``frames`` sample frames, ``_fraction`` a share
 between 0 and 1. Offsets without a unit are fractions of full scale.
 
 This module needs only the standard library, so the command line may import
-it without loading numpy.
+it without loading numpy. The classes are frozen; they compare by identity
+and keep the default repr (``eq=False, repr=False``): nothing compares
+reports, and generating those methods for every class cost a few
+milliseconds of every conversion's start-up.
 """
 
 from __future__ import annotations
@@ -49,7 +52,7 @@ def _pick(obj, names):
     return {name: getattr(obj, name) for name in names}
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, repr=False, eq=False)
 class ReportSettings:
     """The settings a conversion ran with.
 
@@ -115,7 +118,7 @@ class ReportSettings:
         return out
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, repr=False, eq=False)
 class InputFacts:
     """What was read.
 
@@ -156,7 +159,7 @@ class InputFacts:
                             "subtype", "declared_frames"))
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, repr=False, eq=False)
 class MetadataRecord:
     """What became of the source's metadata (when it was carried over).
 
@@ -196,7 +199,7 @@ class MetadataRecord:
         return out
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, repr=False, eq=False)
 class OutputFacts:
     """What was written.
 
@@ -235,7 +238,7 @@ class OutputFacts:
         return out
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, repr=False, eq=False)
 class ErrorGain:
     """How loud the error signal was written.
 
@@ -263,7 +266,7 @@ class ErrorGain:
         return _pick(self, ("gain_db", "rule", "cap_dbfs", "limited_samples"))
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, repr=False, eq=False)
 class ErrorSignalFacts:
     """The error signal written (output minus input, 32-bit float).
 
@@ -294,7 +297,7 @@ _ERROR_KEYS = ("snr_db", "error_power_lsb2", "error_mean_lsb", "error_rms_dbfs",
 _TRUE_PEAK_KEYS = ("input_true_peak_dbtp", "output_true_peak_dbtp")
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, repr=False, eq=False)
 class ErrorFigures:
     """Figures measured from the running sums (:func:`requant.dsp.figures.measured_figures`).
 
@@ -325,7 +328,7 @@ class ErrorFigures:
     clipped_samples: int
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, repr=False, eq=False)
 class MeasuredFigures(ErrorFigures):
     """Measured figures of all channels together.
 
@@ -389,7 +392,7 @@ class MeasuredFigures(ErrorFigures):
         return _pick(self, names)
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, repr=False, eq=False)
 class ChannelMeasured(ErrorFigures):
     """Measured figures of one channel.
 
@@ -429,7 +432,7 @@ class ChannelMeasured(ErrorFigures):
         return _pick(self, names)
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, repr=False, eq=False)
 class PredictedFigures:
     """Figures the dither model and the noise-shaping filter predict.
 
@@ -458,7 +461,7 @@ class PredictedFigures:
         return _pick(self, names)
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, repr=False, eq=False)
 class ChannelRow:
     """One channel's measured and predicted figures.
 
@@ -491,7 +494,7 @@ class ChannelRow:
                 "predicted": self.predicted.to_dict(analysed=weighted)}
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, repr=False, eq=False)
 class Analysis:
     """The streaming analysis' own section (:meth:`requant.dsp.analysis.ErrorAnalyzer.finish`).
 
@@ -537,7 +540,7 @@ class Analysis:
         return _plain(out)
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, repr=False, eq=False)
 class Report:
     """The report of one conversion.
 
