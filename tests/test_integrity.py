@@ -37,6 +37,7 @@ def test_fifo_input_is_refused_at_once(fifo, tmp_path, command):
     assert not (tmp_path / "o.wav").exists()
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("dry_run", [False, True])
 def test_batch_lists_a_fifo_as_skipped(tmp_path, dry_run):
     src = tmp_path / "lib"
@@ -215,6 +216,7 @@ def test_resume_reconverts_exactly_the_changed_sources(tmp_path):
     assert third["counts"]["converted"] == 0 and third["counts"]["up_to_date"] == 5
 
 
+@pytest.mark.slow
 def test_dry_run_names_a_changed_source(tmp_path):
     src, dst = tmp_path / "lib", tmp_path / "out"
     _library(src, ["a.wav", "b.wav"])
@@ -264,6 +266,7 @@ def test_large_overs_are_clipped_counted_and_finite(tmp_path):
     assert np.all(np.isfinite(e))
 
 
+@pytest.mark.slow
 def test_one_poisoned_file_does_not_stop_a_library(tmp_path):
     lib = tmp_path / "lib"
     lib.mkdir()
@@ -297,6 +300,7 @@ def test_json_safe_and_the_manifest_writer(tmp_path):
     assert "non-finite-figure" in events[0]["warning_kinds"]
 
 
+@pytest.mark.slow
 def test_inspect_of_a_damaged_file_writes_strict_json(tmp_path):
     src = _float_file(tmp_path / "in.wav", {(10, 0): 1e300})
     code, _, err = run_cli("inspect", src, "--json", tmp_path / "i.json")
@@ -342,6 +346,7 @@ def test_any_float_magnitudes(tmp_path_factory, values, double):
     b"[" * 100000 + b"]" * 100000,
     b"\xff\xfe not json",
 ])
+@pytest.mark.slow
 def test_a_damaged_manifest_line_is_named_and_left_out(tmp_path, line):
     src, dst = tmp_path / "lib", tmp_path / "out"
     _library(src, ["a.wav", "b.wav"])
@@ -356,6 +361,7 @@ def test_a_damaged_manifest_line_is_named_and_left_out(tmp_path, line):
     assert "unreadable line(s) (first: line 2" in said and "move the manifest aside" in said
 
 
+@pytest.mark.slow
 def test_a_manifest_that_is_a_folder_is_one_line(tmp_path):
     src, dst = tmp_path / "lib", tmp_path / "out"
     _library(src, ["a.wav"])
@@ -371,6 +377,7 @@ def test_a_manifest_that_is_a_folder_is_one_line(tmp_path):
 
 @pytest.mark.parametrize("state", [b"not json", b"[1, 2]", b'{"run_seed": "7"}',
                                    b'{"claimed_outputs": "a.wav"}', b"{" * 100000])
+@pytest.mark.slow
 def test_a_damaged_state_file_is_named_and_safe(tmp_path, state):
     src, dst = tmp_path / "lib", tmp_path / "out"
     _library(src, ["a.wav"])
@@ -475,6 +482,7 @@ def test_a_legal_long_name_still_converts(tmp_path):
 
 # ------------------------------------------------------------------- one line, not a traceback
 
+@pytest.mark.slow
 def test_a_source_folder_named_like_the_batch_bookkeeping(tmp_path):
     src, dst = tmp_path / "lib", tmp_path / "out"
     _library(src / "requant-summary.json", ["a.wav"])
@@ -485,6 +493,7 @@ def test_a_source_folder_named_like_the_batch_bookkeeping(tmp_path):
     assert json.loads((dst / "requant-summary.json").read_text())["counts"]["converted"] == 1
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("rate", [1, 2, 4])
 def test_extreme_sample_rates_with_reports(tmp_path, rate):
     sf.write(tmp_path / "in.wav", np.random.default_rng(1).uniform(-0.5, 0.5, (40, 1)), rate,
@@ -495,6 +504,7 @@ def test_extreme_sample_rates_with_reports(tmp_path, rate):
         assert code == 0 and "Traceback" not in err, err
 
 
+@pytest.mark.slow
 def test_names_that_are_not_utf8(tmp_path):
     src = _float_file(tmp_path / "ok.wav", {})
     odd = os.fsencode(tmp_path) + b"/bad\xffname.wav"
@@ -515,6 +525,7 @@ def test_names_that_are_not_utf8(tmp_path):
     assert proc.returncode == 0, proc.stderr
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("damage", ["cut", "corrupt"])
 def test_a_damaged_flac_is_one_line(tmp_path, damage):
     sf.write(tmp_path / "ok.flac", np.random.default_rng(1).uniform(-0.5, 0.5, (48000, 2)),
