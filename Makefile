@@ -42,6 +42,7 @@ lint: $(STAMP)
 
 bench: $(STAMP)
 	$(BIN)/python benchmarks/bench_convert.py
+	$(BIN)/python benchmarks/bench_silence.py
 	$(BIN)/python benchmarks/bench_batch.py
 	$(BIN)/python benchmarks/bench_audit.py
 

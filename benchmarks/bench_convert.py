@@ -5,7 +5,7 @@ and reports the median wall time of each and their ratio, so machine noise
 hits both sides alike. Usage:
 
     python benchmarks/bench_convert.py [--minutes 20] [--repeats 3] \
-        [--rows tpdf,shaped,report,flac,rss,help]
+        [--rows tpdf,shaped,report,inspect,flac,rss,help]
 """
 
 import argparse
@@ -45,6 +45,15 @@ if durable:  # what requant does before renaming its outputs into place
             fd = os.open(p, os.O_RDONLY)
             os.fsync(fd)
             os.close(fd)
+"""
+
+
+READ_SCRIPT = r"""
+import sys, numpy as np, soundfile as sf
+with sf.SoundFile(sys.argv[1]) as f:
+    buf = np.empty((65536, f.channels), dtype='float32')
+    while len(f.read(65536, dtype='float32', out=buf)):
+        pass
 """
 
 
@@ -113,7 +122,7 @@ def main():
     ap = argparse.ArgumentParser(description=__doc__)
     ap.add_argument("--minutes", type=float, default=20.0)
     ap.add_argument("--repeats", type=int, default=3)
-    ap.add_argument("--rows", default="tpdf,shaped,report,flac,rss,help")
+    ap.add_argument("--rows", default="tpdf,shaped,report,inspect,flac,rss,help")
     ap.add_argument("--work", default=str(ROOT / "bench_output"))
     a = ap.parse_args()
     rows = set(a.rows.split(","))
@@ -149,14 +158,27 @@ def main():
         m = alternate({"plain": requant_cmd(*base),
                        "report": requant_cmd(*base, "--report", rep, "--overwrite")}, a.repeats)
         print(f"{'the same with the full report (JSON) vs without':48} {m['report']:9.2f} "
-              f"{m['plain']:8.2f} {m['report'] / m['plain']:6.2f} {'<=1.50':>7}")
+              f"{m['plain']:8.2f} {m['report'] / m['plain']:6.2f} {'<=1.15':>7}")
         msrc = work / f"program48k_{a.minutes:g}min_float.wav"
         make_program(msrc, a.minutes)
         mbase = ["convert", msrc, out, "--overwrite", "--error", err, "--seed", 1, "--quiet"]
         m = alternate({"plain": requant_cmd(*mbase),
                        "report": requant_cmd(*mbase, "--report", rep, "--overwrite")}, a.repeats)
         print(f"{'  same, programme-like input (dynamics)':48} {m['report']:9.2f} "
-              f"{m['plain']:8.2f} {m['report'] / m['plain']:6.2f} {'<=1.50':>7}")
+              f"{m['plain']:8.2f} {m['report'] / m['plain']:6.2f} {'<=1.15':>7}")
+    if "inspect" in rows:
+        # inspect (every figure, true peak and loudness) against reading the file as float32
+        # blocks in a process of its own (Python, numpy and soundfile imported)
+        rd = [PY, "-c", READ_SCRIPT, str(src)]
+        m = alternate({"read": rd, "rq": requant_cmd("inspect", src)}, a.repeats)
+        print(f"{'inspect vs reading it as float32 blocks':48} {m['rq']:9.2f} {m['read']:8.2f} "
+              f"{m['rq'] / m['read']:6.2f} {'<=3.00':>7}")
+        msrc = work / f"program48k_{a.minutes:g}min_float.wav"
+        make_program(msrc, a.minutes)
+        m = alternate({"read": [PY, "-c", READ_SCRIPT, str(msrc)],
+                       "rq": requant_cmd("inspect", msrc)}, a.repeats)
+        print(f"{'  same, programme-like input (dynamics)':48} {m['rq']:9.2f} {m['read']:8.2f} "
+              f"{m['rq'] / m['read']:6.2f} {'<=3.00':>7}")
     if "flac" in rows:
         fsrc = work / f"stereo48k_{a.minutes:g}min_24.flac"
         make_input(fsrc, a.minutes, "PCM_24", "FLAC")
@@ -173,6 +195,10 @@ def main():
             rss = peak_rss_mb(requant_cmd("convert", s, out, "--overwrite", "--error", err,
                                           "--shaping", "hearing", "--quiet"))
             print(f"{'peak RSS, ' + label + ' (MB)':48} {rss:9.1f} {'':>8} {'':>6} {'<=200':>7}")
+        for s, label in ((short, "1 min"), (src, f"{a.minutes:g} min")):
+            rss = peak_rss_mb(requant_cmd("inspect", s))
+            print(f"{'peak RSS, inspect, ' + label + ' (MB)':48} {rss:9.1f} {'':>8} {'':>6} "
+                  f"{'flat':>7}")
     if "help" in rows:
         ts = [timed(requant_cmd("--help")) for _ in range(7)]
         print(f"{'requant --help start-up':48} {statistics.median(ts):9.3f} {'':>8} {'':>6} "

@@ -257,7 +257,8 @@ def _requantizer(f, source, recipe, targets, block_frames):
     applied = recipe.replace(dither="none", shaping="none") if passthrough else recipe
     rq = Requantizer.from_recipe(applied, source.channels,
                                  coeffs=np.zeros(0) if passthrough else coeffs,
-                                 container_bits=container_bits_of(targets.subtype))
+                                 container_bits=container_bits_of(targets.subtype),
+                                 sample_rate=source.rate)
     return rq, coeffs, passthrough
 
 
@@ -311,7 +312,7 @@ def _analyzer(rq, source, applied_dither, coeffs, block_frames):
                              own_sums=False)
 
     def consumer(bufs, n):
-        analyzer.feed(bufs[2][:n], bufs[1][:n])
+        analyzer.feed(bufs[2][:n], bufs[1][:n], silent=bufs[3][:n] if len(bufs) > 3 else None)
 
     return analyzer, consumer
 
@@ -326,11 +327,15 @@ def _stream(f, rq, files, *, source, targets, analysis, block_frames, progress):
     import soundfile as sf
 
     nch = source.channels
-    layouts = [((block_frames, nch), rq.code_dtype), ((block_frames, nch), np.float32)]
+    # a block may come out with the frames the block before held back (silence kept)
+    rows = block_frames + rq.hold
+    layouts = [((rows, nch), rq.code_dtype), ((rows, nch), np.float32)]
     consumer = None
     if analysis is not None:
         consumer = analysis[1]
-        layouts.append(((block_frames, nch), source.dtype))
+        layouts.append(((rows, nch), source.dtype))
+        if rq.silence_frames:  # which samples were kept silent, for the analysis
+            layouts.append(((rows, nch), np.bool_))
     else:
         layouts = layouts[:len(files)]
     want_err = len(files) > 1 or analysis is not None
@@ -345,24 +350,18 @@ def _stream(f, rq, files, *, source, targets, analysis, block_frames, progress):
     done = 0
     try:
         f.seek(0)
-        for start, x in blocks or BlockReader(f, block_frames, source.dtype):
-            n = x.shape[0]
+        for _start, x in blocks or BlockReader(f, block_frames, source.dtype):
             bufs = writer.buffers()
-            rq.process(x, codes=bufs[0], error=want_err, err_out=bufs[1] if want_err else None)
-            if analysis is not None:
-                bufs[2][:n] = x
-            if rq.acc[:, _MAX_ABS_E].max() > _ABSURD_FULL_SCALE * rq.scale:
-                _refuse_absurd(x, start, source, targets)
-            if rq.acc[:, 6].any():
-                frame, ch, kind = first_nonfinite(x, start)
-                at = frame / source.rate
-                raise InputError(f"{targets.src!r} has a {kind} sample at {at:.6f} "
-                                 f"s (frame {frame}, channel {ch + 1}); repair the source and run "
-                                 "again")
-            writer.submit(bufs, n)
-            done += n
-            if progress is not None:
-                progress(done, source.frames)
+            codes, _ = rq.process(x, codes=bufs[0], error=want_err,
+                                  err_out=bufs[1] if want_err else None)
+            done = _hand_over(rq, writer, bufs, codes.shape[0], done, source, targets, analysis,
+                              progress)
+        while rq.held:  # the frames kept back to look for silence, at the end of the file
+            bufs = writer.buffers()
+            codes, _ = rq.flush(codes=bufs[0], error=want_err,
+                                err_out=bufs[1] if want_err else None, max_frames=block_frames)
+            done = _hand_over(rq, writer, bufs, codes.shape[0], done, source, targets, analysis,
+                              progress)
         writer.close()
     except (sf.LibsndfileError, RuntimeError, OSError) as exc:
         # blame the file whose write failed: the error file's folder may be the full one
@@ -373,6 +372,31 @@ def _stream(f, rq, files, *, source, targets, analysis, block_frames, progress):
     return done
 
 
+def _hand_over(rq, writer, bufs, n, done, source, targets, analysis, progress):
+    """Check the ``n`` frames the requantizer just gave and pass them to the writer;
+    returns the frames done. (With silence kept they are not the block just read: the
+    requantizer holds the last few back to look ahead.)"""
+    if analysis is not None:
+        rq.last_input(out=bufs[2])
+        if len(bufs) > 3:
+            rq.silent_mask(out=bufs[3])
+    if rq.acc[:, _MAX_ABS_E].max() > _ABSURD_FULL_SCALE * rq.scale:
+        _refuse_absurd(rq.last_input(), done, source, targets)
+    if rq.acc[:, _NONFINITE].any():
+        frame, ch, kind = first_nonfinite(rq.last_input(), done)
+        at = frame / source.rate
+        raise InputError(f"{targets.src!r} has a {kind} sample at {at:.6f} "
+                         f"s (frame {frame}, channel {ch + 1}); repair the source and run "
+                         "again")
+    writer.submit(bufs, n)
+    done += n
+    if progress is not None:
+        progress(done, source.frames)
+    return done
+
+
+#: Column of the count of NaN and infinite samples among the kernel's running sums.
+_NONFINITE = ACC_FIELDS.index("nonfinite")
 #: Column of the largest error magnitude among the kernel's running sums.
 _MAX_ABS_E = ACC_FIELDS.index("max_abs_e")
 #: A float sample more than this many times full scale (+80 dBFS) is not audio a delivery

@@ -2,9 +2,10 @@
 
 Scenario (fiction): a small studio, "Fernhollow Sound", delivers two jobs.
 
-* A 14-second orchestral-style cue, "Tidewater", mastered at 24 bits /
-  48 kHz, ending in a long, quiet fade into digital silence. It is released
-  at 16 bits.
+* A 14.5-second orchestral-style cue, "Tidewater", mastered at 24 bits /
+  48 kHz: half a second of digital silence (exact zeros), the music, and a
+  long, quiet fade into 0.4 s of digital silence. It is released at 16 bits,
+  with the silence kept silent.
 * Three one-shots for a handheld game, "Pocket Comet" (a coin pickup, a door
   thud and a chime with a long ring-out), made at 24 bits / 44.1 kHz and
   shipped at 8 bits to fit the device.
@@ -24,6 +25,9 @@ from requant.errors import InputError, OutputError
 from requant.recipe import Recipe
 
 __all__ = ["synthesize_demo_audio", "run_demo", "DEMO_FILES", "default_demo_dir"]
+
+#: Digital silence before the cue starts, seconds (it also ends in 0.4 s of it).
+HEAD_SILENCE_S = 0.5
 
 DEMO_FILES = {
     "tidewater_master.flac": "orchestral-style cue, 24-bit 48 kHz stereo, long fade-out",
@@ -168,7 +172,9 @@ def synthesize_demo_audio(folder, *, seed=20261201):
     folder = Path(folder)
     folder.mkdir(parents=True, exist_ok=True)
     rng = np.random.default_rng(seed)
-    sf.write(folder / "tidewater_master.flac", _to_int24_codes(_master(rng)), 48000,
+    head = np.zeros((int(HEAD_SILENCE_S * 48000), 2))  # the cue starts after digital silence
+    cue = np.concatenate([head, _master(rng)])
+    sf.write(folder / "tidewater_master.flac", _to_int24_codes(cue), 48000,
              subtype="PCM_24", format="FLAC")
     for name, fn in (("coin.wav", _coin), ("door_thud.wav", _door), ("chime.wav", _chime)):
         sf.write(folder / name, _to_int24_codes(fn(44100, rng)), 44100, subtype="PCM_24",
@@ -267,6 +273,12 @@ def run_demo(out, *, source=None, seed=2026, overwrite=False):
             f"{f(p.error_power_lsb2, '6.4f')} {f(m.a_weighted_noise_dbfs, '10.2f')} "
             f"{f(p.a_weighted_noise_dbfs, '7.2f')}  {corr}"
         )
+    silent = [(out_name, rep) for out_name, _, _, rep in rows if rep.measured.silent_frames]
+    for out_name, rep in silent:
+        per = sorted({ch.measured.silent_frames for ch in rep.channels})
+        secs = " / ".join(f"{n / rep.input.sample_rate:.2f} s" for n in per)
+        lines.append(f"{out_name}: {secs} of digital silence kept silent (exact zeros, no "
+                     "dither hiss out of nothing)")
     lines.append("SNR in dB; error power per sample in LSB² of the target word length; A-wtd: "
                  "A-weighted noise (IEC 61672-1). 'follows signal': signal-correlated error "
                  "found (undithered quiet passages).")

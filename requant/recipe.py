@@ -48,6 +48,9 @@ __all__ = [
     "DEFAULT_LIMIT_DB",
     "MAX_LIMIT_DB",
     "SEED_MAX",
+    "SILENCE_MODES",
+    "DEFAULT_SILENCE_MIN_MS",
+    "MAX_SILENCE_MIN_MS",
     "RECIPE_KEYS",
     "RecipeError",
     "RecipeTypeError",
@@ -60,6 +63,7 @@ __all__ = [
     "check_shaping_limit",
     "check_dither_in_loop",
     "describe_value",
+    "silence_min_frames",
 ]
 
 #: Quantizers: ``round`` (nearest, mid-tread, ties up) and ``truncate`` (toward minus infinity).
@@ -82,6 +86,17 @@ DEFAULT_LIMIT_DB = 13.0
 MAX_LIMIT_DB = 30.0
 #: Largest seed (63 bits, so it fits every signed 64-bit store).
 SEED_MAX = 2**63 - 1
+#: What to do with digital silence: ``keep`` writes runs of exact zeros as exact zeros,
+#: ``dither`` treats them like any other quiet passage.
+SILENCE_MODES = ("keep", "dither")
+#: Shortest run of exact zeros (ms) that counts as digital silence, by default. 20 ms is far
+#: longer than the zero runs inside music (a 20 Hz tone at one 24-bit LSB is within half an
+#: LSB of zero for under 4 ms of each crossing; a zero crossing of anything louder is one or
+#: two samples), and shorter than any gap a listener hears as silence rather than as a click
+#: (gaps of a few ms are detected as gaps, common practice) or than the tail of a one-shot.
+DEFAULT_SILENCE_MIN_MS = 20.0
+#: Longest allowed minimum silent run, ms (the requantizer holds back that much audio).
+MAX_SILENCE_MIN_MS = 10_000.0
 #: Largest magnitude of a user coefficient: beyond it the loop cannot be useful, and
 #: sums of such numbers overflow.
 MAX_COEFFICIENT = 1e6
@@ -100,6 +115,9 @@ RECIPE_KEYS = {
     "shaping_rate": "the sample rate in Hz the coefficients were made for, or null",
     "seed": "an integer from 0 to 2**63 - 1, or null for a fresh one",
     "force_dither": "true or false",
+    "silence": "one of " + ", ".join(SILENCE_MODES),
+    "silence_min_ms": f"a number of ms above 0 and at most {MAX_SILENCE_MIN_MS:g} (the shortest "
+                      "run of exact zeros kept silent)",
 }
 
 
@@ -234,6 +252,21 @@ def _check_seed(seed):
     if not 0 <= seed <= SEED_MAX:
         raise RecipeError("seed", seed, f"is out of range; it must be {RECIPE_KEYS['seed']}")
     return int(seed)
+
+
+def silence_min_frames(ms, sample_rate):
+    """``ms`` milliseconds as a whole number of frames at ``sample_rate``: rounded up, at
+    least 1 (a run this long or longer counts as digital silence)."""
+    return max(1, math.ceil(float(ms) * float(sample_rate) / 1000.0 - 1e-9))
+
+
+def _check_silence_min(ms):
+    if not _is_number(ms):
+        raise _typed("silence_min_ms", ms)
+    if not (math.isfinite(ms) and 0.0 < float(ms) <= MAX_SILENCE_MIN_MS):
+        raise RecipeError("silence_min_ms", ms,
+                          f"is out of range; it must be {RECIPE_KEYS['silence_min_ms']}")
+    return float(ms)
 
 
 def _check_bool(field, value):
@@ -556,6 +589,16 @@ class Recipe:
     force_dither : bool, default False
         Dither even when the input already lies on the target grid (otherwise
         such input is written unchanged).
+    silence : {'keep', 'dither'}, default 'keep'
+        ``keep``: in every run of at least ``silence_min_ms`` of exact zeros,
+        per channel, the output is exact zeros and the error is zero (no
+        dither hiss out of nothing; the shaping filter's and the high-passed
+        dither's memory are cleared there). ``dither``: zeros are dithered
+        like any other sample.
+    silence_min_ms : float, ms, (0, 10000], default 20
+        The shortest run of exact zeros kept silent
+        (:data:`DEFAULT_SILENCE_MIN_MS` says why 20); in frames, see
+        :meth:`silence_frames`.
 
     Notes
     -----
@@ -571,6 +614,8 @@ class Recipe:
     shaping: Shaping = field(default_factory=Shaping)
     seed: int | None = None
     force_dither: bool = False
+    silence: str = "keep"
+    silence_min_ms: float = DEFAULT_SILENCE_MIN_MS
 
     #: Dictionary keys that are not fields of their own (the shaping's parts).
     FLAT_SHAPING_KEYS: ClassVar[tuple[str, ...]] = _FLAT_SHAPING
@@ -583,12 +628,21 @@ class Recipe:
             object.__setattr__(self, "shaping", Shaping.parse(self.shaping))
         object.__setattr__(self, "seed", _check_seed(self.seed))
         _check_bool("force_dither", self.force_dither)
+        _choice("silence", self.silence, SILENCE_MODES)
+        object.__setattr__(self, "silence_min_ms", _check_silence_min(self.silence_min_ms))
         check_dither_in_loop(self.dither, self.shaping.kind != "none")
 
     @property
     def lsb(self):
         """One LSB at :attr:`bits`, full scale 1.0: 2^−(bits−1)."""
         return 2.0 ** -(self.bits - 1)
+
+    def silence_frames(self, sample_rate):
+        """The shortest silent run in frames at ``sample_rate`` (at least 1); 0 when
+        silence is dithered."""
+        if self.silence != "keep":
+            return 0
+        return silence_min_frames(self.silence_min_ms, sample_rate)
 
     def replace(self, **changes):
         """A copy with some fields changed (validated again)."""
@@ -613,6 +667,8 @@ class Recipe:
             "shaping_rate": s.rate,
             "seed": self.seed,
             "force_dither": self.force_dither,
+            "silence": self.silence,
+            "silence_min_ms": self.silence_min_ms,
         }
 
     @classmethod
@@ -644,7 +700,8 @@ class Recipe:
             raise RecipeError(unknown[0], data[unknown[0]],
                               f"is not a recipe setting{did}; known settings are "
                               f"{', '.join(RECIPE_KEYS)}")
-        fields = {k: data[k] for k in ("bits", "quantizer", "dither", "seed", "force_dither")
+        fields = {k: data[k] for k in ("bits", "quantizer", "dither", "seed", "force_dither",
+                                        "silence", "silence_min_ms")
                   if k in data}
         if any(k in data for k in _FLAT_SHAPING):
             fields["shaping"] = _shaping_from_flat(data, base.shaping, base_dir)
@@ -661,14 +718,18 @@ class Recipe:
         file name a custom filter came from (its coefficients are there)."""
         d = self.to_dict()
         d.pop("shaping_source")
+        if self.silence != "keep":
+            d.pop("silence_min_ms")  # it decides nothing then
         return d
 
     def describe(self):
         """One line for people: ``16-bit, round, dither tpdf, shaping none, seed 7``."""
         seed = "fresh seed" if self.seed is None else f"seed {self.seed}"
         forced = ", dither forced" if self.force_dither else ""
+        silence = (f"silence kept (>= {self.silence_min_ms:g} ms)" if self.silence == "keep"
+                   else "silence dithered")
         return (f"{self.bits}-bit, {self.quantizer}, dither {self.dither}, shaping "
-                f"{self.shaping.describe()}, {seed}{forced}")
+                f"{self.shaping.describe()}, {seed}{forced}, {silence}")
 
 
 def _shaping_from_flat(data, current, base_dir):

@@ -203,6 +203,29 @@ def test_true_peak_and_dc_in_report(tmp_path):
     assert rep.channels[0].measured.input_dc_offset == pytest.approx(np.mean(x), abs=1e-9)
 
 
+def test_loudness_of_input_and_output_in_report(tmp_path):
+    # EBU Tech 3341 test 1, from memory (REFERENCES.md §7): a stereo 1 kHz sine at -23 dBFS
+    # reads -23.0 LUFS ±0.1 (ITU-R BS.1770-4). The 8-bit TPDF output adds error some 25 dB
+    # below the tone's K-weighted level (about +0.014 LU): measured, not assumed equal.
+    from requant.dsp.loudness import integrated_loudness
+
+    fs = 48000
+    n = np.arange(12 * fs)
+    x = np.repeat((10 ** (-23 / 20) * np.sin(2 * np.pi * 1000 * n / fs))[:, None], 2, axis=1)
+    p = tmp_path / "tone.wav"
+    sf.write(p, x.astype(np.float32), fs, subtype="FLOAT")
+    rep = convert_file(p, tmp_path / "o.wav", Recipe(bits=8, seed=1),
+                       outputs=Outputs(report=tmp_path / "r.json", error=tmp_path / "e.wav"))
+    loud = rep.analysis.loudness
+    assert loud["input_integrated_lufs"] == pytest.approx(-23.0, abs=0.1)
+    assert loud["input_range_lu"] == pytest.approx(0.0, abs=0.02)
+    out, _ = sf.read(tmp_path / "o.wav")
+    assert loud["output_integrated_lufs"] == pytest.approx(integrated_loudness(out, fs), abs=0.01)
+    assert loud["output_integrated_lufs"] - loud["input_integrated_lufs"] == pytest.approx(
+        integrated_loudness(out, fs) - integrated_loudness(x.astype(np.float32), fs), abs=0.01)
+    assert json.loads((tmp_path / "r.json").read_text())["analysis"]["loudness"] == loud
+
+
 @pytest.mark.parametrize("frames", [300, 5000, 15435, 40000])
 @pytest.mark.parametrize("shaped", [False, True])
 def test_no_false_alarm_for_tpdf_on_short_files(frames, shaped):

@@ -453,3 +453,24 @@ def test_a_dither_of_no_model_is_unknown(master48, tmp_path):
     assert r["dither"] == "unknown" and r["predicted"]["error_rms_dbfs"] is None
     assert r["identification"]["innovation_variance_lsb2"] == pytest.approx(1 / 3, rel=0.03)
     assert not r["passed"] and any("no requantization model" in f for f in r["findings"])
+
+
+def test_loudness_of_master_and_delivery(master48, tmp_path):
+    # ITU-R BS.1770-4 (REFERENCES.md §7): the delivery is gain x master + error, so a -6.02 dB
+    # delivery reads 6.02 LU below its master (the error, 16-bit TPDF, moves it by far less
+    # than 0.01 LU), and each reads as the array function (dsp/loudness.py, checked against
+    # pyloudnorm in test_loudness.py) reads the samples, within the meter's 0.01 LU bins.
+    from requant.dsp.loudness import integrated_loudness
+
+    path, q, _, _ = deliver(tmp_path, master48, 16, seed=5, gain=0.5)
+    r = audit_pair(master48[0], path)
+    loud = r["loudness"]
+    assert list(loud) == ["master_integrated_lufs", "delivered_integrated_lufs",
+                          "master_range_lu", "delivered_range_lu", "channel_layout"]
+    assert loud["master_integrated_lufs"] == pytest.approx(
+        integrated_loudness(master48[1], 48000), abs=0.01)
+    assert loud["delivered_integrated_lufs"] == pytest.approx(
+        integrated_loudness(q / 2.0**15, 48000), abs=0.01)
+    assert loud["master_integrated_lufs"] - loud["delivered_integrated_lufs"] == pytest.approx(
+        20 * math.log10(2), abs=0.01)
+    assert loud["master_range_lu"] == pytest.approx(loud["delivered_range_lu"], abs=0.02)

@@ -30,6 +30,13 @@ def test_demo_runs_and_tells_dithered_from_undithered(tmp_path):
     assert rows["chime_8bit_round.wav"].endswith("YES")
     assert rows["tidewater_16bit_tpdf.flac"].endswith("no")
     rep = json.loads((tmp_path / "out" / "tidewater_16bit_tpdf_report.json").read_text())
-    # TPDF: measured error power within 1 % of Δ²/4 (Lipshitz, Wannamaker & Vanderkooy 1992)
-    assert abs(rep["measured"]["error_power_lsb2"] - 0.25) < 0.0025
+    # the cue's 0.5 s head and 0.4 s tail of digital silence are kept silent, in both channels
+    assert [ch["measured"]["silent_frames"] for ch in rep["channels"]] == [43200, 43200]
+    assert any("Digital silence kept silent: 0.90 s" in n for n in rep["notes"])
+    assert "0.90 s of digital silence kept silent" in table
+    # TPDF: Δ²/4 (Lipshitz, Wannamaker & Vanderkooy 1992) over the samples requantized; the
+    # measured error power within 1 % of it
+    share = 1 - 43200 / rep["input"]["frames"]
+    assert rep["predicted"]["error_power_lsb2"] == pytest.approx(0.25 * share)
+    assert abs(rep["measured"]["error_power_lsb2"] / (0.25 * share) - 1) < 0.01
     assert (tmp_path / "out" / "tidewater_16bit_tpdf_hearing_report.html").stat().st_size > 10000

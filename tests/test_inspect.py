@@ -468,3 +468,80 @@ def test_bad_options(tmp_path, kwargs, error, match):
     path = write(tmp_path, "x.wav", np.zeros(10, np.int16), "PCM_16")
     with pytest.raises(error, match=match):
         inspect_file(path, **kwargs)
+
+
+# --------------------------------------------------------------------------
+# The compiled scan kernel, and loudness
+
+
+def test_scan_kernel_equals_plain_twin():
+    # The same figures from the compiled kernel and its plain-Python twin, on blocks that take
+    # every path: zeros, full-scale runs, NaN, values above full scale, uneven block sizes.
+    from requant.dsp import native
+    from requant.dsp.scan import CHANNEL_FIELDS, LANE_FIELDS, scan_block_plain
+
+    rng = np.random.default_rng(13)
+    for nch in (1, 2, 3):
+        x = (rng.integers(-3000, 3000, (3001, nch)) / 32768.0).astype(np.float32)
+        x[100:110, 0] = 1.0
+        x[500, -1] = np.nan
+        x[700:705] = 0.0
+        x[900, 0] = 1.5
+        outs = []
+        for kern in (native.kernel("scan", x=np.float32), scan_block_plain):
+            w = max(4, nch)
+            lanes = np.zeros((len(LANE_FIELDS), w))
+            lanes[3], lanes[4] = -np.inf, np.inf
+            chans = np.zeros((nch, len(CHANNEL_FIELDS)))
+            orb, ctl = np.zeros(w, np.uint64), np.zeros(2)
+            got = []
+            for a, b in ((0, 7), (7, 1200), (1200, 1201), (1201, 3001)):
+                blocks = np.zeros(2 * nch * 8)
+                part = np.ascontiguousarray(x[a:b])
+                kern(part.reshape(-1), b - a, nch, 1.0, 1 - 2.0**-15, 3, 25, 480,
+                     lanes.reshape(-1), chans.reshape(-1), orb, ctl, blocks)
+                got.append(blocks[:2 * nch * int(ctl[1])].copy())
+            outs.append((lanes, chans, ctl, np.concatenate(got)))
+        for a, b in zip(*outs):
+            assert np.array_equal(a, b, equal_nan=True), nch
+
+
+def test_loudness_of_the_ebu_tech_3341_sine(tmp_path):
+    # EBU Tech 3341 test 1, from memory (REFERENCES.md §7): a stereo 1 kHz sine at -23 dBFS
+    # reads -23.0 LUFS ±0.1 (ITU-R BS.1770-4); a steady tone's loudness range is 0 LU.
+    n = np.arange(20 * RATE)
+    x = 10 ** (-23 / 20) * np.sin(2 * np.pi * 1000 * n / RATE)
+    path = write(tmp_path, "tone.wav", np.column_stack([x, x]).astype(np.float32), "FLOAT")
+    r = inspect_file(path, block_frames=30000)
+    assert r["loudness"]["integrated_lufs"] == pytest.approx(-23.0, abs=0.1)
+    assert r["loudness"]["range_lu"] == pytest.approx(0.0, abs=0.02)
+    assert r["loudness"]["channel_layout"] == "L R"
+    assert "LUFS" in format_inspection(r)
+    assert r["findings"] == ["float-content"]  # loudness adds no finding
+
+
+def test_loudness_undefined_below_the_gate_or_too_low_a_rate(tmp_path):
+    r = inspect_file(write(tmp_path, "z.wav", np.zeros((48000, 2), np.int16), "PCM_16"))
+    assert r["loudness"]["integrated_lufs"] is None and r["loudness"]["range_lu"] is None
+    r = inspect_file(write(tmp_path, "low.wav", np.ones((4000, 1), np.int16), "PCM_16",
+                           rate=3000))
+    assert r["loudness"] == {"integrated_lufs": None, "range_lu": None, "channel_layout": None,
+                             "channel_weights": None}
+    assert "n/a" in format_inspection(r)
+
+
+def test_side_thread_runs_in_order_and_reraises():
+    # requant.dsp.overlap.SideThread: one call at a time, in order; an exception raised on the
+    # thread reaches the caller at join(); close() is safe twice.
+    from requant.dsp.overlap import SideThread
+
+    seen = []
+    with SideThread() as side:
+        for k in range(5):
+            side.start(seen.append, k)
+        side.join()
+        assert seen == [0, 1, 2, 3, 4]
+        side.start(int, "not a number")
+        with pytest.raises(ValueError):
+            side.join()
+    side.close()

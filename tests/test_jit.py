@@ -33,19 +33,23 @@ SHAPER9 = (2.412, -3.370, 3.937, -4.174, 3.353, -2.205, 1.281, -0.569, 0.0847)
 def _state(nch, taps, seed=3):
     rs = np.random.default_rng(seed)
     return dict(rng=rs.integers(0, 2**63, nch * 4, dtype=np.uint64),
-                fbs=np.zeros(nch * (2 * taps + 1)), hp=np.zeros(nch), acc=np.zeros(nch * 10))
+                fbs=np.zeros(nch * (2 * taps + 1)), hp=np.zeros(nch),
+                acc=np.zeros(nch * len(_kernel.ACC_FIELDS)), zs=np.zeros(nch, np.int64))
 
 
-def _run(kernel, x, nch, mode, h, codes_dtype, st, want_err=1):
-    n = x.size // nch
+def _run(kernel, x, nch, mode, h, codes_dtype, st, want_err=1, sil_len=0, m=0):
+    """The kernel on ``x`` (frames, then ``m`` frames of look-ahead), keeping runs of
+    ``sil_len`` zeros silent."""
+    n = x.size // nch - m
     codes = np.zeros(n * nch, dtype=codes_dtype)
     err = np.zeros(n * nch if want_err else 1, dtype=np.float32)
     hh = np.asarray(h, dtype=np.float64) if len(h) else np.zeros(1)
     bits = 16 if codes_dtype == np.int16 else 24
     shift = (16 if codes_dtype == np.int16 else 32) - bits
     scale = 2.0 ** (bits - 1)
-    kernel(x, n, nch, st["rng"], mode, 0.5, hh, len(h), st["fbs"], st["hp"], scale, 1 / scale,
-           -(2 ** (bits - 1)), 2 ** (bits - 1) - 1, 2.0, shift, codes, err, want_err, st["acc"])
+    kernel(x, n, m, nch, st["rng"], mode, 0.5, hh, len(h), st["fbs"], st["hp"], scale,
+           1 / scale, -(2 ** (bits - 1)), 2 ** (bits - 1) - 1, 2.0, shift, codes, err, want_err,
+           st["acc"], sil_len, st["zs"])
     return codes, err
 
 
@@ -69,6 +73,31 @@ def test_native_equals_plain_twin(xd, cd, nch, mode, h):
     assert np.array_equal(ca, cb) and np.array_equal(ea, eb)
     for k in a:
         assert np.array_equal(a[k], b[k]), k
+
+
+@pytest.mark.parametrize("nch, mode, h", [(1, 2, ()), (2, 2, (1.0,)), (3, 3, ()),
+                                          (2, 0, SHAPER9), (3, 1, SHAPER9)])
+def test_native_equals_plain_twin_keeping_silence(nch, mode, h):
+    # runs of zeros longer and shorter than 50 frames, one reaching into the look-ahead
+    rs = np.random.default_rng(nch + mode)
+    x = rs.uniform(-0.9, 0.9, (600, nch)).astype(np.float32)
+    x[100:180, 0] = 0.0
+    x[300:360] = 0.0
+    x[400:440] = 0.0  # too short
+    x[540:] = 0.0  # 11 frames to process, the rest in the look-ahead
+    x = x.reshape(-1)
+    native = compiled_kernel(np.float32, np.int16, len(h))
+    a, b = _state(nch, len(h)), _state(nch, len(h))
+    ca, ea = _run(native, x, nch, mode, h, np.int16, a, sil_len=50, m=49)
+    cb, eb = _run(_kernel.quantize_block_plain, x, nch, mode, h, np.int16, b, sil_len=50, m=49)
+    assert np.array_equal(ca, cb) and np.array_equal(ea, eb)
+    for k in a:
+        assert np.array_equal(a[k], b[k]), k
+    silent = a["acc"].reshape(nch, -1)[:, _kernel.ACC_FIELDS.index("silent")]
+    assert silent[0] == 80 + 60 + 11 and all(silent[1:] == 60 + 11)
+    assert all(a["zs"] == 1)  # the last run is silent, and that decision is carried
+    codes = ca.reshape(-1, nch)
+    assert codes[400:440].any() or mode == 0
 
 
 def test_native_path_is_in_use():
@@ -119,9 +148,9 @@ def test_native_rejects_wrong_buffers():
     k = compiled_kernel(np.float32, np.int16, 0)
     st = _state(1, 0)
     with pytest.raises(TypeError, match="contiguous int16"):
-        k(np.zeros(4, np.float32), 4, 1, st["rng"], 2, 0.5, np.zeros(1), 0, st["fbs"], st["hp"],
-          32768.0, 1 / 32768, -32768, 32767, 2.0, 0, np.zeros(4, np.int32),
-          np.zeros(4, np.float32), 1, st["acc"])
+        k(np.zeros(4, np.float32), 4, 0, 1, st["rng"], 2, 0.5, np.zeros(1), 0, st["fbs"],
+          st["hp"], 32768.0, 1 / 32768, -32768, 32767, 2.0, 0, np.zeros(4, np.int32),
+          np.zeros(4, np.float32), 1, st["acc"], 0, st["zs"])
 
 
 _CHILD = r"""
@@ -205,12 +234,12 @@ def test_native_equals_plain_twin_long_shapers(taps):
 def _quantize_args(n=8, nch=2, taps=9, want_err=1):
     """Valid arguments of the quantize kernel, as a dict in declared order."""
     st = _state(nch, taps)
-    return dict(x=np.zeros(n * nch, np.float32), n=n, nch=nch, rng=st["rng"], mode=2,
+    return dict(x=np.zeros(n * nch, np.float32), n=n, m=0, nch=nch, rng=st["rng"], mode=2,
                 offset=0.5, h=np.asarray(SHAPER9[:taps] or (0.0,)), ntaps=taps, fbs=st["fbs"],
                 hp_prev=st["hp"], scale=32768.0, inv_scale=1 / 32768, kmin=-32768, kmax=32767,
                 e_bound=2.0, shift=0, codes=np.zeros(n * nch, np.int16),
                 err=np.zeros(n * nch if want_err else 1, np.float32), want_err=want_err,
-                acc=st["acc"])
+                acc=st["acc"], sil_len=0, zs=st["zs"])
 
 
 def _dual_args(n=2500, nch=2):
@@ -223,14 +252,52 @@ def _dual_args(n=2500, nch=2):
                 es=rs.uniform(-1e-4, 1e-4, n * nch).astype(np.float32), m=11 + n, nch=nch,
                 phases=tp._PHASES_FLAT.copy(), gain=tp.PHASE_GAIN, sub=tp.SUB_FRAMES,
                 run=tp.RUN_FRAMES, peak_in=np.zeros(nch), peak_out=np.zeros(nch),
-                v=np.zeros(work + 11), acc=np.zeros(work), bx=np.zeros(nsb), be=np.zeros(nsb),
-                ub=np.zeros(nsb), pk=np.zeros(nsb), phases32=tp._PHASES32.copy(),
-                v32=np.zeros(work + 11, np.float32), acc32=np.zeros(work, np.float32))
+                v=np.zeros(work + 11), acc=np.zeros(work), bx=np.zeros(nch * nsb),
+                be=np.zeros(nch * nsb), ub=np.zeros(nsb), pk=np.zeros(nsb),
+                phases32=tp._PHASES32.copy(), v32=np.zeros(work + 11, np.float32),
+                acc32=np.zeros(work, np.float32))
+
+
+def _peak_args(n=2500, nch=2):
+    """Valid arguments of the single true-peak kernel, as a dict in declared order."""
+    d = _dual_args(n, nch)
+    return dict(hx=d["hx"], xs=d["xs"], m=d["m"], nch=nch, phases=d["phases"],
+                fold=d["phases32"], gain=d["gain"], sub=d["sub"], run=d["run"],
+                peak=d["peak_in"], bx=d["bx"], ub=d["ub"], pk=d["pk"], v=d["v"], acc=d["acc"],
+                v32=d["v32"], acc32=d["acc32"])
+
+
+def _loudness_args(n=9000, nch=3, signals=2):
+    """Valid arguments of the K-weighting kernel, as a dict in declared order."""
+    from requant.dsp.loudness import k_weighting_sos
+
+    rs = np.random.default_rng(8)
+    pairs = (nch + 1) // 2
+    return dict(x=rs.uniform(-1, 1, n * nch).astype(np.float32),
+                e=rs.uniform(-1e-4, 1e-4, n * nch).astype(np.float32), n=n, nch=nch, scale=1.0,
+                gain=1.0, sos=np.ascontiguousarray(k_weighting_sos(48000).reshape(-1)),
+                step=4800, z=np.zeros(12 * signals * pairs), part=np.zeros(2 * signals * pairs),
+                ctl=np.zeros(2), sums=np.zeros(signals * nch * 2))
+
+
+def _scan_args(n=5000, nch=2):
+    """Valid arguments of inspect's scan kernel, as a dict in declared order."""
+    from requant.dsp.scan import CHANNEL_FIELDS, LANE_FIELDS
+
+    rs = np.random.default_rng(9)
+    w = max(4, nch)
+    return dict(x=rs.uniform(-1, 1, n * nch).astype(np.float32), n=n, nch=nch, scale=1.0,
+                clip_level=1 - 2.0**-15, clip_run=3, grid_cap=25, floor_len=2400,
+                lanes=np.zeros(len(LANE_FIELDS) * w), chans=np.zeros(len(CHANNEL_FIELDS) * nch),
+                orb=np.zeros(w, np.uint64), ctl=np.zeros(2), blocks=np.zeros(2 * nch * 3))
 
 
 _FAMILY_CASES = {
     "quantize": (dict(x=np.float32, codes=np.int16, taps=9), _quantize_args),
     "truepeak-dual": (dict(xs=np.float32, es=np.float32), _dual_args),
+    "truepeak": (dict(xs=np.float32), _peak_args),
+    "loudness": (dict(x=np.float32, signals=2), _loudness_args),
+    "scan": (dict(x=np.float32), _scan_args),
 }
 _ARRAYS = [(f, a[0]) for f in _FAMILY_CASES for a in native.signature(f) if a[1][0].endswith("*")]
 

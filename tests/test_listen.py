@@ -138,8 +138,13 @@ def test_program_renders_hold_exactly_the_requantized_codes(kit16):
         k = y * 2.0**15
         assert np.array_equal(k, np.round(k))  # on the 16-bit grid
         again = requantize(x, bits=16, quantizer=m["quantizer"], dither=m["dither"],
-                           coeffs=m["coefficients"], seed=kit["seed"])
+                           coeffs=m["coefficients"], seed=kit["seed"],
+                           silence_frames=kit["silence"]["min_frames"])
         assert np.array_equal(y, again)
+    # the source ends in 0.3 s of digital silence: kept silent in every render (20 ms)
+    assert kit["silence"] == {"mode": "keep", "min_ms": 20.0, "min_frames": FS // 50}
+    tail = int(0.25 * FS)
+    assert not any(read(out / m["file"])[-tail:].any() for m in kit["methods"])
 
 
 def test_renders_differ_only_by_their_error(kit16):

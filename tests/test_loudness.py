@@ -145,3 +145,165 @@ def test_channel_weights():
 def test_rate_too_low_is_refused():
     with pytest.raises(ValueError, match="too low"):
         k_weighting_sos(3000)
+
+
+# --- The streaming meter (LoudnessMeter): the same figures for any blocks, outside references ---
+
+from requant.dsp.loudness import (  # noqa: E402
+    GATE_BIN_LU,
+    LoudnessMeter,
+    channel_weights,
+    kernel_py,
+)
+
+
+def meter_reading(x, rate, *, block=65536, weights=None):
+    m = LoudnessMeter(x.shape[1], rate, weights=weights)
+    for i in range(0, x.shape[0], block):
+        m.process(x[i:i + block])
+    return m.readings()[0]
+
+
+def parts(rate, levels_seconds, channels=2, freq=1000.0):
+    """Consecutive 1 kHz sine stretches (the EBU test signals' shape), (level dBFS, seconds)."""
+    return np.concatenate([sine(freq, s, rate, level, channels) for level, s in levels_seconds])
+
+
+@pytest.mark.parametrize("rate", [44100, 48000])
+@pytest.mark.parametrize("case, levels, expected", [
+    # EBU Tech 3341 (2016) test signals 1 to 5, from memory (REFERENCES.md §7): stereo 1 kHz
+    # sines, the expected reading ±0.1 LU. 2: the level follows the sine. 3: the -36 dBFS parts
+    # are 13 LU below: the relative gate leaves them out. 4: the -72 dBFS parts are below the
+    # absolute gate. 5: -26/-20/-26 dBFS over 20 s, 20.1 s, 20 s reads -23.0 (the loud part
+    # dominates the power mean; the quiet parts pass both gates).
+    ("3341-1", [(-23.0, 20.0)], -23.0),
+    ("3341-2", [(-33.0, 20.0)], -33.0),
+    ("3341-3", [(-36.0, 10.0), (-23.0, 60.0), (-36.0, 10.0)], -23.0),
+    ("3341-4", [(-72.0, 10.0), (-36.0, 10.0), (-23.0, 60.0), (-36.0, 10.0), (-72.0, 10.0)], -23.0),
+    ("3341-5", [(-26.0, 20.0), (-20.0, 20.1), (-26.0, 20.0)], -23.0),
+])
+def test_ebu_tech_3341_signals(rate, case, levels, expected):
+    got = meter_reading(parts(rate, levels), rate)["integrated_lufs"]
+    assert got == pytest.approx(expected, abs=0.1), case
+
+
+def test_ebu_tech_3341_five_channels_and_an_lfe():
+    # EBU Tech 3341 test 6, from memory (REFERENCES.md §7): 1 kHz sines at L, R -28, C -24, Ls,
+    # Rs -30 dBFS read -23.0 LUFS ±0.1. Checked by hand from BS.1770-4: the mean squares
+    # weighted 1, 1, 1, 1.41, 1.41 sum to 0.00997/2, times the K-weighting's gain at 1 kHz
+    # (+0.69 dB) gives -22.33 dB, minus 0.691: -23.02. In the 5.1 order (L R C LFE Ls Rs) the
+    # LFE weighs 0 (BS.1770-4), so a loud LFE changes nothing.
+    rate = 48000
+    levels = [-28.0, -28.0, -24.0, -30.0, -30.0]
+    five = np.column_stack([sine(1000.0, 20.0, rate, v)[:, 0] for v in levels])
+    assert channel_weights(5) == ("L R C Ls Rs", (1.0, 1.0, 1.0, 1.41, 1.41))
+    assert meter_reading(five, rate)["integrated_lufs"] == pytest.approx(-23.0, abs=0.1)
+    lfe = sine(60.0, 20.0, rate, -6.0)[:, 0]
+    six = np.column_stack([five[:, :3], lfe, five[:, 3:]])
+    assert channel_weights(6)[1] == (1.0, 1.0, 1.0, 0.0, 1.41, 1.41)
+    assert (meter_reading(six, rate)["integrated_lufs"]
+            == pytest.approx(meter_reading(five, rate)["integrated_lufs"], abs=1e-9))
+
+
+def test_other_channel_counts_weigh_every_channel_one():
+    assert channel_weights(4) == ("4 channels, each weighted 1.0", (1.0,) * 4)
+    assert channel_weights(1)[1] == (1.0,) and channel_weights(2)[1] == (1.0, 1.0)
+
+
+@pytest.mark.parametrize("case, levels, expected", [
+    # EBU Tech 3342 loudness range test signals 1 to 4, from memory (REFERENCES.md §7): stereo
+    # 1 kHz sines, 20 s per part; the standard allows ±1 LU. By hand: the short-term values
+    # (3 s windows every 100 ms) sit on the plateaus but for the 29 windows straddling each
+    # step, so the 10th and 95th percentiles fall on the quieter and the louder plateau; in
+    # test 4 the -50 dBFS parts fall below the relative gate (20 LU under the power mean,
+    # about -46.7 LUFS). So the range is the plateaus' difference to the bins' 0.01 LU.
+    ("3342-1", [(-20.0, 20.0), (-30.0, 20.0)], 10.0),
+    ("3342-2", [(-20.0, 20.0), (-15.0, 20.0)], 5.0),
+    ("3342-3", [(-40.0, 20.0), (-20.0, 20.0)], 20.0),
+    ("3342-4", [(-50.0, 20.0), (-35.0, 20.0), (-20.0, 20.0), (-35.0, 20.0), (-50.0, 20.0)], 15.0),
+])
+def test_ebu_tech_3342_loudness_range(case, levels, expected):
+    got = meter_reading(parts(48000, levels), 48000)["range_lu"]
+    assert got == pytest.approx(expected, abs=2 * GATE_BIN_LU), case
+
+
+@pytest.mark.parametrize("rate, channels, seed", [(48000, 2, 1), (44100, 1, 2), (96000, 2, 3),
+                                                  (48000, 6, 4), (22050, 2, 5)])
+def test_streaming_meter_against_pyloudnorm_and_the_array_function(rate, channels, seed):
+    # pyloudnorm (reference library): within ±0.1 LU on varied material (tones, noise bursts,
+    # silence, levels from -85 to -18 dBFS). The array function's gating is exact; the meter
+    # decides the relative gate per 0.01 LU bin, so they agree to well within 0.01 LU.
+    x = _programme(rate, channels, seed)
+    weights = channel_weights(channels)[1]
+    got = meter_reading(x, rate, block=7919)["integrated_lufs"]
+    assert got == pytest.approx(integrated_loudness(x, rate, weights=weights), abs=0.01)
+    # pyloudnorm weighs channels 4 and 5 as surrounds (1.41) and takes at most five: give it
+    # the 5.1 signal without its LFE (weight 0 here)
+    ref = pyln.Meter(rate).integrated_loudness(x[:, [0, 1, 2, 4, 5]] if channels == 6 else x)
+    assert got == pytest.approx(ref, abs=0.1)
+
+
+@pytest.mark.parametrize("sizes", [pytest.param([1], marks=pytest.mark.slow), [7], [4800],
+                                   [65536], "uneven"])
+def test_any_blocks_give_the_same_readings_bit_for_bit(sizes):
+    rate = 8000  # short, so that one-frame blocks stay quick
+    x = _programme(rate, 2, 6)[: 10 * rate]
+    if sizes == "uneven":
+        sizes = list(np.random.default_rng(3).integers(0, 3000, 40))
+    whole = LoudnessMeter(2, rate)
+    whole.process(x)
+    parted = LoudnessMeter(2, rate)
+    i = k = 0
+    while i < x.shape[0]:
+        n = int(sizes[k % len(sizes)])
+        parted.process(x[i:i + n])
+        i += n
+        k += 1
+    assert parted.readings() == whole.readings()
+    assert whole.readings()[0]["integrated_lufs"] is not None
+
+
+def test_output_is_gain_times_input_plus_error():
+    # The second signal is gain * x + e, measured in the same pass: it must read as the array
+    # function reads that signal (BS.1770-4, within the meter's 0.01 LU bins).
+    rate = 48000
+    x = _programme(rate, 2, 8)
+    e = (np.random.default_rng(9).uniform(-1, 1, x.shape) * 1e-3).astype(np.float32)
+    m = LoudnessMeter(2, rate, with_output=True, gain=0.5)
+    for i in range(0, x.shape[0], 30000):
+        m.process(x[i:i + 30000], e[i:i + 30000])
+    src, out = m.readings()
+    assert src["integrated_lufs"] == pytest.approx(integrated_loudness(x, rate), abs=0.01)
+    y = 0.5 * x + e.astype(np.float64)
+    assert out["integrated_lufs"] == pytest.approx(integrated_loudness(y, rate), abs=0.01)
+    assert src["integrated_lufs"] - out["integrated_lufs"] == pytest.approx(6.02, abs=0.05)
+
+
+@pytest.mark.parametrize("signals", [1, 2])
+@pytest.mark.parametrize("channels", [1, 2, 3])
+def test_compiled_kernel_equals_plain_twin(signals, channels):
+    rate = 8000
+    x = _programme(rate, channels, 10)[:9000]
+    e = (np.random.default_rng(11).uniform(-1, 1, x.shape) * 1e-3).astype(np.float32)
+    a = LoudnessMeter(channels, rate, with_output=signals == 2, gain=0.8)
+    b = LoudnessMeter(channels, rate, with_output=signals == 2, gain=0.8)
+    for i in range(0, x.shape[0], 2500):
+        a.process(x[i:i + 2500], e[i:i + 2500])
+        b.process(x[i:i + 2500], e[i:i + 2500], kernel=kernel_py(signals))
+    assert a.readings() == b.readings()
+    assert np.array_equal(a._z, b._z) and np.array_equal(a._part, b._part)
+
+
+def test_integer_codes_read_as_their_full_scale_values():
+    # int32 blocks are left-justified codes: code / 2^31 is the sample (as for libsndfile).
+    x = sine(1000.0, 5.0, 48000, -23.0, channels=2)
+    codes = np.round(x * 2**31).astype(np.int32)
+    assert (meter_reading(codes, 48000)["integrated_lufs"]
+            == pytest.approx(meter_reading(codes / 2**31, 48000)["integrated_lufs"], abs=1e-9))
+
+
+def test_undefined_readings_are_none():
+    assert meter_reading(np.zeros((48000, 2)), 48000) == {"integrated_lufs": None,
+                                                          "range_lu": None}
+    short = meter_reading(sine(1000.0, 1.0, 48000, -20.0, channels=2), 48000)
+    assert short["integrated_lufs"] is not None and short["range_lu"] is None  # < 3 s

@@ -30,6 +30,8 @@ shaping = "hearing"
 shaping_order = 5
 shaping_limit_db = 9.5
 force_dither = true
+silence = "dither"
+silence_min_ms = 35
 analyze = true
 format = "flac"
 include = ["*.wav"]
@@ -44,7 +46,8 @@ def test_good_profile_gives_every_key(tmp_path):
     prof = load_profile(path)
     assert prof == {"bits": 12, "quantizer": "truncate", "dither": "rpdf",
                     "shaping": "hearing", "shaping_order": 5, "shaping_limit_db": 9.5,
-                    "force_dither": True, "analyze": True, "format": "flac",
+                    "force_dither": True, "silence": "dither", "silence_min_ms": 35,
+                    "analyze": True, "format": "flac",
                     "include": ["*.wav"],
                     "exclude": ["scratch/*"], "seed": 20240501}
     assert set(prof) | {"description"} == set(PROFILE_KEYS)

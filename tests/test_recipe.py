@@ -142,7 +142,11 @@ def test_every_dither_has_a_model():
 def test_requantizer_from_recipe_gives_the_same_bits():
     x = np.random.default_rng(3).uniform(-0.5, 0.5, (4000, 2))
     r = Recipe(bits=8, dither="rpdf", seed=11)
-    a, _ = Requantizer.from_recipe(r, 2).process(x, error=False)
+    a, _ = Requantizer.from_recipe(r, 2, sample_rate=48000).process(x, error=False)
+    b, _ = Requantizer(2, bits=8, dither="rpdf", seed=11, silence_frames=960).process(
+        x, error=False)
+    assert np.array_equal(a, b)
+    a, _ = Requantizer.from_recipe(r.replace(silence="dither"), 2).process(x, error=False)
     b, _ = Requantizer(2, bits=8, dither="rpdf", seed=11).process(x, error=False)
     assert np.array_equal(a, b)
     with pytest.raises(UsageError, match="no seed yet"):

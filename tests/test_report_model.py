@@ -26,23 +26,28 @@ RATE = 48000
 TOP = ["requant_version", "created", "settings", "input", "output", "error_signal", "lsb",
        "measured", "predicted", "channels", "warnings", "notes"]
 RECIPE = ["bits", "quantizer", "dither", "shaping", "shaping_order", "shaping_limit_db",
-          "shaping_coeffs", "shaping_source", "shaping_rate", "seed", "force_dither"]
+          "shaping_coeffs", "shaping_source", "shaping_rate", "seed", "force_dither", "silence",
+          "silence_min_ms"]
 INPUT = ["path", "format", "sample_rate", "channels", "frames", "duration_s", "subtype",
          "declared_frames"]
 OUTPUT = ["path", "format", "subtype", "bits", "container_bits", "passthrough"]
 FIGURES = ["snr_db", "error_power_lsb2", "error_mean_lsb", "error_rms_dbfs", "signal_rms_dbfs",
            "error_peak_dbfs", "clipped_samples"]
-MEASURED = FIGURES + ["over_full_scale_samples", "shaping_overloads"]
+MEASURED = FIGURES + ["over_full_scale_samples", "shaping_overloads", "silent_frames"]
 MEASURED_ANALYSED = MEASURED + ["a_weighted_noise_dbfs", "itu468_noise_dbfs", "tonal_fraction",
                                 "correlation_fraction", "correlated_error_fraction",
                                 "input_true_peak_dbtp", "output_true_peak_dbtp",
                                 "signal_correlated"]
 PREDICTED = ["snr_db", "error_power_lsb2", "error_rms_dbfs"]
 WEIGHTED = ["a_weighted_noise_dbfs", "itu468_noise_dbfs"]
-CHANNEL_ANALYSED = FIGURES + WEIGHTED + ["correlated_error_fraction", "input_dc_offset",
+CHANNEL = FIGURES + ["silent_frames"]
+CHANNEL_ANALYSED = CHANNEL + WEIGHTED + ["correlated_error_fraction", "input_dc_offset",
                                          "output_dc_offset", "input_true_peak_dbtp",
                                          "output_true_peak_dbtp"]
-ANALYSIS = ["method", "spectrum", "quietest_passage", "histogram", "true_peak", "dc_offset"]
+ANALYSIS = ["method", "spectrum", "quietest_passage", "histogram", "true_peak", "loudness",
+            "dc_offset"]
+LOUDNESS = ["input_integrated_lufs", "output_integrated_lufs", "input_range_lu", "output_range_lu",
+            "channel_layout", "channel_weights"]
 
 
 def keys_in_order(value):
@@ -138,11 +143,12 @@ def test_json_structure_is_pinned(written):
                                             "empty")
     for row in d["channels"]:
         assert list(row) == ["channel", "measured", "predicted"]
-        assert list(row["measured"]) == (CHANNEL_ANALYSED if per_channel else FIGURES)
+        assert list(row["measured"]) == (CHANNEL_ANALYSED if per_channel else CHANNEL)
         weighted = per_channel or (analysed and "pass-through" in case)
         assert list(row["predicted"]) == PREDICTED + (WEIGHTED if weighted else [])
     if analysed:
         assert list(d["analysis"]) == ANALYSIS
+        assert list(d["analysis"]["loudness"]) == LOUDNESS
 
 
 def test_settings_are_the_recipe_plus_three(written):

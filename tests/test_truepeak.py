@@ -367,3 +367,51 @@ def test_dual_meter_plain_twin_equals_compiled():
         d2.process(x[a:b], e[a:b], kernel=dual_peak_kernel_py)
         assert np.array_equal(d1.peak_in, d2.peak_in)
         assert np.array_equal(d1.peak_out, d2.peak_out)
+
+
+# --- SkippingTruePeakMeter: one signal, the same reading as the plain meter, bit for bit -------
+
+from requant.dsp.truepeak import SkippingTruePeakMeter, peak_kernel_py  # noqa: E402
+
+
+def _skipping(x, block, kernel=None):
+    m = SkippingTruePeakMeter(x.shape[1])
+    for i in range(0, x.shape[0], block):
+        m.process(x[i:i + block], kernel=kernel)
+    m.finish()
+    return m.true_peak
+
+
+@pytest.mark.parametrize("channels", [1, 2, 3, 6])
+@pytest.mark.parametrize("dtype", [np.float64, np.float32])
+@pytest.mark.parametrize("block", [pytest.param(5, marks=pytest.mark.slow), 1000, 65536])
+def test_skipping_meter_equals_the_plain_meter(channels, dtype, block):
+    # The plain BS.1770-4 meter on the same samples is the reference; the skip rule, the float32
+    # screen and its rounding margin must never change a reading.
+    rng = np.random.default_rng(channels)
+    n = 60000
+    t = np.arange(n) / 48000
+    x = 0.3 * rng.standard_normal((n, channels)) * (np.sin(2 * np.pi * 0.9 * t) ** 8)[:, None]
+    x[n // 3:n // 3 + 64, 0] = 0.9 * np.sin(np.pi / 2 * np.arange(64) + np.pi / 4)  # fs/4 burst
+    x = x.astype(dtype)
+    ref = TruePeakMeter(channels)
+    ref.process(x.astype(np.float64))
+    ref.finish()
+    assert np.array_equal(_skipping(x, block), ref.true_peak)
+
+
+def test_skipping_meter_reads_integer_codes_exactly():
+    # int32 blocks are left-justified codes; metered in code units and scaled by 2^-31 (a power
+    # of two: exact), the reading equals the plain meter's on code / 2^31.
+    rng = np.random.default_rng(4)
+    codes = (rng.integers(-2**23, 2**23, (30000, 2)) * 256).astype(np.int32)
+    codes[100:103, 1] = np.iinfo(np.int32).min  # the most negative code: |x| = 1 exactly
+    ref = TruePeakMeter(2)
+    ref.process(codes / 2.0**31)
+    ref.finish()
+    assert np.array_equal(_skipping(codes, 4096), ref.true_peak)
+
+
+def test_skipping_meter_plain_twin_equals_compiled():
+    x = np.random.default_rng(5).uniform(-1, 1, (3000, 2))
+    assert np.array_equal(_skipping(x, 700), _skipping(x, 700, kernel=peak_kernel_py))

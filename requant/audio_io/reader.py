@@ -6,6 +6,7 @@ requantizing this one. Buffers circulate through a free queue, so memory is a
 fixed handful of blocks whatever the file length.
 """
 
+import collections
 import os
 import queue
 import threading
@@ -118,21 +119,26 @@ class BlockReader:
         Open for reading, positioned at the start.
     block_frames : int
     dtype : str
-        'float32' or 'float64'.
+        'float32', 'float64' or 'int32'.
     depth : int
         Blocks read ahead.
+    keep : int
+        Blocks the consumer holds after the one just yielded (see Notes).
 
     Notes
     -----
-    Each yielded block stays valid until the next iteration step.
+    Each yielded block stays valid until ``keep + 1`` more iteration steps
+    (the next one, with the default ``keep=0``): a consumer that hands a block
+    to another thread can read the next one meanwhile.
     """
 
-    def __init__(self, f, block_frames, dtype, depth=2):
+    def __init__(self, f, block_frames, dtype, depth=2, keep=0):
         self._f = f
         self._n = block_frames
+        self._keep = int(keep)
         self._free = queue.Queue()
         self._full = queue.Queue()
-        for _ in range(depth + 1):
+        for _ in range(depth + 1 + self._keep):
             self._free.put(np.empty((block_frames, f.channels), dtype=dtype))
         self._dtype = dtype
         self._stop = False
@@ -157,18 +163,18 @@ class BlockReader:
         self._full.put(_END)
 
     def __iter__(self):
-        prev = None
+        held = collections.deque()
         try:
             while True:
-                if prev is not None:
-                    self._free.put(prev)
-                    prev = None
+                while len(held) > self._keep:
+                    self._free.put(held.popleft())
                 item = self._full.get()
                 if item is _END:
                     return
                 if isinstance(item, BaseException):
                     raise item
-                start, x, prev = item
+                start, x, buf = item
+                held.append(buf)
                 yield start, x
         finally:
             self.close()

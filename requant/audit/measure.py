@@ -7,7 +7,8 @@ clipped samples, and sums per window (:data:`WINDOW` frames, the quiet-passage
 window of the convert report's analysis) the figures every time-domain result
 of the audit comes from. The error and the scaled master then feed the convert
 report's own streaming analysis (:class:`requant.dsp.analysis.ErrorAnalyzer`:
-Welch spectrum, weighted noise, signal-correlated error, quietest passage),
+Welch spectrum, weighted noise, signal-correlated error, quietest passage, and
+the loudness of the master and of the delivery, ``gain·master + e``),
 unchanged, so the audit and the report measure the same way.
 
 A fixed number of evenly spread stretches of the error (:data:`RESERVOIR_CHUNKS`
@@ -145,8 +146,10 @@ def measure(master, delivered, alignment, bits, *, progress=None):
     from requant.dsp import native
 
     ch, rate, n_all = master.channels, master.rate, alignment.overlap_frames
+    # the delivery is gain x master + error: its loudness is measured from the same blocks
     an = ErrorAnalyzer(ch, rate, bits=bits, quantizer="round", dither="tpdf",
-                       total_frames=n_all, true_peak=False, own_sums=False)
+                       total_frames=n_all, true_peak=False, own_sums=False,
+                       output_gain=alignment.gain)
     qw = an.QW
     block = max(qw, 1 << 16)
     kern = native.kernel("residual", m=np.dtype(master.dtype))

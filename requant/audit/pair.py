@@ -115,6 +115,17 @@ def _weighted(res, meas):
     return out
 
 
+def _loudness_json(loud):
+    """Master and delivery loudness over the overlap (the analysis' input and output)."""
+    if loud is None:
+        return None
+    return {"master_integrated_lufs": loud["input_integrated_lufs"],
+            "delivered_integrated_lufs": loud["output_integrated_lufs"],
+            "master_range_lu": loud["input_range_lu"],
+            "delivered_range_lu": loud["output_range_lu"],
+            "channel_layout": loud["channel_layout"]}
+
+
 def _ntf_json(ident):
     n = ident.get("ntf")
     if not n:
@@ -204,6 +215,7 @@ def _assemble(m, d, sc, al, meas, bits):
         "clipped_samples": meas.clipped,
         "error_rms_dbfs": _db_power(power, meas.scale),
         "measured": {"error_rms_dbfs": _db_power(power, meas.scale), **_weighted(res, meas)},
+        "loudness": _loudness_json(res.get("loudness")),
         "predicted": pred,
         "identification": _identification_json(ident),
         "files": {"master": m.describe(), "delivered": d.describe()},

@@ -26,6 +26,8 @@ from requant.cli.common import (
     MaybeForceDither,
     MaybeQuantizer,
     MaybeShaping,
+    MaybeSilence,
+    MaybeSilenceMin,
     Quiet,
     Seed,
     ShapingLimit,
@@ -237,6 +239,8 @@ def batch(
     shaping_limit: ShapingLimit = None,
     seed: Seed = None,
     force_dither: MaybeForceDither = None,
+    silence: MaybeSilence = None,
+    silence_min: MaybeSilenceMin = None,
     analyze: Annotated[bool | None, typer.Option(
         "--analyze/--no-analyze",
         help="Measure each file's weighted noise, signal-correlated error and true peak "
@@ -283,7 +287,8 @@ def batch(
         prof = load_profile(profile)
     options = recipe_options(bits=bits, quantizer=quantizer, dither=dither, shaping=shaping,
                              shaping_order=shaping_order, shaping_limit=shaping_limit,
-                             seed=seed, force_dither=force_dither)
+                             seed=seed, force_dither=force_dither, silence=silence,
+                             silence_min=silence_min)
     options.update({"format": format.value if format else None, "include": include or None,
                     "exclude": exclude or None, "block_frames": block_frames,
                     "analyze": analyze})

@@ -25,14 +25,17 @@ from requant.recipe import (
     DEFAULT_LIMIT_DB,
     DEFAULT_ORDER,
     DITHERS,
+    MAX_SILENCE_MIN_MS,
     MAX_TAPS,
     QUANTIZERS,
     SEED_MAX,
+    SILENCE_MODES,
     Recipe,
 )
 
 __all__ = ["CAUTION", "DEFAULTS", "err", "friendly", "set_debug", "handle_sigterm", "stop_reason",
-           "stop_exit_code", "Quantizer", "Dither",
+           "stop_exit_code", "Quantizer", "Dither", "Silence", "SilenceOpt", "SilenceMin",
+           "MaybeSilence", "MaybeSilenceMin",
            "recipe_options", "OPTIONS", "Bits", "QuantizerOpt", "DitherOpt", "ShapingOpt",
            "ShapingOrder", "ShapingLimit", "ShaperOrder", "ShaperLimit", "Seed", "ForceDither",
            "Overwrite", "Quiet",
@@ -114,6 +117,8 @@ Quantizer = Enum("Quantizer", {q: q for q in QUANTIZERS}, type=str)
 Quantizer.__doc__ = "The quantizers of requant.recipe.QUANTIZERS."
 Dither = Enum("Dither", {d.replace("-", "_"): d for d in DITHERS}, type=str)
 Dither.__doc__ = "The dithers of requant.recipe.DITHERS."
+Silence = Enum("Silence", {m: m for m in SILENCE_MODES}, type=str)
+Silence.__doc__ = "What to do with digital silence: requant.recipe.SILENCE_MODES."
 
 #: Every shared option: flags, help, limits, and the default shown for layered forms.
 OPTIONS = {
@@ -131,6 +136,12 @@ OPTIONS = {
              "reported.", {"min": 0, "max": SEED_MAX}, None),
     "force_dither": (("--force-dither/--no-force-dither",), "Dither even if the input already "
                      "lies on the target grid.", {}, "no"),
+    "silence": (("--silence",), "keep: runs of exact zeros stay exact zeros (no dither hiss "
+                "out of nothing); dither: dither them like any quiet passage.", {},
+                DEFAULTS.silence),
+    "silence_min": (("--silence-min",), "Shortest run of exact zeros, in ms, that counts as "
+                    "digital silence.",
+                    {"min": 0.001, "max": MAX_SILENCE_MIN_MS}, f"{DEFAULTS.silence_min_ms:g}"),
     "overwrite": (("--overwrite",), "Replace existing outputs (never the input).", {}, None),
     "quiet": (("--quiet", "-q"), "Print only warnings and errors.", {}, None),
     "block_frames": (("--block-frames",), "Frames per block (the output is the same for any "
@@ -157,6 +168,8 @@ ShaperOrder = Annotated[int | None, _option("shaping_order", aliases=("--order",
 ShaperLimit = Annotated[float | None, _option("shaping_limit", aliases=("--limit",))]
 Seed = Annotated[int | None, _option("seed")]
 ForceDither = Annotated[bool, _option("force_dither")]
+SilenceOpt = Annotated[Silence, _option("silence")]
+SilenceMin = Annotated[float, _option("silence_min")]
 Overwrite = Annotated[bool, _option("overwrite")]
 Quiet = Annotated[bool, _option("quiet")]
 BlockFrames = Annotated[int, _option("block_frames")]
@@ -166,6 +179,8 @@ MaybeQuantizer = Annotated[Quantizer | None, _option("quantizer", layered=True)]
 MaybeDither = Annotated[Dither | None, _option("dither", layered=True)]
 MaybeShaping = Annotated[str | None, _option("shaping", layered=True)]
 MaybeForceDither = Annotated[bool | None, _option("force_dither", layered=True)]
+MaybeSilence = Annotated[Silence | None, _option("silence", layered=True)]
+MaybeSilenceMin = Annotated[float | None, _option("silence_min", layered=True)]
 MaybeBlockFrames = Annotated[int | None, _option("block_frames", layered=True)]
 
 ErrorPath = Annotated[Path | None, typer.Option(
@@ -215,10 +230,11 @@ def cluster_executor(cluster, jobs, timeout_s):
 
 
 def recipe_options(*, bits, quantizer, dither, shaping, shaping_order, shaping_limit, seed,
-                   force_dither):
+                   force_dither, silence=None, silence_min=None):
     """The recipe keys given on a command line (None: not given), as a flat dict."""
     flat = {"bits": bits, "quantizer": getattr(quantizer, "value", quantizer),
             "dither": getattr(dither, "value", dither), "shaping": shaping,
             "shaping_order": shaping_order, "shaping_limit_db": shaping_limit, "seed": seed,
-            "force_dither": force_dither}
+            "force_dither": force_dither, "silence": getattr(silence, "value", silence),
+            "silence_min_ms": silence_min}
     return {k: v for k, v in flat.items() if v is not None}

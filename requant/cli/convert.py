@@ -28,6 +28,9 @@ from requant.cli.common import (
     ShapingLimit,
     ShapingOpt,
     ShapingOrder,
+    Silence,
+    SilenceMin,
+    SilenceOpt,
     recipe_options,
 )
 
@@ -50,6 +53,8 @@ def convert(
     report: ReportPaths = None,
     overwrite: Overwrite = False,
     force_dither: ForceDither = DEFAULTS.force_dither,
+    silence: SilenceOpt = Silence(DEFAULTS.silence),
+    silence_min: SilenceMin = DEFAULTS.silence_min_ms,
     block_frames: BlockFrames = DEFAULT_BLOCK_FRAMES,
     quiet: Quiet = False,
 ):
@@ -60,7 +65,7 @@ def convert(
     recipe = Recipe.from_dict(recipe_options(
         bits=bits, quantizer=quantizer, dither=dither, shaping=shaping,
         shaping_order=shaping_order, shaping_limit=shaping_limit, seed=seed,
-        force_dither=force_dither))
+        force_dither=force_dither, silence=silence, silence_min=silence_min))
     outputs = Outputs(error=error, report=tuple(report or ()), overwrite=overwrite,
                       error_gain=error_gain)
     progress = _ProgressPrinter(quiet)

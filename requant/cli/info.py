@@ -7,7 +7,7 @@ from typing import Annotated
 
 import typer
 
-from requant.cli.common import Overwrite, ShaperLimit, ShaperOrder
+from requant.cli.common import DEFAULTS, Overwrite, ShaperLimit, ShaperOrder, SilenceMin
 
 __all__ = ["inspect_command", "shaper_show", "format_shaper"]
 
@@ -16,9 +16,10 @@ def inspect_command(
     file: Annotated[Path, typer.Argument(help="Audio file to inspect.")],
     json_path: Annotated[Path | None, typer.Option(
         "--json", help="Also write the findings as JSON.")] = None,
+    silence_min: SilenceMin = DEFAULTS.silence_min_ms,
     overwrite: Overwrite = False,
 ):
-    """Say what a file really holds: bits in use, peaks, DC, clipping, silence, noise floor."""
+    """Say what a file holds: bits in use, peaks, loudness, DC, clipping, silence, noise floor."""
     from requant.audio_io.atomic import check_outputs
     from requant.audio_io.reader import open_input
     from requant.audio_io.writers import write_json_atomic
@@ -27,7 +28,7 @@ def inspect_command(
     if json_path is not None:
         check_outputs([file], [json_path], overwrite=overwrite)
     open_input(file).close()  # one clear line for unreadable files
-    rep = inspect_file(file)
+    rep = inspect_file(file, silence_min_ms=silence_min)
     print(format_inspection(rep))
     if json_path is not None:
         write_json_atomic(rep, json_path, warnings_key="recommendations")

@@ -12,7 +12,18 @@ from typing import Annotated
 
 import typer
 
-from requant.cli.common import CAUTION, DEFAULTS, Bits, Overwrite, Seed, ShapingLimit, ShapingOrder
+from requant.cli.common import (
+    CAUTION,
+    DEFAULTS,
+    Bits,
+    Overwrite,
+    Seed,
+    ShapingLimit,
+    ShapingOrder,
+    Silence,
+    SilenceMin,
+    SilenceOpt,
+)
 from requant.listening.excerpt import MAX_EXCERPT_SECONDS, MIN_EXCERPT_SECONDS, QUIET_SECONDS
 from requant.listening.methods import DEFAULT_METHODS, METHOD_HEADS, METHOD_SHAPINGS
 
@@ -54,6 +65,8 @@ def listen(
     seed: Seed = None,
     shaping_order: ShapingOrder = None,
     shaping_limit: ShapingLimit = None,
+    silence: SilenceOpt = Silence(DEFAULTS.silence),
+    silence_min: SilenceMin = DEFAULTS.silence_min_ms,
     overwrite: Overwrite = False,
 ):
     """Render one excerpt with every method, with error signals made safely audible,
@@ -63,7 +76,8 @@ def listen(
     from requant.recipe import Recipe, Shaping
 
     base = Recipe(bits=bits, seed=seed,
-                  shaping=Shaping("hearing", order=shaping_order, limit_db=shaping_limit))
+                  shaping=Shaping("hearing", order=shaping_order, limit_db=shaping_limit),
+                  silence=silence.value, silence_min_ms=silence_min)
     kit = make_listening_kit(src, outdir, recipe=base, methods=method or None,
                              pairs=pair or (), excerpt=Excerpt(start, duration),
                              quiet=quiet_seconds if quiet_passage else None,

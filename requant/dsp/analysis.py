@@ -29,6 +29,10 @@ block by block and keeps only fixed-size state:
   samples for the time-view picture.
 * **True peak** (ITU-R BS.1770-4 Annex 2) of input and output, DC offsets,
   and an error histogram from the analysed segments.
+* **Loudness** (ITU-R BS.1770-4 integrated loudness, EBU Tech 3342 loudness
+  range) of the input and of the output ``gain * input + error``, measured by
+  :class:`requant.dsp.loudness.LoudnessMeter` on the same blocks, on a second
+  thread beside the rest of the analysis (its kernel releases the GIL).
 """
 
 import math
@@ -94,6 +98,13 @@ def segment_frames(sample_rate, total_frames=None):
         fit = 1 << max(0, int(math.floor(math.log2(max(total_frames, 1) * 2 / (MIN_SEGMENTS + 1)))))
         n = max(256, min(n, fit))
     return n
+
+
+def _tail(kept, v, keep):
+    """The last ``keep`` frames of ``kept`` followed by ``v``."""
+    if v.shape[0] >= keep:
+        return np.array(v[v.shape[0] - keep:], dtype=v.dtype)
+    return np.concatenate((kept, v))[-keep:]
 
 
 def quiet_window_frames(sample_rate, total_frames=None):
@@ -241,10 +252,16 @@ class ErrorAnalyzer:
     own_sums : bool, default True
         Keep the time-domain sums (Σx, Σε, Σxε, Σx², Σε²) here; False when
         the caller supplies them through :meth:`use_sums`.
+    loudness : bool, default True
+        Measure the loudness of the input and of the output.
+    output_gain : float, default 1.0
+        The output is ``output_gain * x + e`` (a delivery beside its master;
+        1 for a conversion).
     """
 
     def __init__(self, channels, sample_rate, *, bits, quantizer, dither, coeffs=(),
-                 total_frames=None, true_peak=True, own_sums=True):
+                 total_frames=None, true_peak=True, own_sums=True, loudness=True,
+                 output_gain=1.0):
         self.channels = int(channels)
         self.rate = float(sample_rate)
         self.bits = int(bits)
@@ -267,6 +284,7 @@ class ErrorAnalyzer:
         self._pos = 0
         self._own_sums = bool(own_sums)
         self._buf_e = np.zeros((0, self.channels), dtype=np.float32)
+        self._buf_s = np.zeros((0, self.channels), dtype=bool)
         # time-domain sums (all samples), per channel
         self._n = 0
         self._sx = np.zeros(self.channels)
@@ -283,6 +301,7 @@ class ErrorAnalyzer:
         self.QW = quiet_window_frames(sample_rate, total_frames)
         self._qx = np.zeros((self.QW, self.channels), dtype=np.float32)
         self._qe = np.zeros((self.QW, self.channels), dtype=np.float32)
+        self._qs = None  # which samples of the window were kept silent, when told
         self._qfill = 0
         self._qstart = 0
         self._qsum = 0.0
@@ -294,6 +313,22 @@ class ErrorAnalyzer:
             from requant.dsp.truepeak import DualTruePeakMeter
 
             self._tp = DualTruePeakMeter(self.channels)
+        self._loud = self._side = None
+        if loudness:
+            self._start_loudness(output_gain)
+
+    def _start_loudness(self, gain):
+        import weakref
+
+        from requant.dsp.loudness import LoudnessMeter
+        from requant.dsp.overlap import SideThread
+
+        try:
+            self._loud = LoudnessMeter(self.channels, self.rate, with_output=True, gain=gain)
+        except ValueError:  # a rate too low for K-weighting: no loudness
+            return
+        self._side = SideThread("requant-loudness")
+        weakref.finalize(self, self._side.close)  # an analyzer dropped mid-way stops it too
 
     def set_model(self, *, quantizer, dither, coeffs=()):
         """Name the method the predictions are made for, after feeding.
@@ -308,8 +343,14 @@ class ErrorAnalyzer:
 
     # -- feeding -------------------------------------------------------------------------------
 
-    def feed(self, x, e):
-        """Analyse the next block: input ``x`` and error ``e``, (frames, channels), full scale."""
+    def feed(self, x, e, silent=None):
+        """Analyse the next block: input ``x`` and error ``e``, (frames, channels), full scale.
+
+        ``silent`` (boolean, same shape) marks samples kept digitally silent
+        (:meth:`requant.dsp.quantizer.Requantizer.silent_mask`): the histogram and
+        the quietest passage's error power leave them out, as the prediction does.
+        Give it for every block or for none.
+        """
         n = x.shape[0]
         if n == 0:
             return
@@ -324,10 +365,16 @@ class ErrorAnalyzer:
             self._sx2 += np.einsum("ij,ij->j", x64, x64)
             self._se2 += np.einsum("ij,ij->j", e64, e64)
         self._n += n
-        if self._tp is not None:
-            self._tp.process(x, e32)
-        self._feed_segments(e32)
-        self._feed_quiet(x32, e32)
+        if self._side is not None:  # the loudness on its own thread, beside the rest
+            self._side.start(self._loud.process, x, e32)
+        try:
+            if self._tp is not None:
+                self._tp.process(x, e32)
+            self._feed_segments(e32, silent)
+            self._feed_quiet(x32, e32, silent)
+        finally:
+            if self._side is not None:
+                self._side.join()  # the caller may reuse the block's buffers after this
 
     def use_sums(self, *, sum_x, sum_e, sum_xe, sum_x2, sum_e2):
         """Take the time-domain sums (full scale) from elsewhere (the kernel keeps them).
@@ -339,7 +386,7 @@ class ErrorAnalyzer:
                                          (sum_x, sum_e, sum_xe))
         self._sx2, self._se2 = (np.asarray(v, dtype=np.float64) for v in (sum_x2, sum_e2))
 
-    def _feed_segments(self, e):
+    def _feed_segments(self, e, silent=None):
         # Segment j starts at global frame j*hop; only every stride-th is analysed.
         # The last L-1 frames are kept, so a segment can straddle two blocks.
         tail = self._buf_e.shape[0]
@@ -353,25 +400,29 @@ class ErrorAnalyzer:
             j += 1
         self._seg_index = j
         if starts:
-            # gather only the analysed segments, channels first (the FFT runs along
-            # contiguous rows); a segment may begin in the kept tail
-            se = np.empty((len(starts), e.shape[1], self.L), dtype=np.float32)
-            for k, s0 in enumerate(starts):
-                if s0 >= tail:
-                    se[k] = e[s0 - tail:s0 - tail + self.L].T
-                else:
-                    head = tail - s0
-                    se[k, :, :head] = self._buf_e[s0:].T
-                    se[k, :, head:] = e[:self.L - head].T
-            self._add_segments(se)
+            se = self._gather(e, self._buf_e, starts, tail)
+            ss = None if silent is None else self._gather(silent, self._buf_s, starts, tail)
+            self._add_segments(se, ss)
         keep = self.L - 1
-        if e.shape[0] >= keep:
-            self._buf_e = np.array(e[-keep:], dtype=np.float32)
-        else:
-            self._buf_e = np.concatenate((self._buf_e, e))[-keep:]
+        self._buf_e = _tail(self._buf_e, e, keep)
+        if silent is not None:
+            self._buf_s = _tail(self._buf_s, silent, keep)
         self._pos = end
 
-    def _add_segments(self, se):
+    def _gather(self, v, kept, starts, tail):
+        """The analysed segments of ``v`` (after ``kept``, its tail from the blocks before),
+        channels first: the FFT runs along contiguous rows; a segment may begin in the tail."""
+        out = np.empty((len(starts), v.shape[1], self.L), dtype=v.dtype)
+        for k, s0 in enumerate(starts):
+            if s0 >= tail:
+                out[k] = v[s0 - tail:s0 - tail + self.L].T
+            else:
+                head = tail - s0
+                out[k, :, :head] = kept[s0:].T
+                out[k, :, head:] = v[:self.L - head].T
+        return out
+
+    def _add_segments(self, se, ss=None):
         # se: (segments, channels, L), float32; numpy's FFT keeps float32 and, unlike
         # scipy.fft, costs nothing to import (scipy.fft took 0.14 s of every report run)
         w = self.win[None, None, :]
@@ -383,7 +434,10 @@ class ErrorAnalyzer:
         lo, hi = self.hist_edges[0], self.hist_edges[-1]
         nb = self.hist_edges.size - 1
         f = nb / (hi - lo)
-        y = se.reshape(-1) * np.float32(self.scale * f)
+        flat = se.reshape(-1)
+        if ss is not None:  # samples kept silent are no requantization error
+            flat = flat[~ss.reshape(-1)]
+        y = flat * np.float32(self.scale * f)
         y -= np.float32(lo * f)
         np.clip(y, -1.0, float(nb), out=y)
         k = np.floor(y).astype(np.intp) + 1  # 0: below, nb + 1: above
@@ -391,7 +445,7 @@ class ErrorAnalyzer:
         self._hist += counts[1:nb + 1]
         self._hist_out += int(counts[0] + counts[nb + 1])
 
-    def _feed_quiet(self, x, e):
+    def _feed_quiet(self, x, e, silent=None):
         # Windows are ranked by their float32 sum of squares, accumulated block by block;
         # a window is copied only while it can still be the quietest (most windows are
         # ruled out within their first block, so most audio is never copied).
@@ -409,6 +463,10 @@ class ErrorAnalyzer:
                 else:
                     self._qx[self._qfill:self._qfill + take] = px
                     self._qe[self._qfill:self._qfill + take] = e[i:i + take]
+                    if silent is not None:
+                        if self._qs is None:
+                            self._qs = np.zeros(self._qx.shape, dtype=bool)
+                        self._qs[self._qfill:self._qfill + take] = silent[i:i + take]
             self._qfill += take
             i += take
             if self._qfill == self.QW:
@@ -430,7 +488,8 @@ class ErrorAnalyzer:
             return
         ms = float(np.mean(x.astype(np.float64) ** 2))  # exact, for the candidates
         if self._quiet is None or ms < self._quiet["ms"]:
-            self._quiet = {"ms": ms, "start": self._qstart, "x": x.copy(), "e": self._qe.copy()}
+            self._quiet = {"ms": ms, "start": self._qstart, "x": x.copy(), "e": self._qe.copy(),
+                           "s": None if self._qs is None else self._qs.copy()}
 
     # -- results -------------------------------------------------------------------------------
 
@@ -501,7 +560,9 @@ class ErrorAnalyzer:
             return None
         e = q["e"].astype(np.float64)
         rho2, tonal = passage_correlation(q["x"], e)
-        ep = float(np.mean(e**2))
+        # the error power of the requantized samples (those kept silent have none)
+        counted = e.size - (0 if q.get("s") is None else int(np.count_nonzero(q["s"])))
+        ep = float(np.sum(e**2)) / counted if counted else 0.0
         model = predicted_error_power_lsb2(self.quantizer, self.dither, self.coeffs)
         ep_lsb2 = ep * self.scale**2
         return {
@@ -518,8 +579,21 @@ class ErrorAnalyzer:
             "correlated_error_fraction": max(rho2, tonal),
         }
 
+    def loudness(self):
+        """The ``loudness`` section of :meth:`finish`, or None when not measured."""
+        if self._loud is None:
+            return None
+        src, out = self._loud.readings()
+        return {"input_integrated_lufs": src["integrated_lufs"],
+                "output_integrated_lufs": out["integrated_lufs"],
+                "input_range_lu": src["range_lu"], "output_range_lu": out["range_lu"],
+                "channel_layout": self._loud.layout,
+                "channel_weights": [float(w) for w in self._loud.weights]}
+
     def finish(self):
         """All figures, as a dict (see the module docstring); JSON-ready."""
+        if self._side is not None:
+            self._side.close()
         if self._tp is not None:
             self._tp.finish()
         freqs = np.arange(self.L // 2 + 1) * self.rate / self.L
@@ -578,6 +652,9 @@ class ErrorAnalyzer:
                 "input_dbtp_per_channel": [_finite(v) for v in tin],
                 "output_dbtp_per_channel": [_finite(v) for v in tout],
             }
+        loud = self.loudness()
+        if loud is not None:
+            out["loudness"] = loud
         n = max(self._n, 1)
         out["dc_offset"] = {
             "input": [float(v) for v in self._sx / n],

@@ -34,6 +34,20 @@ Arithmetic, in this order (it defines the output bits)::
     eps = q - v                               the error signal, in LSB
     fb' = sum_k h[k] e[n-k], oldest term first, h[0]*e[n] added last
 
+Digital silence (``sil_len > 0``): a run of at least ``sil_len`` exact zeros in
+one channel is written as exact zeros, with no dither and no error, and the
+shaping filter's history and the high-pass dither's memory are cleared in it,
+so that the first sample after it starts from a clean state. Whether a zero
+starts such a run is decided at its first sample by looking ahead: the
+``m`` frames after the ``n`` to be processed (the caller keeps ``sil_len - 1``
+of them back) hold the rest of the run. The decision for a run in progress is
+carried between calls in ``zs`` (0 no run, 1 silent run, 2 a run too short),
+so blocks of any size give the same bits: a sample is kept silent exactly when
+it lies in a run of at least ``sil_len`` zeros (the file's ends bound a run).
+The generator still advances one word per sample inside a silent run.
+(:meth:`requant.dsp.quantizer.Requantizer.silent_mask` says which samples were
+kept silent, from the same rule.)
+
 Speed: the error feedback is a chain from one sample to the next, so its
 latency, not its arithmetic, sets the pace. The newest error enters the
 feedback last (one multiply and one add on the chain); the older terms are
@@ -66,7 +80,7 @@ DITHER_TPDF_HP = 3
 #: Columns of the per-channel accumulator array ``acc``.
 ACC_FIELDS = (
     "sum_x2", "sum_e", "sum_e2", "clipped", "overloads", "over_full_scale", "nonfinite",
-    "max_abs_e", "sum_x", "sum_xe",
+    "max_abs_e", "sum_x", "sum_xe", "silent",
 )
 _NACC = len(ACC_FIELDS)
 
@@ -76,8 +90,9 @@ _NACC = len(ACC_FIELDS)
 #: as expressions in the scalar arguments and ``taps``, the tap count :func:`build` was
 #: given. See :func:`build` for what each argument means.
 SIGNATURE = (
-    ("x", "f32*|f64*", "n * nch"),
+    ("x", "f32*|f64*", "(n + m) * nch"),
     ("n", "i64", "n >= 0"),
+    ("m", "i64", "m >= 0"),
     ("nch", "i64", "nch >= 0"),
     ("rng", "u64*", "4 * nch"),
     ("mode", "i64", "0 <= mode <= 3"),
@@ -96,6 +111,8 @@ SIGNATURE = (
     ("err", "f32*", "n * nch if want_err else 0"),
     ("want_err", "i64", None),
     ("acc", "f64*", f"{_NACC} * nch"),
+    ("sil_len", "i64", "sil_len >= 0"),
+    ("zs", "i64*", "nch"),
 )
 
 _SH3 = np.uint64(3)
@@ -132,11 +149,13 @@ def build(jit=None, taps=None):
     Returns
     -------
     callable
-        ``quantize_block(x, n, nch, rng, mode, offset, h, taps, fbs, hp_prev,
+        ``quantize_block(x, n, m, nch, rng, mode, offset, h, taps, fbs, hp_prev,
         scale, inv_scale, kmin, kmax, e_bound, shift, codes, err, want_err,
-        acc)``, all buffers flat:
+        acc, sil_len, zs)``, all buffers flat:
 
-        x : float32 or float64 [n*nch], full scale 1.0
+        x : float32 or float64 [(n+m)*nch], full scale 1.0: the ``n`` frames
+            to requantize, then ``m`` frames of look-ahead (read only to find
+            runs of digital silence)
         rng : uint64 [nch*4], SFC64 states; updated
         mode : int, one of ``DITHER_*``
         offset : float, 0.5 to round (half up), 0.0 to truncate
@@ -151,7 +170,12 @@ def build(jit=None, taps=None):
         shift : int, left shift into the container
         codes : int16 or int32 [n*nch]; written
         err : float32 [n*nch] when ``want_err``; written, output minus input
-        acc : float64 [nch*10], columns as :data:`ACC_FIELDS`; updated
+        acc : float64 [nch*11], columns as :data:`ACC_FIELDS`; updated
+        sil_len : int, frames; runs of this many exact zeros or more stay
+            silent; 0 dithers everything. A caller keeping silence may pass 0
+            for a block whose ``n`` frames hold no zero at all (most audio): the
+            loop then need not look for silence, and the result is the same.
+        zs : int64 [nch], the silence decision of the run in progress; updated
     """
     wrap = (lambda f: f) if jit is None else jit
     sfc64 = wrap(sfc64_next_py)
@@ -222,6 +246,48 @@ def build(jit=None, taps=None):
 
     sample = wrap(sample)
 
+    def silent(st, mode, taps, fbs, fo, acc, ao):
+        # one sample of a silent run: code 0, error 0, the loop's memory cleared
+        a, b, c, w, hp, fb, pos, sx2, se, se2, me, sx, sxe = st
+        if mode != 0:
+            word, a, b, c, w = sfc64(a, b, c, w)  # one word per sample, as ever
+        for k in range(2 * taps):
+            fbs[fo + k] = 0.0
+        acc[ao + 10] += 1.0
+        return (a, b, c, w, 0.0, 0.0, 0, sx2, se, se2, me, sx, sxe)
+
+    silent = wrap(silent)
+
+    def run_decision(x, i, n, m, nch, c, sil_len):
+        # at the first zero of a run: 1 when at least sil_len zeros follow from here
+        count = 0
+        k = i
+        while k < n + m and count < sil_len:
+            if x[k * nch + c] != 0.0:
+                break
+            count += 1
+            k += 1
+        return 1 if count >= sil_len else 2
+
+    run_decision = wrap(run_decision)
+
+    def one(x, i, n, m, nch, c, xs, st, z, mode, offset, h, taps, fbs, fo, scale, fkmin, fkmax,
+            e_bound, acc, ao, sil_len):
+        # a sample, silent or not; z is the channel's silence decision
+        if sil_len > 0:
+            if xs == 0.0:
+                if z == 0:
+                    z = run_decision(x, i, n, m, nch, c, sil_len)
+                if z == 1:
+                    return 0.0, 0.0, silent(st, mode, taps, fbs, fo, acc, ao), z
+            else:
+                z = 0
+        q, e, st = sample(xs, st, mode, offset, h, taps, fbs, fo, scale, fkmin, fkmax, e_bound,
+                          acc, ao)
+        return q, e, st, z
+
+    one = wrap(one)
+
     def load(c, rng, hp_prev, fbs, taps, acc):
         ao = c * _NACC
         fb = fbs[c * (2 * taps + 1)] if taps > 0 else 0.0
@@ -255,42 +321,112 @@ def build(jit=None, taps=None):
 
     store = wrap(store)
 
-    def quantize_block(x, n, nch, rng, mode, offset, h, ntaps, fbs, hp_prev, scale, inv_scale,
-                       kmin, kmax, e_bound, shift, codes, err, want_err, acc):
+    def pair(x, n, nch, c, s0, s1, mode, offset, h, taps, fbs, fo0, fo1, scale, fkmin, fkmax,
+             e_bound, acc, ao0, ao1, shift, codes, err, inv_scale, want_err):
+        # two channels at once: their feedback chains overlap
+        for i in range(n):
+            j = i * nch + c
+            q0, e0, s0 = sample(np.float64(x[j]), s0, mode, offset, h, taps, fbs, fo0, scale,
+                                fkmin, fkmax, e_bound, acc, ao0)
+            q1, e1, s1 = sample(np.float64(x[j + 1]), s1, mode, offset, h, taps, fbs, fo1,
+                                scale, fkmin, fkmax, e_bound, acc, ao1)
+            codes[j] = int(q0) << shift
+            codes[j + 1] = int(q1) << shift
+            if want_err:
+                err[j] = e0 * inv_scale
+                err[j + 1] = e1 * inv_scale
+        return s0, s1
+
+    pair = wrap(pair)
+
+    def pair_keeping(x, n, m, nch, c, s0, s1, z0, z1, mode, offset, h, taps, fbs, fo0, fo1,
+                     scale, fkmin, fkmax, e_bound, acc, ao0, ao1, shift, codes, err, inv_scale,
+                     want_err, sil_len):
+        # as pair, keeping runs of digital silence silent
+        for i in range(n):
+            j = i * nch + c
+            xs0 = np.float64(x[j])
+            xs1 = np.float64(x[j + 1])
+            if xs0 == 0.0 or xs1 == 0.0:
+                q0, e0, s0, z0 = one(x, i, n, m, nch, c, xs0, s0, z0, mode, offset, h, taps,
+                                     fbs, fo0, scale, fkmin, fkmax, e_bound, acc, ao0, sil_len)
+                q1, e1, s1, z1 = one(x, i, n, m, nch, c + 1, xs1, s1, z1, mode, offset, h,
+                                     taps, fbs, fo1, scale, fkmin, fkmax, e_bound, acc, ao1,
+                                     sil_len)
+            else:  # the common path: no zero, so no run in progress
+                q0, e0, s0 = sample(xs0, s0, mode, offset, h, taps, fbs, fo0, scale, fkmin,
+                                    fkmax, e_bound, acc, ao0)
+                q1, e1, s1 = sample(xs1, s1, mode, offset, h, taps, fbs, fo1, scale, fkmin,
+                                    fkmax, e_bound, acc, ao1)
+                z0 = 0
+                z1 = 0
+            codes[j] = int(q0) << shift
+            codes[j + 1] = int(q1) << shift
+            if want_err:
+                err[j] = e0 * inv_scale
+                err[j + 1] = e1 * inv_scale
+        return s0, s1, z0, z1
+
+    pair_keeping = wrap(pair_keeping)
+
+    def single(x, n, m, nch, c, s0, z0, mode, offset, h, taps, fbs, fo0, scale, fkmin, fkmax,
+               e_bound, acc, ao0, shift, codes, err, inv_scale, want_err, sil_len):
+        # the last channel of an odd count
+        for i in range(n):
+            j = i * nch + c
+            xs0 = np.float64(x[j])
+            if sil_len > 0 and xs0 == 0.0:
+                q0, e0, s0, z0 = one(x, i, n, m, nch, c, xs0, s0, z0, mode, offset, h, taps,
+                                     fbs, fo0, scale, fkmin, fkmax, e_bound, acc, ao0, sil_len)
+            else:
+                q0, e0, s0 = sample(xs0, s0, mode, offset, h, taps, fbs, fo0, scale, fkmin,
+                                    fkmax, e_bound, acc, ao0)
+                z0 = 0
+            codes[j] = int(q0) << shift
+            if want_err:
+                err[j] = e0 * inv_scale
+        return s0, z0
+
+    single = wrap(single)
+
+    def quantize_block(x, n, m, nch, rng, mode, offset, h, ntaps, fbs, hp_prev, scale,
+                       inv_scale, kmin, kmax, e_bound, shift, codes, err, want_err, acc, sil_len,
+                       zs):
         taps = ntaps if fixed_taps < 0 else fixed_taps
         fkmin = float(kmin)
         fkmax = float(kmax)
+        keeping = sil_len > 0
         c = 0
         while c < nch:
             s0 = load(c, rng, hp_prev, fbs, taps, acc)
             fo0 = c * (2 * taps + 1) + 1
             ao0 = c * _NACC
             if c + 1 < nch:
-                # two channels at once: their feedback chains overlap
                 s1 = load(c + 1, rng, hp_prev, fbs, taps, acc)
                 fo1 = fo0 + 2 * taps + 1
                 ao1 = ao0 + _NACC
-                for i in range(n):
-                    j = i * nch + c
-                    q0, e0, s0 = sample(np.float64(x[j]), s0, mode, offset, h, taps, fbs, fo0,
-                                        scale, fkmin, fkmax, e_bound, acc, ao0)
-                    q1, e1, s1 = sample(np.float64(x[j + 1]), s1, mode, offset, h, taps, fbs,
-                                        fo1, scale, fkmin, fkmax, e_bound, acc, ao1)
-                    codes[j] = int(q0) << shift
-                    codes[j + 1] = int(q1) << shift
-                    if want_err:
-                        err[j] = e0 * inv_scale
-                        err[j + 1] = e1 * inv_scale
+                if keeping:
+                    s0, s1, z0, z1 = pair_keeping(x, n, m, nch, c, s0, s1, zs[c], zs[c + 1],
+                                                  mode, offset, h, taps, fbs, fo0, fo1, scale,
+                                                  fkmin, fkmax, e_bound, acc, ao0, ao1, shift,
+                                                  codes, err, inv_scale, want_err, sil_len)
+                    zs[c] = z0
+                    zs[c + 1] = z1
+                else:
+                    s0, s1 = pair(x, n, nch, c, s0, s1, mode, offset, h, taps, fbs, fo0, fo1,
+                                  scale, fkmin, fkmax, e_bound, acc, ao0, ao1, shift, codes, err,
+                                  inv_scale, want_err)
+                    if n > 0:  # every sample was non-zero: no run in progress
+                        zs[c] = 0
+                        zs[c + 1] = 0
                 store(s1, c + 1, rng, hp_prev, fbs, taps, acc)
                 step = 2
             else:
-                for i in range(n):
-                    j = i * nch + c
-                    q0, e0, s0 = sample(np.float64(x[j]), s0, mode, offset, h, taps, fbs, fo0,
-                                        scale, fkmin, fkmax, e_bound, acc, ao0)
-                    codes[j] = int(q0) << shift
-                    if want_err:
-                        err[j] = e0 * inv_scale
+                s0, z0 = single(x, n, m, nch, c, s0, zs[c], mode, offset, h, taps, fbs, fo0,
+                                scale, fkmin, fkmax, e_bound, acc, ao0, shift, codes, err,
+                                inv_scale, want_err, sil_len if keeping else 0)
+                if keeping or n > 0:
+                    zs[c] = z0
                 step = 1
             store(s0, c, rng, hp_prev, fbs, taps, acc)
             c += step

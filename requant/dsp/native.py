@@ -89,6 +89,7 @@ TYPES = {
     "i16*": ("int16", ctypes.c_void_p, np.int16),
     "i32*": ("int32", ctypes.c_void_p, np.int32),
     "u64*": ("uint64", ctypes.c_void_p, np.uint64),
+    "i64*": ("int64", ctypes.c_void_p, np.int64),
     "i64": ("int64", ctypes.c_int64, None),
     "f64": ("float64", ctypes.c_double, None),
 }
@@ -110,19 +111,30 @@ class Family(NamedTuple):
     params : dict
         Build parameters (integers), each with the values the tests load;
         any value may be asked for.
+    vectorize : bool
+        Compile with LLVM's straight-line (SLP) vectorizer, which numba leaves
+        off by default: kernels that run several channels' (or signals')
+        recursions side by side in the same code get them into one vector
+        register. It changes no result (no reassociation: the same IEEE
+        operations, lane by lane).
     """
 
     module: str
     build: str
     signature: str
     params: dict
+    vectorize: bool = False
 
 
 #: Every family of kernels requant loads through this module.
 KERNELS = {
     "quantize": Family("requant.dsp.kernel", "build", "SIGNATURE", {"taps": (0, 9)}),
-    "truepeak-dual": Family("requant.dsp.truepeak", "build_dual", "DUAL_SIGNATURE", {}),
+    "truepeak-dual": Family("requant.dsp.peakkernel", "build_dual", "DUAL_SIGNATURE", {},
+                            True),
+    "truepeak": Family("requant.dsp.peakkernel", "build_peak", "PEAK_SIGNATURE", {}, True),
     "residual": Family("requant.dsp.residual", "build", "SIGNATURE", {}),
+    "loudness": Family("requant.dsp.loudness", "build", "SIGNATURE", {"signals": (1, 2)}, True),
+    "scan": Family("requant.dsp.scan", "build", "SIGNATURE", {}, True),
 }
 
 
@@ -311,7 +323,8 @@ def _host():
 def _key(spec, source):
     ll, cpu, features = _host()
     h = hashlib.sha256()
-    for part in (spec.name, source, ",".join(spec.codes), cpu, features, *_toolchain_tag()):
+    for part in (spec.name, source, ",".join(spec.codes), cpu, features, *_toolchain_tag(),
+                 f"slp={int(bool(spec.family.vectorize))}"):
         h.update(part.encode())
         h.update(b"\0")
     return h.hexdigest()[:24]
@@ -335,6 +348,19 @@ def _build_fn(spec, jit):
 def _compile(spec):
     """Compile the kernel for pointer arguments; return (object bytes, symbol)."""
     import numba
+    from numba.core import config
+
+    saved = config.SLP_VECTORIZE
+    # numba reads the setting when it optimizes a module (numba versions that fix it when
+    # the compiler starts only lose speed: the SLP vectorizer changes no result)
+    config.SLP_VECTORIZE = int(bool(spec.family.vectorize)) or saved
+    try:
+        return _compile_now(spec, numba)
+    finally:
+        config.SLP_VECTORIZE = saved
+
+
+def _compile_now(spec, numba):
     from numba import types
 
     argtypes = []

@@ -158,14 +158,22 @@ class Requantizer:
     container_bits : int, 8/16/24/32, default: smallest that holds ``bits``
         Codes are left-justified in the container: int16 for 8 and 16,
         int32 for 24 and 32 (the low bits below ``bits`` stay zero).
+    silence_frames : int, >= 0, default 0
+        Keep digital silence silent: in every run of at least this many exact
+        zeros in a channel the codes and the error are exactly zero (0: dither
+        everything). To decide a run at its first sample, the requantizer holds
+        back a run of zeros that ends a block still shorter than this (at most
+        ``silence_frames - 1`` frames) until the next block (or :meth:`flush`)
+        shows what follows it.
 
     Notes
     -----
-    Call :meth:`process` repeatedly; the blocks may have any length.
+    Call :meth:`process` repeatedly, then :meth:`flush`; the blocks may have any
+    length, and the frames come out in order, whatever the block sizes.
     """
 
     def __init__(self, channels, *, bits, quantizer="round", dither="tpdf", coeffs=(),
-                 seed=None, container_bits=None):
+                 seed=None, container_bits=None, silence_frames=0):
         Recipe(bits=bits, quantizer=quantizer, dither=dither, seed=seed)  # validates, or raises
         coeffs = np.ascontiguousarray(coeffs, dtype=np.float64).reshape(-1)
         check_dither_in_loop(dither, coeffs.size > 0)
@@ -199,20 +207,39 @@ class Requantizer:
         self.frames = 0
         self._no_err = np.zeros(1, dtype=np.float32)
         self._h = self.coeffs if self.coeffs.size else np.zeros(1)
+        if isinstance(silence_frames, bool) or not isinstance(silence_frames, (int, np.integer)) \
+                or silence_frames < 0:
+            raise UsageError(f"silence_frames={silence_frames!r} must be a whole number >= 0")
+        self.silence_frames = int(silence_frames)
+        #: Most frames a call holds back (a run of zeros one frame short of silence).
+        self.hold = max(0, self.silence_frames - 1)
+        self._zs = np.zeros(self.channels, dtype=np.int64)
+        self._pending = None  # the frames held back, waiting for the next call
+        self._held = 0
+        self._last_input = None  # (input, frames of it turned into output) of the last call
+        self._zs_before = self._zs.copy()  # the silence decisions before the last call
 
     @classmethod
-    def from_recipe(cls, recipe, channels, *, coeffs=(), container_bits=None):
+    def from_recipe(cls, recipe, channels, *, coeffs=(), container_bits=None,
+                    sample_rate=None):
         """The requantizer a :class:`~requant.recipe.Recipe` describes.
 
         ``coeffs`` are the recipe's shaping coefficients resolved for the
         audio's sample rate (:func:`requant.dsp.shaping.coefficients_for`);
-        the recipe's seed must be set.
+        the recipe's seed must be set. With ``silence='keep'`` the sample rate
+        turns ``silence_min_ms`` into frames.
         """
         if recipe.seed is None:
             raise UsageError("the recipe has no seed yet; draw one with "
                              "recipe.with_seed(new_seed())")
+        silence_frames = 0
+        if recipe.silence == "keep":
+            if sample_rate is None:
+                raise UsageError("keeping digital silence needs the sample rate (frames per ms)")
+            silence_frames = recipe.silence_frames(sample_rate)
         return cls(channels, bits=recipe.bits, quantizer=recipe.quantizer, dither=recipe.dither,
-                   coeffs=coeffs, seed=recipe.seed, container_bits=container_bits)
+                   coeffs=coeffs, seed=recipe.seed, container_bits=container_bits,
+                   silence_frames=silence_frames)
 
     def process(self, x, *, codes=None, error=True, err_out=None, kernel=None):
         """Requantize the next block.
@@ -221,60 +248,191 @@ class Requantizer:
         ----------
         x : ndarray, (frames, channels), float32 or float64
         codes : ndarray, optional
-            Output buffer of :attr:`code_dtype`, at least ``frames`` long.
+            Output buffer of :attr:`code_dtype`, at least ``frames + hold`` long
+            (:attr:`hold`: 0 unless silence is kept).
         error : bool
             Also return the error signal (float32).
         err_out : ndarray, optional
-            Buffer for the error signal, float32, at least ``frames`` long.
+            Buffer for the error signal, float32, as long as ``codes``.
         kernel : callable, optional
             Replacement for the compiled kernel (tests pass the plain twin).
 
         Returns
         -------
-        codes : ndarray, (frames, channels)
-            Left-justified integer codes.
-        err : ndarray, (frames, channels), float32, or None
-            Output minus input, full scale 1.0.
+        codes : ndarray, (frames out, channels)
+            Left-justified integer codes, the next frames of the output. Without
+            silence kept, as many as ``x`` has. With it, a block that ends inside
+            a run of zeros too short yet to be called silence (in any channel)
+            holds that run's frames back until the next block or :meth:`flush`
+            shows how long it is; the next call gives them first (so a call may
+            give up to :attr:`hold` frames more than its block).
+        err : ndarray, (frames out, channels), float32, or None
+            Output minus input, full scale 1.0, for the same frames.
         """
         if x.ndim != 2 or x.shape[1] != self.channels:
             raise UsageError(f"block shape {x.shape!r} does not match {self.channels} channels")
-        n = x.shape[0]
         if x.dtype not in (np.float32, np.float64) or not x.flags.c_contiguous:
             x = np.ascontiguousarray(x, dtype=np.float64)
+        if self._held:  # rare: the last block ended inside a short run of zeros
+            dtype = x.dtype if x.dtype == self._pending.dtype else np.float64
+            x = np.concatenate([self._pending.astype(dtype, copy=False),
+                                x.astype(dtype, copy=False)])
+        n = x.shape[0]
+        hold = self._undecided(x) if self.hold else 0
+        return self._run(x, n - hold, hold, codes, error, err_out, kernel)
+
+    @property
+    def held(self):
+        """Frames held back, waiting for the next block or :meth:`flush` to decide them."""
+        return self._held
+
+    def flush(self, *, codes=None, error=True, err_out=None, kernel=None, max_frames=None):
+        """The frames held back, at the end of the signal (where a run of zeros ends).
+
+        Returns ``(codes, err)`` as :meth:`process` does, for at most
+        ``max_frames`` of them (default all); call it until :attr:`held` is 0,
+        after the last block. Nothing is held while silence is not kept.
+        """
+        if not self._held:
+            self._zs_before = self._zs.copy()
+            self._last_input = None
+            codes, err = self._buffers(0, codes, error, err_out)
+            return codes[:0], (err[:0] if error else None)
+        x = self._pending
+        k = self._held if max_frames is None else min(self._held, int(max_frames))
+        return self._run(x, k, self._held - k, codes, error, err_out, kernel)
+
+    def _run(self, x, ready, hold, codes, error, err_out, kernel):
+        """The kernel on the first ``ready`` frames of ``x``; the ``hold`` after them are its
+        look-ahead and wait for the next call."""
+        codes, err = self._buffers(ready, codes, error, err_out)
+        self._zs_before = self._zs.copy()
+        self._call(self._kernel(x.dtype, kernel), x, ready, hold, codes, err, error)
+        self._last_input = (x, ready)
+        self._pending = x[ready:].copy() if hold else None
+        self._held = hold
+        self.frames += ready
+        return codes[:ready], (err[:ready] if error else None)
+
+    def _undecided(self, x):
+        """Frames at the end of ``x`` that must wait: a run of zeros in some channel that
+        reaches the end of the block, began in it, and is still shorter than
+        :attr:`silence_frames` (the next block decides whether it is silence)."""
+        n = x.shape[0]
+        last = x[n - 1] == 0 if n else np.zeros(self.channels, bool)
+        wait = 0
+        for c in np.flatnonzero(last):
+            tail = x[max(0, n - self.silence_frames):, c]
+            nonzero = np.flatnonzero(tail)
+            run = tail.shape[0] - 1 - nonzero[-1] if nonzero.size else tail.shape[0]
+            if run >= self.silence_frames:
+                continue  # long enough already: silence, decided at its first zero
+            if run == n and self._zs[c] != 0:
+                continue  # the run began before this block: decided then
+            wait = max(wait, run)
+        return wait
+
+    def last_input(self, out=None):
+        """The input frames the last :meth:`process` or :meth:`flush` turned into output,
+        in order (held-back frames of the block before, then the block's own); written
+        into ``out`` when given."""
+        if self._last_input is None:
+            x = np.zeros((0, self.channels))
+            return x if out is None else out[:0]
+        x, used = self._last_input
+        if out is None:
+            return x[:used]
+        out[:used] = x[:used]
+        return out[:used]
+
+    def silent_mask(self, out=None):
+        """Which samples of the last :meth:`process` or :meth:`flush` output were kept
+        silent, as a boolean array (frames out, channels); written into ``out`` if given.
+
+        It follows the kernel's rule: a sample is kept silent when it lies in a run of
+        at least ``silence_frames`` exact zeros of its channel (the ends of the signal
+        bound a run). The frames held back are the look-ahead that decides runs near
+        the end of the output; the decisions carried from the call before decide a
+        run that began there.
+        """
+        x = self.last_input()
+        n = x.shape[0]
+        mask = np.zeros(x.shape, dtype=bool) if out is None else out[:n]
+        mask[:] = False
+        length = self.silence_frames
+        if length == 0 or n == 0 or not (x == 0).any():
+            return mask
+        zero = (np.concatenate([x, self._pending]) if self._held else x) == 0
+        edge = np.zeros((1, self.channels), dtype=bool)
+        steps = np.diff(np.concatenate([edge, zero, edge]).astype(np.int8), axis=0)
+        for c in range(self.channels):
+            starts = np.flatnonzero(steps[:, c] == 1)
+            stops = np.flatnonzero(steps[:, c] == -1)
+            keep = stops - starts >= length
+            if starts.size and starts[0] == 0 and self._zs_before[c] != 0:
+                keep[0] = self._zs_before[c] == 1  # a run that began before this output
+            for a, b in zip(starts[keep], stops[keep], strict=True):
+                if a >= n:
+                    break
+                mask[a:min(b, n), c] = True
+        return mask
+
+    def _buffers(self, n, codes, error, err_out):
         if codes is None:
             codes = np.empty((n, self.channels), dtype=self.code_dtype)
-        else:
-            codes = codes[:n]
+        if not (codes.dtype == self.code_dtype and codes.flags.c_contiguous):
+            raise UsageError(f"codes buffer must be C-contiguous {np.dtype(self.code_dtype)}")
         if not error:
             err = self._no_err
         elif err_out is not None:
-            err = err_out[:n]
+            err = err_out
         else:
             err = np.empty((n, self.channels), dtype=np.float32)
-        run = compiled_kernel(x.dtype, codes.dtype, self.coeffs.size) if kernel is None else kernel
-        if not (codes.dtype == self.code_dtype and codes.flags.c_contiguous):
-            raise UsageError(f"codes buffer must be C-contiguous {np.dtype(self.code_dtype)}")
         if error and not (err.dtype == np.float32 and err.flags.c_contiguous):
             raise UsageError("error buffer must be C-contiguous float32")
-        run(x.reshape(-1), n, self.channels, self.rng.reshape(-1), self._mode,
+        return codes, err
+
+    def _kernel(self, dtype, kernel):
+        return compiled_kernel(dtype, self.code_dtype, self.coeffs.size) if kernel is None \
+            else kernel
+
+    def _call(self, run, x, n, m, codes, err, error):
+        """The kernel on frames 0..n-1 of ``x``, then ``m`` frames of look-ahead."""
+        c = codes[:n]
+        e = err[:n] if error else err
+        flat = x.reshape(-1)
+        # most audio holds no exact zero: the kernel need not look for silence then (a
+        # numpy test costs 0.1 ns a sample, the kernel's own look 0.5)
+        sil = self.silence_frames if self.silence_frames and (
+            flat[:n * self.channels] == 0).any() else 0
+        run(flat, n, m, self.channels, self.rng.reshape(-1), self._mode,
             self._round_offset, self._h, self.coeffs.size, self.fbs.reshape(-1), self.hp_prev,
             self.scale, 1.0 / self.scale, self.kmin, self.kmax, E_BOUND_LSB, self.shift,
-            codes.reshape(-1), err.reshape(-1), int(error), self.acc.reshape(-1))
-        self.frames += n
-        return codes, (err if error else None)
+            c.reshape(-1), e.reshape(-1), int(error), self.acc.reshape(-1), sil, self._zs)
+
+    def run_all(self, x, *, kernel=None):
+        """The codes of a whole signal in one call: :meth:`process`, then :meth:`flush`."""
+        codes = np.empty((x.shape[0], self.channels), dtype=self.code_dtype)
+        out, _ = self.process(x, codes=codes, error=False, kernel=kernel)
+        done = out.shape[0]
+        while self._held:
+            more, _ = self.flush(codes=codes[done:], error=False, kernel=kernel)
+            done += more.shape[0]
+        return codes
 
     def totals(self):
         """Running sums per channel, as a dict of arrays keyed by ACC_FIELDS."""
         return {name: self.acc[:, i].copy() for i, name in enumerate(_kernel.ACC_FIELDS)}
 
 
-def requantize(x, *, bits, quantizer="round", dither="tpdf", coeffs=(), seed=None):
+def requantize(x, *, bits, quantizer="round", dither="tpdf", coeffs=(), seed=None,
+               silence_frames=0):
     """Requantize a whole signal held in memory.
 
     Parameters
     ----------
     x : array_like, (frames,) or (frames, channels), full scale 1.0
-    bits, quantizer, dither, coeffs, seed
+    bits, quantizer, dither, coeffs, seed, silence_frames
         As for :class:`Requantizer`.
 
     Returns
@@ -292,7 +450,7 @@ def requantize(x, *, bits, quantizer="round", dither="tpdf", coeffs=(), seed=Non
     squeeze = arr.ndim == 1
     arr2 = arr.reshape(-1, 1) if squeeze else arr
     rq = Requantizer(arr2.shape[1], bits=bits, quantizer=quantizer, dither=dither,
-                     coeffs=coeffs, seed=seed, container_bits=32)
-    codes, _ = rq.process(np.ascontiguousarray(arr2), error=False)
+                     coeffs=coeffs, seed=seed, container_bits=32, silence_frames=silence_frames)
+    codes = rq.run_all(np.ascontiguousarray(arr2))
     y = codes.astype(np.float64) / 2.0**31
     return y.reshape(arr.shape)

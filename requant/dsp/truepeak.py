@@ -61,6 +61,7 @@ import functools
 
 import numpy as np
 
+from requant.dsp.peakkernel import DUAL_SIGNATURE, build_dual, build_peak, fold_phases
 from requant.errors import InputError, UsageError
 
 __all__ = [
@@ -70,7 +71,9 @@ __all__ = [
     "PHASE_GAIN",
     "DUAL_SIGNATURE",
     "DualTruePeakMeter",
+    "SkippingTruePeakMeter",
     "dual_peak_kernel_py",
+    "peak_kernel_py",
     "TruePeakMeter",
     "oversample",
     "true_peak",
@@ -383,232 +386,23 @@ def true_peak_dbtp(x, *, flush=True):
 #: can exceed this times the largest |sample| among the 12 it is made from.
 PHASE_GAIN = float(np.max(np.sum(np.abs(PHASES), axis=1)))
 
-#: Frames per sub-block of the dual kernel's skip test (:func:`build_dual`).
+#: Frames per sub-block of the skipping kernels' test (:mod:`requant.dsp.peakkernel`).
 SUB_FRAMES = 64
-#: Most frames the dual kernel interpolates in one pass (a run of sub-blocks).
+#: Most frames the skipping kernels screen in one pass (a run of sub-blocks).
 RUN_FRAMES = 1024
 
-#: The dual kernel's arguments, in order, declared once for :mod:`requant.dsp.native`:
-#: name, type code (``"f32*|f64*"``: the dtype is chosen per compiled kernel), and for an
-#: array the least number of elements it must hold, for a scalar a condition it must meet,
-#: as expressions in the scalar arguments. See :func:`build_dual` for their meaning.
-DUAL_SIGNATURE = (
-    ("hx", "f64*", "11 * nch"),
-    ("he", "f64*", "11 * nch"),
-    ("xs", "f32*|f64*", "(m - 11) * nch"),
-    ("es", "f32*|f64*", "(m - 11) * nch"),
-    ("m", "i64", "m >= 11"),
-    ("nch", "i64", "nch >= 0"),
-    ("phases", "f64*", "48"),
-    ("gain", "f64", None),
-    ("sub", "i64", "sub >= 1"),
-    ("run", "i64", "run >= 1"),
-    ("peak_in", "f64*", "nch"),
-    ("peak_out", "f64*", "nch"),
-    ("v", "f64*", "max(run, sub) + 11"),
-    ("acc", "f64*", "max(run, sub)"),
-    ("bx", "f64*", "(m - 11 + sub - 1) // sub"),
-    ("be", "f64*", "(m - 11 + sub - 1) // sub"),
-    ("ub", "f64*", "(m - 11 + sub - 1) // sub"),
-    ("pk", "f64*", "(m - 11 + sub - 1) // sub"),
-    ("phases32", "f32*", "48"),
-    ("v32", "f32*", "max(run, sub) + 11"),
-    ("acc32", "f32*", "max(run, sub)"),
-)
-
-
-def build_dual(jit=None):
-    """Return the dual true-peak kernel, its helper compiled by ``jit``.
-
-    ``jit`` is numba's ``njit(inline="always")`` for the compiled kernel
-    (loaded through :mod:`requant.dsp.native`), ``None`` for the plain-Python twin.
-    The kernel is ``dual_peak(hx, he, xs, es, m, nch, phases, gain, sub, run,
-    peak_in, peak_out, v, acc, bx, be, ub, pk)`` over flat buffers:
-
-    hx, he : float64 [11*nch]
-        The 11 frames of input and error before this block.
-    xs, es : float32 or float64 [(m - 11)*nch]
-        Input and error, frame-interleaved (sums are formed in float64
-        whatever the storage). Frame ``n`` of the sequence history-then-block
-        is ``h[n]`` for ``n < 11``, else ``x[n - 11]``; ``m`` counts both.
-    phases : float64 [48]
-        :data:`PHASES`, row by row.
-    gain : float
-        :data:`PHASE_GAIN`.
-    sub : int
-        Sub-block length of the skip test.
-    run : int
-        Most frames interpolated in one pass.
-    peak_in, peak_out : float64 [nch]; updated in place
-    v, acc : float64 [run + sub + 11] and [run + sub]; working space
-    bx, be, ub, pk : float64 [number of sub-blocks]; working space
-    phases32, v32, acc32 : float32 [48], [run + sub + 11], [run + sub]
-        :data:`PHASES` rounded to float32, and working space of the screen
-
-    Notes
-    -----
-    An interpolated sample is a weighted sum of 12 samples, so it is at most
-    ``gain`` times their largest magnitude. A sub-block whose bound does not
-    exceed the running peak is skipped: the result equals metering every
-    sample. For the output ``x + e`` the bound is also the input's own
-    sub-block peak plus ``gain * max|e|``, which skips almost everything.
-    Sub-blocks that must be interpolated are taken in runs of up to ``run``
-    frames, decided with the peak as it stood at the start of the run: a run
-    may interpolate a sub-block that a later decision would have skipped,
-    which costs time but never changes a reading. The input's runs are first
-    interpolated in float32 (twice as many outputs per vector instruction);
-    a sub-block is read in float64 only if its float32 peak plus a proven
-    bound on the float32 rounding (16 * 2**-24 * gain * max|x|) exceeds the
-    peak so far, so the reading is the float64 one wherever it matters.
-    """
-    wrap = (lambda f: f) if jit is None else jit
-
-    def at(h, b, n, nch, c):
-        # frame n of the history-then-block sequence, as float64
-        if n < 11:
-            return np.float64(h[n * nch + c])
-        return np.float64(b[(n - 11) * nch + c])
-
-    at = wrap(at)
-
-    def maxabs(b, nch, c, lo, hi):
-        # largest |b[n*nch + c]| for block frames n in [lo, hi); four running maxima, so
-        # that no compare waits for the one before
-        m0 = 0.0
-        m1 = 0.0
-        m2 = 0.0
-        m3 = 0.0
-        n = lo
-        while n + 4 <= hi:
-            t0 = abs(np.float64(b[n * nch + c]))
-            t1 = abs(np.float64(b[(n + 1) * nch + c]))
-            t2 = abs(np.float64(b[(n + 2) * nch + c]))
-            t3 = abs(np.float64(b[(n + 3) * nch + c]))
-            m0 = t0 if t0 > m0 else m0
-            m1 = t1 if t1 > m1 else m1
-            m2 = t2 if t2 > m2 else m2
-            m3 = t3 if t3 > m3 else m3
-            n += 4
-        while n < hi:
-            t0 = abs(np.float64(b[n * nch + c]))
-            m0 = t0 if t0 > m0 else m0
-            n += 1
-        return max(max(m0, m1), max(m2, m3))
-
-    maxabs = wrap(maxabs)
-
-    def run_peaks(hx, he, xs, es, nch, c, use_err, phases, s0, s1, sub, v, acc, out, k0, zero):
-        # Interpolate inputs n in [s0, s1) (history before s0) in one pass and put the
-        # largest |interpolated sample| of each sub-block into out[k0], out[k0 + 1], ...
-        # The samples are gathered into a contiguous float64 row first; each output is
-        # summed j = 0..11 in order, as in the plain meter, and its four phases' largest
-        # magnitude stored, with no running maximum in the loop: the compiler then
-        # computes several outputs at once in vector registers. The arithmetic is that of
-        # ``zero``, ``phases``, ``v`` and ``acc``: float64 for the reading, float32 for the
-        # screen (twice as many outputs per vector).
-        m = s1 - s0
-        for n in range(s0 - 11, s1):
-            t = at(hx, xs, n, nch, c)
-            if use_err:
-                t += at(he, es, n, nch, c)
-            v[n - s0 + 11] = t
-        for i in range(m):
-            a0 = zero
-            a1 = zero
-            a2 = zero
-            a3 = zero
-            for j in range(12):
-                t = v[i + 11 - j]
-                a0 += phases[j] * t
-                a1 += phases[12 + j] * t
-                a2 += phases[24 + j] * t
-                a3 += phases[36 + j] * t
-            acc[i] = max(max(abs(a0), abs(a1)), max(abs(a2), abs(a3)))
-        k = k0
-        i0 = 0
-        while i0 < m:
-            i1 = min(i0 + sub, m)
-            best = zero
-            for i in range(i0, i1):
-                if acc[i] > best:
-                    best = acc[i]
-            out[k] = best
-            k += 1
-            i0 = i1
-
-    run_peaks = wrap(run_peaks)
-
-    def dual_peak(hx, he, xs, es, m, nch, phases, gain, sub, run, peak_in, peak_out, v, acc,
-                  bx, be, ub, pk, phases32, v32, acc32):
-        # |float32 screen - float64 reading| <= 14 * 2**-24 * sum|h_j x_j| (rounding of h,
-        # x, each product and 11 sums), and sum|h_j x_j| <= gain * max|x|: 16 to spare
-        margin = 16.0 * 2.0**-24 * gain
-        nsb = (m - 11 + sub - 1) // sub  # sub-blocks after the 11 frames of history
-        per_run = max(1, run // sub)
-        for c in range(nch):
-            for k in range(nsb):
-                # largest |x| and |e| over the sub-block and the 11 frames before it
-                s0 = 11 + k * sub
-                s1 = min(s0 + sub, m)
-                lo = s0 - 11
-                xmax = 0.0
-                emax = 0.0
-                while lo < 11:  # frames from the history (first sub-block only)
-                    xmax = max(xmax, abs(at(hx, xs, lo, nch, c)))
-                    emax = max(emax, abs(at(he, es, lo, nch, c)))
-                    lo += 1
-                bx[k] = max(xmax, maxabs(xs, nch, c, lo - 11, s1 - 11))
-                be[k] = max(emax, maxabs(es, nch, c, lo - 11, s1 - 11))
-            # input: runs of sub-blocks whose bound exceeds the peak so far, screened in
-            # float32; the float64 reading is made only where the screen cannot rule out a
-            # new peak
-            k = 0
-            while k < nsb:
-                if gain * bx[k] > peak_in[c]:
-                    k1 = k + 1
-                    while k1 < nsb and k1 - k < per_run and gain * bx[k1] > peak_in[c]:
-                        k1 += 1
-                    run_peaks(hx, he, xs, es, nch, c, False, phases32, 11 + k * sub,
-                              min(11 + k1 * sub, m), sub, v32, acc32, pk, k, np.float32(0.0))
-                    for kk in range(k, k1):
-                        bound = np.float64(pk[kk]) + margin * bx[kk]
-                        if bound <= peak_in[c]:
-                            ub[kk] = bound
-                        else:  # (also when the screen gave NaN)
-                            s0 = 11 + kk * sub
-                            run_peaks(hx, he, xs, es, nch, c, False, phases, s0,
-                                      min(s0 + sub, m), sub, v, acc, pk, kk, 0.0)
-                            peak_in[c] = max(peak_in[c], pk[kk])
-                            ub[kk] = pk[kk]
-                    k = k1
-                else:
-                    ub[k] = gain * bx[k]
-                    k += 1
-            # output x + e: bounded by the input's own peak plus gain * max|e|
-            for k in range(nsb):
-                ub[k] = min(gain * (bx[k] + be[k]), ub[k] + gain * be[k])
-            k = 0
-            while k < nsb:
-                if ub[k] > peak_out[c]:
-                    k1 = k + 1
-                    while k1 < nsb and k1 - k < per_run and ub[k1] > peak_out[c]:
-                        k1 += 1
-                    run_peaks(hx, he, xs, es, nch, c, True, phases, 11 + k * sub,
-                              min(11 + k1 * sub, m), sub, v, acc, pk, k, 0.0)
-                    for kk in range(k, k1):
-                        peak_out[c] = max(peak_out[c], pk[kk])
-                    k = k1
-                else:
-                    k += 1
-
-    return dual_peak
-
+# The skip test compares gain * max|x| with the running peak; the gain is raised by a
+# relative 2**-32 so that a product rounded down can never skip a sample summed up to it.
+_SKIP_GAIN = PHASE_GAIN * (1.0 + 2.0**-32)
 
 #: Plain-Python twin of the compiled dual kernel (the tests compare the two).
 dual_peak_kernel_py = build_dual()
+#: Plain-Python twin of the compiled single kernel.
+peak_kernel_py = build_peak()
 
 _PHASES_FLAT = np.ascontiguousarray(PHASES.reshape(-1))
-_PHASES32 = _PHASES_FLAT.astype(np.float32)
+#: The float32 screen's coefficients (:func:`requant.dsp.peakkernel.fold_phases`).
+_PHASES32 = fold_phases(PHASES)
 
 
 @functools.cache
@@ -618,6 +412,14 @@ def _dual_kernel(x_dtype, e_dtype):
     from requant.dsp import native
 
     return native.kernel("truepeak-dual", xs=x_dtype, es=e_dtype)
+
+
+@functools.cache
+def _single_kernel(x_dtype):
+    """The compiled single kernel for a block dtype (float32, float64 or int32)."""
+    from requant.dsp import native
+
+    return native.kernel("truepeak", xs=x_dtype)
 
 
 def _float_block(a):
@@ -634,6 +436,80 @@ def _next_history(hist, block):
     if n >= HISTORY_FRAMES:
         return block[-HISTORY_FRAMES:].astype(np.float64)
     return np.concatenate((hist[n:], block.astype(np.float64)))
+
+
+class SkippingTruePeakMeter:
+    """Streaming true peak of one signal, skipping what provably cannot set a new peak.
+
+    The same reading as :class:`TruePeakMeter` (zero history, a zero flush at
+    :meth:`finish`), bit for bit, at a fraction of the cost: the compiled
+    kernel of :mod:`requant.dsp.peakkernel` bounds each sub-block by its
+    largest sample, screens the rest in float32 and reads in float64 only
+    where a new peak is possible.
+
+    Parameters
+    ----------
+    channels : int, >= 1
+
+    Notes
+    -----
+    Blocks are (frames, channels) arrays of float32, float64 or int32; int32
+    blocks are left-justified integer codes (full scale ``2**31``), metered in
+    code units and scaled exactly. Every block of one meter must have the same
+    dtype. Samples must be finite (the caller replaces NaN and infinity).
+    """
+
+    def __init__(self, channels):
+        self.channels = int(channels)
+        self._hx = np.zeros((HISTORY_FRAMES, self.channels))
+        self._peak = np.zeros(self.channels)
+        self._scale = None
+        self._v = np.zeros(RUN_FRAMES + SUB_FRAMES + HISTORY_FRAMES)
+        self._acc = np.zeros(RUN_FRAMES + SUB_FRAMES)
+        self._v32 = np.zeros(RUN_FRAMES + SUB_FRAMES + HISTORY_FRAMES, dtype=np.float32)
+        self._acc32 = np.zeros(RUN_FRAMES + SUB_FRAMES, dtype=np.float32)
+        self.finished = False
+
+    def process(self, x, *, kernel=None):
+        """Meter the next block, (frames, channels) float32, float64 or int32."""
+        n = x.shape[0]
+        if n == 0:
+            return
+        x = np.ascontiguousarray(x)
+        if x.dtype not in (np.float32, np.float64, np.int32):
+            x = np.ascontiguousarray(x, dtype=np.float64)
+        scale = 2.0**-31 if x.dtype == np.int32 else 1.0
+        if self._scale is None:
+            self._scale = scale
+        elif scale != self._scale:
+            raise ValueError("a SkippingTruePeakMeter takes integer codes or float samples, "
+                             "not both")
+        run = _single_kernel(x.dtype) if kernel is None else kernel
+        nsb = -(-n // SUB_FRAMES)
+        bx = np.empty(nsb * self.channels)
+        ub, pk = np.empty((2, nsb))
+        run(self._hx.reshape(-1), x.reshape(-1), HISTORY_FRAMES + n, self.channels,
+            _PHASES_FLAT, _PHASES32, _SKIP_GAIN, SUB_FRAMES, RUN_FRAMES, self._peak, bx, ub, pk,
+            self._v, self._acc, self._v32, self._acc32)
+        self._hx = _next_history(self._hx, x)
+
+    def finish(self):
+        """Flush the filter with 11 zeros (idempotent)."""
+        if not self.finished:
+            dtype = np.int32 if self._scale == 2.0**-31 else np.float64
+            self.process(np.zeros((HISTORY_FRAMES, self.channels), dtype=dtype))
+            self.finished = True
+
+    @property
+    def true_peak(self):
+        """ndarray, float64, (channels,), linear: largest |interpolated sample|."""
+        return self._peak * (self._scale or 1.0)
+
+    @property
+    def true_peak_dbtp(self):
+        """ndarray, float64, (channels,), dBTP; -inf for silence."""
+        with np.errstate(divide="ignore"):
+            return 20.0 * np.log10(self.true_peak)
 
 
 class DualTruePeakMeter:
@@ -667,9 +543,10 @@ class DualTruePeakMeter:
         e = _float_block(e)
         run = _dual_kernel(x.dtype, e.dtype) if kernel is None else kernel
         nsb = -(-n // SUB_FRAMES)
-        bx, be, ub, pk = np.empty((4, nsb))
+        bx, be = np.empty((2, nsb * self.channels))
+        ub, pk = np.empty((2, nsb))
         run(self._hx.reshape(-1), self._he.reshape(-1), x.reshape(-1), e.reshape(-1),
-            HISTORY_FRAMES + n, self.channels, _PHASES_FLAT, PHASE_GAIN, SUB_FRAMES, RUN_FRAMES,
+            HISTORY_FRAMES + n, self.channels, _PHASES_FLAT, _SKIP_GAIN, SUB_FRAMES, RUN_FRAMES,
             self.peak_in, self.peak_out, self._v, self._acc, bx, be, ub, pk, _PHASES32,
             self._v32, self._acc32)
         self._hx = _next_history(self._hx, x)

@@ -11,6 +11,8 @@ command-line option names written with underscores::
     shaping_order = 9
     shaping_limit_db = 13.0
     force_dither = false
+    silence = "keep"
+    silence_min_ms = 20.0
     analyze = false
     format = "flac"
     include = ["*.wav"]
@@ -42,7 +44,7 @@ __all__ = ["PROFILE_KEYS", "OUTPUT_CHOICES", "ProfileError", "load_profile", "pa
 #: The recipe's keys a profile may set (the rest of the recipe's dictionary form is
 #: written by requant, not typed by people).
 _RECIPE_PART = ("bits", "quantizer", "dither", "shaping", "shaping_order", "shaping_limit_db",
-                "force_dither", "seed")
+                "force_dither", "seed", "silence", "silence_min_ms")
 #: The batch's keys a profile may set; ``block_frames`` belongs to the machine.
 _BATCH_PART = ("format", "analyze", "include", "exclude")
 

@@ -287,6 +287,8 @@ def _kit_figures(src, got, base, *, names, gain_db, error_bits, parts, hide_answ
         "bits": bits,
         "word_lengths": word_lengths,
         "seed": base.seed,
+        "silence": {"mode": base.silence, "min_ms": base.silence_min_ms,
+                    "min_frames": base.silence_frames(rate)},
         "files": {"original": names["original"], "page": names["page"],
                   "figures": names["figures"]},
         "formats": {

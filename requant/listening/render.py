@@ -37,7 +37,7 @@ def _subtype(bits):
     return {16: "PCM_16", 24: "PCM_24", 32: "PCM_32"}[container_bits(bits)]
 
 
-def render_method(x, recipe, *, coeffs=()):
+def render_method(x, recipe, *, coeffs=(), sample_rate):
     """Requantize the faded excerpt with one method's recipe.
 
     Parameters
@@ -48,6 +48,8 @@ def render_method(x, recipe, *, coeffs=()):
         The method's recipe, with its seed.
     coeffs : sequence of float
         The recipe's shaping coefficients at the excerpt's rate.
+    sample_rate : int, Hz
+        The excerpt's rate (the recipe's shortest silent run is in ms).
 
     Returns
     -------
@@ -59,8 +61,9 @@ def render_method(x, recipe, *, coeffs=()):
         ``y - x``.
     """
     rq = Requantizer.from_recipe(recipe, x.shape[1], coeffs=coeffs,
-                                 container_bits=container_bits(recipe.bits))
-    codes, _ = rq.process(np.ascontiguousarray(x), error=False)
+                                 container_bits=container_bits(recipe.bits),
+                                 sample_rate=sample_rate)
+    codes = rq.run_all(np.ascontiguousarray(x))
     full = 32768.0 if codes.dtype == np.int16 else 2.0**31
     y = codes.astype(np.float64) / full
     return codes, y, y - x.astype(np.float64)
@@ -203,7 +206,7 @@ def render_one(method, recipe, coeffs, *, key, files, material):
     mat = material
     bits = recipe.bits
     predicted = predicted_error_power_lsb2(recipe.quantizer, recipe.dither, coeffs)
-    codes, y, err = render_method(mat.x, recipe, coeffs=coeffs)
+    codes, y, err = render_method(mat.x, recipe, coeffs=coeffs, sample_rate=mat.rate)
     write_wav(tmp[key], codes, mat.rate, _subtype(bits))
     del codes
     y = verify(tmp[key], y)
@@ -288,7 +291,7 @@ def _render_quiet(recipe, coeffs, *, key, files, material, predicted):
     """The quiet passage requantized with one method, then raised and capped."""
     names, tmp = files
     qx, q_gain, original = material.quiet
-    _, qy, _ = render_method(qx, recipe, coeffs=coeffs)
+    _, qy, _ = render_method(qx, recipe, coeffs=coeffs, sample_rate=material.rate)
     shared_db = 20.0 * math.log10(q_gain)
     gain_db, measure, diff = quiet_render_gain_db(qy, material.rate, shared_gain_db=shared_db,
                                                   original=original)

@@ -39,7 +39,7 @@ from requant.report.render import (
     _write_bytes,
     _write_text,
 )
-from requant.report.tables import Code, _num, _table, fmt_int
+from requant.report.tables import Code, _num, _table, fmt_int, loudness_rows
 
 __all__ = ["write_audit_report", "write_audit_html", "write_audit_markdown", "picture_paths",
            "audit_pictures", "audit_context", "AUDIT_PICTURES"]
@@ -295,6 +295,13 @@ def audit_context(result):
                 for k in ("path", "format", "subtype", "sample_rate", "channels", "frames")],
                numeric=[False, False, False]),
     ]
+    if r.get("loudness"):
+        tables.insert(3, _table(
+            "loudness", "Loudness over the overlap", ["", ""],
+            loudness_rows(r["loudness"], {"master": "master", "delivered": "delivery"}),
+            numeric=[False, False],
+            intro="The delivery as gain × master + error, measured on the blocks the error "
+                  "analysis reads."))
     return {"title_name": os.path.basename(r["delivered"]), "master_path": r["master"],
             "delivered_path": r["delivered"], "verdict": r["verdict"],
             "findings": list(r["findings"]), "notes": list(r["notes"]),

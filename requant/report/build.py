@@ -34,7 +34,8 @@ from requant.report.model import (
 
 __all__ = ["build_report", "Conversion", "settings_block"]
 
-_ANALYSIS_KEYS = ("method", "spectrum", "quietest_passage", "histogram", "true_peak", "dc_offset")
+_ANALYSIS_KEYS = ("method", "spectrum", "quietest_passage", "histogram", "true_peak", "loudness",
+                  "dc_offset")
 
 
 def _fold_analysis(res, total, pred_total, channels, *, passthrough):
@@ -114,17 +115,24 @@ def _difference_notes(m, p, *, dither_applied, section):
 
 def _figures(rq, frames, passthrough):
     """(measured total, predicted total, per-channel (measured, predicted)) from the running
-    sums, as dicts of the figures' fields."""
+    sums, as dicts of the figures' fields.
+
+    Samples kept digitally silent carry no error, so the predicted error power
+    is the model's power times the share of samples that were requantized
+    (each channel's own share, and all channels' together for the total).
+    """
     t = rq.totals()
     nch = rq.channels
     power = 0.0 if passthrough else predicted_error_power_lsb2(rq.quantizer, rq.dither, rq.coeffs)
+    silent = [int(v) for v in t["silent"]]
     channels = []
     for c in range(nch):
         meas = measured_figures(sum_x2=t["sum_x2"][c], sum_e=t["sum_e"][c], sum_e2=t["sum_e2"][c],
                                 frames=frames, scale=rq.scale, clipped=t["clipped"][c],
                                 max_abs_e=t["max_abs_e"][c])
-        pred = predicted_figures(power_lsb2=power, sum_x2=t["sum_x2"][c], frames=frames,
-                                 scale=rq.scale)
+        meas["silent_frames"] = silent[c]
+        pred = predicted_figures(power_lsb2=power * _share(frames - silent[c], frames),
+                                 sum_x2=t["sum_x2"][c], frames=frames, scale=rq.scale)
         channels.append((meas, pred))
     total = measured_figures(sum_x2=float(t["sum_x2"].sum()), sum_e=float(t["sum_e"].sum()),
                              sum_e2=float(t["sum_e2"].sum()), frames=frames * nch,
@@ -132,9 +140,52 @@ def _figures(rq, frames, passthrough):
                              max_abs_e=float(t["max_abs_e"].max()))
     total["over_full_scale_samples"] = int(t["over_full_scale"].sum())
     total["shaping_overloads"] = int(t["overloads"].sum())
-    pred_total = predicted_figures(power_lsb2=power, sum_x2=float(t["sum_x2"].sum()),
-                                   frames=frames * nch, scale=rq.scale)
+    total["silent_frames"] = sum(silent)
+    pred_total = predicted_figures(
+        power_lsb2=power * _share(frames * nch - sum(silent), frames * nch),
+        sum_x2=float(t["sum_x2"].sum()), frames=frames * nch, scale=rq.scale)
     return total, pred_total, channels
+
+
+def _weighted_for_silence(total, pred_total, channels, frames):
+    """Scale the analysis' weighted predictions to the samples not kept silent."""
+    if not total.get("silent_frames"):
+        return
+    for meas, pred in channels:
+        _scale_weighted(pred, _share(frames - meas["silent_frames"], frames))
+    nall = frames * len(channels)
+    _scale_weighted(pred_total, _share(nall - total["silent_frames"], nall))
+
+
+def _share(part, whole):
+    """``part / whole``, 1 for nothing at all (no frames: the model's own power)."""
+    return part / whole if whole else 1.0
+
+
+def _silence_note(channels, *, frames, rate, min_ms):
+    """The line saying how much digital silence was kept silent, or None."""
+    silent = [int(meas["silent_frames"]) for meas, _ in channels]
+    if not any(silent) or not frames:
+        return None
+    if len(set(silent)) == 1:
+        where = f"{silent[0] / rate:.2f} s of {frames / rate:.2f} s" + (
+            " in every channel" if len(silent) > 1 else "")
+    else:
+        where = ", ".join(f"channel {c + 1} {n / rate:.2f} s" for c, n in enumerate(silent))
+        where += f" (of {frames / rate:.2f} s)"
+    share = 100.0 * sum(silent) / (frames * len(silent))
+    return (f"Digital silence kept silent: {where}, {share:.1f}% of all samples, in runs of exact "
+            f"zeros of at least {min_ms:g} ms; no dither there, and the predictions cover the "
+            "requantized samples only (--silence dither to dither it).")
+
+
+def _scale_weighted(figures, share):
+    """Weighted predictions (from the analysis, for every sample) scaled to the requantized
+    share of the samples, in place."""
+    for key in ("a_weighted_noise_dbfs", "itu468_noise_dbfs"):
+        value = figures.get(key)
+        if value is not None:
+            figures[key] = value + 10.0 * math.log10(share) if share > 0 else None
 
 
 def _sentences(total, *, bits, dither, passthrough):
@@ -252,8 +303,13 @@ def build_report(rq, conv, *, analysis=None, metadata=None):
         more, section = _fold_analysis(analysis, total, pred_total, channels,
                                        passthrough=conv.passthrough)
         warnings.extend(more)
+        _weighted_for_silence(total, pred_total, channels, conv.frames)
         notes.extend(_difference_notes(total, pred_total, dither_applied=rq.dither,
                                        section=section))
+    note = _silence_note(channels, frames=conv.frames, rate=conv.source.rate,
+                         min_ms=conv.recipe.silence_min_ms)
+    if note:
+        notes.append(note)
     return Report(
         requant_version=__version__,
         created=_dt.datetime.now(_dt.UTC).isoformat(timespec="seconds"),

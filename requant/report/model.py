@@ -338,6 +338,10 @@ class MeasuredFigures(ErrorFigures):
         Input samples beyond full scale (clipped).
     shaping_overloads : int
         Times the noise-shaping loop's fed-back error was bounded.
+    silent_frames : int
+        Samples kept digitally silent (``silence = 'keep'``), all channels
+        together: a frame silent in two channels counts twice. Their codes and
+        error are exact zeros, and the predictions cover the other samples only.
     a_weighted_noise_dbfs : float or None, dBFS
         Error weighted by the A-curve (IEC 61672-1).
     itu468_noise_dbfs : float or None, dBFS
@@ -362,6 +366,7 @@ class MeasuredFigures(ErrorFigures):
 
     over_full_scale_samples: int = 0
     shaping_overloads: int = 0
+    silent_frames: int = 0
     a_weighted_noise_dbfs: float | None = None
     itu468_noise_dbfs: float | None = None
     tonal_fraction: float | None = None
@@ -381,7 +386,7 @@ class MeasuredFigures(ErrorFigures):
         true_peak : bool
             Include the true peaks (the analysis metered them).
         """
-        names = _ERROR_KEYS + ("over_full_scale_samples", "shaping_overloads")
+        names = _ERROR_KEYS + ("over_full_scale_samples", "shaping_overloads", "silent_frames")
         if analysed:
             names += ("a_weighted_noise_dbfs", "itu468_noise_dbfs", "tonal_fraction",
                       "correlation_fraction", "correlated_error_fraction")
@@ -398,6 +403,8 @@ class ChannelMeasured(ErrorFigures):
 
     Parameters
     ----------
+    silent_frames : int
+        Frames of this channel kept digitally silent.
     a_weighted_noise_dbfs, itu468_noise_dbfs : float or None, dBFS
         As in :class:`MeasuredFigures`.
     correlated_error_fraction : float or None
@@ -413,6 +420,7 @@ class ChannelMeasured(ErrorFigures):
     segment, and left out of :meth:`to_dict` then.
     """
 
+    silent_frames: int = 0
     a_weighted_noise_dbfs: float | None = None
     itu468_noise_dbfs: float | None = None
     correlated_error_fraction: float | None = None
@@ -423,7 +431,7 @@ class ChannelMeasured(ErrorFigures):
 
     def to_dict(self, *, analysed: bool, true_peak: bool) -> dict[str, Any]:
         """The JSON form (see :meth:`MeasuredFigures.to_dict`)."""
-        names = _ERROR_KEYS
+        names = _ERROR_KEYS + ("silent_frames",)
         if analysed:
             names += ("a_weighted_noise_dbfs", "itu468_noise_dbfs", "correlated_error_fraction",
                       "input_dc_offset", "output_dc_offset")
@@ -521,6 +529,13 @@ class Analysis:
     true_peak : mapping, optional
         ``input_dbtp``, ``output_dbtp`` and their ``_per_channel`` lists
         (dBTP); absent from the JSON form when None (not metered).
+    loudness : mapping, optional
+        ITU-R BS.1770-4 integrated loudness (LUFS) and EBU Tech 3342 loudness
+        range (LU) of the input and the output: ``input_integrated_lufs``,
+        ``output_integrated_lufs``, ``input_range_lu``, ``output_range_lu``
+        (each None when undefined), ``channel_layout`` and
+        ``channel_weights``; absent from the JSON form when None (not
+        measured, or a rate too low for K-weighting).
     """
 
     method: Mapping[str, Any]
@@ -529,6 +544,7 @@ class Analysis:
     histogram: Mapping[str, Any]
     dc_offset: Mapping[str, Any]
     true_peak: Mapping[str, Any] | None = None
+    loudness: Mapping[str, Any] | None = None
 
     def to_dict(self) -> dict[str, Any]:
         """The JSON form (fresh lists and dicts)."""
@@ -536,6 +552,8 @@ class Analysis:
                "quietest_passage": self.quietest_passage, "histogram": self.histogram}
         if self.true_peak is not None:
             out["true_peak"] = self.true_peak
+        if self.loudness is not None:
+            out["loudness"] = self.loudness
         out["dc_offset"] = self.dc_offset
         return _plain(out)
 

@@ -10,11 +10,13 @@ import math
 import os
 import re
 
-__all__ = ["page_context", "Code", "fmt_int", "fmt_zero_db"]
+__all__ = ["page_context", "Code", "fmt_int", "fmt_zero_db", "loudness_rows"]
 
 _MINUS_INF = "\u2212\u221e"
 _PLUS_INF = "+\u221e"
 _NA = "n/a"
+#: An undefined loudness: no 400 ms block (or 3 s window) above the gates.
+_BELOW_GATE = "n/a (below the gates or too short)"
 
 
 # ------------------------------------------------------------------------------------------
@@ -260,17 +262,37 @@ def _quiet_rows(q):
     ]
 
 
+def loudness_rows(loud, names):
+    """Table rows of a ``loudness`` section: integrated loudness and range of two signals.
+
+    ``names`` maps the section's prefixes to row labels, e.g. ``{"input": "input"}``.
+    """
+    if not loud:
+        return []
+    rows = []
+    for key, label in names.items():
+        rows.append([f"{label} integrated loudness (ITU-R BS.1770-4), LUFS",
+                     _num(loud.get(f"{key}_integrated_lufs"), none=_BELOW_GATE)])
+    for key, label in names.items():
+        rows.append([f"{label} loudness range (EBU Tech 3342), LU",
+                     _num(loud.get(f"{key}_range_lu"), none=_BELOW_GATE)])
+    return rows
+
+
 def _peaks_table(m, an):
     tp = an.true_peak if an is not None else None
     none = _MINUS_INF if tp is not None else _NA
     rows = [
         ["input true peak (ITU-R BS.1770-4), dBTP", _num(m.input_true_peak_dbtp, none=none)],
         ["output true peak (ITU-R BS.1770-4), dBTP", _num(m.output_true_peak_dbtp, none=none)],
+        *loudness_rows(an.loudness if an is not None else None,
+                       {"input": "input", "output": "output"}),
         ["input samples beyond full scale", fmt_int(m.over_full_scale_samples)],
         ["output samples clipped at the end of the range", fmt_int(m.clipped_samples)],
         ["noise-shaping loop overloads", fmt_int(m.shaping_overloads)],
     ]
-    return _table("peaks", "Peaks and clipping", ["figure", "value"], rows, numeric=[False, False])
+    return _table("peaks", "Peaks, loudness and clipping", ["figure", "value"], rows,
+                  numeric=[False, False])
 
 
 def _channel_noise_table(report, *, have_spectrum):
