@@ -45,6 +45,8 @@ bench: $(STAMP)
 	$(BIN)/python benchmarks/bench_silence.py
 	$(BIN)/python benchmarks/bench_batch.py
 	$(BIN)/python benchmarks/bench_audit.py
+	$(BIN)/python benchmarks/bench_resume_index.py --sizes 10000,200000
+	$(BIN)/python benchmarks/bench_scale.py --quick
 
 clean:
 	rm -rf $(VENV) demo_output bench_output .pytest_cache

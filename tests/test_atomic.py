@@ -171,3 +171,41 @@ def test_interrupt_inside_a_group_commit_never_removes_what_the_group_renames(tm
         group.flush()
     assert (tmp_path / "a.txt").read_text() == "A"
     assert [p.name for p in tmp_path.iterdir()] == ["a.txt"]
+
+
+def _group_of(folder, n):
+    with CommitGroup() as group:
+        for i in range(n):
+            with AtomicOutputs() as outs:
+                _write(outs, folder / f"f{i}.txt", f"file {i}")
+        return group.detach()
+
+
+def test_a_whole_file_system_flush_comes_before_every_rename(tmp_path, monkeypatch):
+    # commit_pairs(whole_fs=True): one syncfs(2) of the file system (Linux), then the renames;
+    # a syncfs that fails (-1) falls back to an fsync per file, before any rename too
+    calls = _trace(monkeypatch)
+    monkeypatch.setitem(atomic._SYNCFS, "fn", lambda fd: (calls.append("syncfs"), os.sync())[1]
+                        or 0)
+    atomic.commit_pairs(_group_of(tmp_path, 3), whole_fs=True)
+    assert calls == ["syncfs", "replace", "replace", "replace"]
+    assert [(tmp_path / f"f{i}.txt").read_text() for i in range(3)] == [
+        "file 0", "file 1", "file 2"]
+    calls.clear()
+    monkeypatch.setitem(atomic._SYNCFS, "fn", lambda fd: (calls.append("syncfs"), -1)[1])
+    (tmp_path / "again").mkdir()
+    atomic.commit_pairs(_group_of(tmp_path / "again", 2), whole_fs=True)
+    assert calls == ["syncfs", "fsync", "fsync", "replace", "replace"]
+
+
+def test_a_slow_whole_file_system_flush_is_given_up(tmp_path, monkeypatch):
+    # syncfs also waits for other programs' unwritten data: one slow call (here: any call,
+    # the limit set to 0 s) sends this process back to an fsync per file for good
+    calls = _trace(monkeypatch)
+    monkeypatch.setattr(atomic, "_SYNCFS_SLOW_S", 0.0)
+    monkeypatch.setitem(atomic._SYNCFS, "fn", lambda fd: (calls.append("syncfs"), 0)[1])
+    atomic.commit_pairs(_group_of(tmp_path, 2), whole_fs=True)
+    assert calls == ["syncfs", "replace", "replace"] and atomic._SYNCFS["fn"] is False
+    calls.clear()
+    atomic.commit_pairs(_group_of(tmp_path, 2), whole_fs=True)
+    assert calls == ["fsync", "fsync", "replace", "replace"]

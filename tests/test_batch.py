@@ -159,7 +159,12 @@ def settings(**kw):
 
 
 def latest_by_source(dst):
+    """The manifest's events, each converted one with its figures and metadata from its
+    run's details file (the compact rows leave them out)."""
     events, bad = read_manifest(dst / B.MANIFEST_NAME)
+    details = B.read_details(dst)
+    for e in events:
+        e.update(details.get((e.get("run_id"), e["source"]), {}))
     return {e["source"]: e for e in events}, events, bad
 
 
@@ -167,10 +172,13 @@ def sha(path):
     return hashlib.sha256(Path(path).read_bytes()).hexdigest()
 
 
+BOOKKEEPING = {B.MANIFEST_NAME, B.SUMMARY_NAME, B.INDEX_NAME, B.STATE_NAME, B.LOCK_NAME,
+               B.RUNS_DIR, B.PAGES_DIR}
+
+
 def audio_outputs(dst):
-    names = {B.MANIFEST_NAME, B.SUMMARY_NAME, B.INDEX_NAME, B.STATE_NAME, B.LOCK_NAME}
     return sorted(p.relative_to(dst).as_posix() for p in dst.rglob("*")
-                  if p.is_file() and p.name not in names)
+                  if p.is_file() and p.relative_to(dst).parts[0] not in BOOKKEEPING)
 
 
 # --------------------------------------------------------------------------- the walk and outcomes
@@ -214,11 +222,15 @@ def test_tree_outcomes(tree, tmp_path):
 def test_manifest_fields(tree, tmp_path):
     dst = tmp_path / "out"
     summary = run_batch(tree, dst, settings(), jobs=1)
-    events, bad = read_manifest(dst / B.MANIFEST_NAME)
+    events, bad = latest_by_source(dst)[1:]
     lines = (dst / B.MANIFEST_NAME).read_text().splitlines()
     durations = {r: (v[0] // 20) / v[0] for r, v in GOOD.items()} | {"loops/loop.wav": 0.1}
     assert int(bad) == 0
-    assert len(lines) == len(events) == len(GOOD) + 1 + len(BROKEN) + len(OTHER) + 1
+    # one row per entry, then the run's own row with its counts
+    assert len(lines) - 1 == len(events) == len(GOOD) + 1 + len(BROKEN) + len(OTHER) + 1
+    run_row = json.loads(lines[-1])
+    assert run_row["status"] == "run" and run_row["counts"] == summary["counts"]
+    assert run_row["run_id"] == summary["run_id"] and run_row["rows"] == len(events)
     for ev in events:
         for key in ("source", "output", "status", "error", "settings_id", "timestamp", "worker"):
             assert key in ev
@@ -230,6 +242,10 @@ def test_manifest_fields(tree, tmp_path):
             assert isinstance(ev["snr_db"], float) and ev["seconds"] > 0
             assert ev["duration_s"] == pytest.approx(durations[ev["source"]])
             assert ev["worker"].endswith(f":{os.getpid()}")  # --jobs 1: this process
+            # the figures are in the run's details file, keyed by the row's run and source
+            assert ev["figures"]["sample_rate"] == (GOOD.get(ev["source"]) or (48000,))[0]
+            assert ev["output_stat"] == [(dst / ev["output"]).stat().st_size,
+                                         (dst / ev["output"]).stat().st_mtime_ns]
             # the documented seed: sha256(run seed, NUL, path), first 8 bytes, 63 bits
             raw = b"1234\0" + ev["source"].encode()
             assert ev["seed"] == int.from_bytes(hashlib.sha256(raw).digest()[:8], "big") >> 1
@@ -587,43 +603,77 @@ def test_dry_run_writes_nothing(tree, tmp_path):
     assert (dst / B.MANIFEST_NAME).read_bytes() == manifest
 
 
+def _pages(dst):
+    return {p.name: p.stat().st_mtime_ns for p in (dst / B.PAGES_DIR).glob("p-*.html")}
+
+
 def test_index_html(tmp_path):
     src = tmp_path / "src"
     src.mkdir()
     sf.write(src / "<b>bold&.wav", np.zeros((100, 1)), 8000, subtype="PCM_24")
     (src / "zz_bad.wav").write_bytes(b"RIFF\0\0")
     run_batch(src, tmp_path / "out", settings(), jobs=1)
-    html = (tmp_path / "out" / B.INDEX_NAME).read_text()
-    assert "&lt;b&gt;bold&amp;.wav" in html and "<b>bold" not in html  # autoescaped
-    assert "<script>" in html and not re.search(r"(src|href)=\"(https?:)?//", html)
-    rows = re.findall(r'<tr class="(\w+)">', html)
-    assert rows[0] == "failed"  # problem files first
-    assert html.index("zz_bad.wav") < html.index("&lt;b&gt;bold")
+    summary_page = (tmp_path / "out" / B.INDEX_NAME).read_text()
+    (page,) = _pages(tmp_path / "out")
+    detail = (tmp_path / "out" / B.PAGES_DIR / page).read_text()
+    assert "&lt;b&gt;bold&amp;.wav" in detail and "<b>bold" not in detail  # autoescaped
+    assert "<b>bold" not in summary_page
+    for html in (summary_page, detail):  # self-contained: nothing from the network
+        assert not re.search(r"(src|href)=\"(https?:)?//", html)
+    assert "<script>" in detail
+    # the summary page names the failure and links the detail page that holds it
+    assert re.findall(r'<tr class="(\w+)">', summary_page)[0] == "failed"
+    assert "zz_bad.wav" in summary_page and f'href="{B.PAGES_DIR}/{page}"' in summary_page
+    # the detail page: a row per file, in walk order, each linking its output from DST
+    assert re.findall(r'<tr class="(\w+)">', detail) == ["ok", "failed"]
+    assert 'href="../%3Cb%3Ebold%26.wav"' in detail
 
 
-def test_index_rows_rendered_early_or_late_are_the_same(tree, tmp_path):
-    # The builder renders rows as results come back once prepared; rows added before
-    # prepare() wait. Either way the page is the same, problem files first.
-    from requant.library.index import IndexBuilder, render_index
+def test_index_pages_stay_small_and_are_rewritten_only_when_they_change(tmp_path):
+    # entries that are not audio (no conversion needed) over folders of 300, 900, 1100
+    # (more than a page) and 10 files: pages hold whole folders, at most PAGE_ROWS rows
+    from requant.library.spool import PAGE_ROWS
 
-    summary = run_batch(tree, tmp_path / "out", settings(), jobs=1)
-    events, _ = read_manifest(tmp_path / "out" / B.MANIFEST_NAME)
-    early, late = IndexBuilder(), IndexBuilder()
-    early.prepare()
-    for i, ev in enumerate(events):
-        early.add(ev)
-        late.add(ev)
-        if i == 3:
-            late.prepare()
-    strip = re.compile(r"Written \S+ ")  # the generation time
-    page = strip.sub("", render_index(events, summary))
-    assert strip.sub("", early.render(summary)) == page == strip.sub("", late.render(summary))
-    classes = re.findall(r'<tr class="(\w+)">', page)
-    assert len(classes) == len(events)
-    order = {"failed": 0, "warn": 1, "ok": 2, "other": 3}
-    assert [order[c] for c in classes] == sorted(order[c] for c in classes)
-    numbers = re.findall(r'<tr class="\w+">\n  <td class="n">(\d+)</td>', page)
-    assert numbers == [str(i) for i in range(1, len(events) + 1)]
+    src, dst = tmp_path / "src", tmp_path / "out"
+    for folder, n in (("a", 300), ("b", 900), ("c", 1100), ("d", 10)):
+        (src / folder).mkdir(parents=True)
+        for i in range(n):
+            (src / folder / f"n{i:04d}.txt").write_bytes(b"x")
+    first = run_batch(src, dst, settings(), jobs=1)
+    assert first["library"]["files"] == first["counts"]["not_audio"] == 2310
+    pages = _pages(dst)
+    rows = {name: (dst / B.PAGES_DIR / name).read_text().count("<tr class=") for name in pages}
+    assert sum(rows.values()) == 2310 and max(rows.values()) == PAGE_ROWS
+    assert len(pages) == first["library"]["pages"] >= 4
+    assert max((dst / B.PAGES_DIR / name).stat().st_size for name in pages) < 2 << 20
+    # nothing changed: no row written, no page written
+    manifest = (dst / B.MANIFEST_NAME).read_bytes()
+    again = run_batch(src, dst, settings(), jobs=1)
+    assert again["manifest_rows"] == 0 and _pages(dst) == pages
+    assert (dst / B.MANIFEST_NAME).read_bytes().count(b"\n") == manifest.count(b"\n") + 1
+    # one new file in the last folder: its page changes, the others stay as they were
+    (src / "d" / "new.txt").write_bytes(b"y")
+    third = run_batch(src, dst, settings(), jobs=1)
+    after = _pages(dst)
+    assert third["manifest_rows"] == 1 and len(after) == len(pages)
+    assert len(set(after) - set(pages)) == 1
+    assert all(after[name] == pages[name] for name in set(after) & set(pages))
+
+
+def test_index_rows_are_escaped_and_name_a_pending_file():
+    from requant.library.index import row_html
+    from requant.library.resume import CLASSES
+
+    ev = {"source": "a/<i>&.wav", "output": "a/<i>&.flac", "status": "converted",
+          "reason": "new", "warnings": ["x < y"], "warning_kinds": ["clipping"],
+          "snr_db": 80.123, "duration_s": 1.5, "seconds": 0.25, "error": None,
+          "timestamp": "2026-01-02T03:04:05.678+00:00"}
+    html = row_html(7, ev, CLASSES["warn"])
+    assert "<i>" not in html and "a/&lt;i&gt;&amp;.wav" in html and "x &lt; y" in html
+    assert 'href="../a/%3Ci%3E%26.flac"' in html and "80.12" in html and "2026-01-02 03:04" in html
+    assert html.startswith('<tr class="warn"><td class="n">7</td>')
+    pending = row_html(1, "b/<b>.wav", CLASSES["pending"])
+    assert "not started" in pending and "&lt;b&gt;" in pending and "<b>" not in pending
 
 
 def test_chunks_taper_towards_the_end():

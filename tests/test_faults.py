@@ -478,6 +478,7 @@ def test_batch_fault_case(tmp_path, name, extra, profile, code, message):
     import json
 
     events = [json.loads(ln) for ln in (out / "requant-manifest.jsonl").read_text().splitlines()]
+    assert events[-1]["status"] == "run"  # the run's own row comes last
     failed = {e["source"]: e["error"] for e in events if e["status"] == "failed"}
     assert set(failed) == {"empty.wav", "garbage.wav", "sub/cut.wav"}
     assert all(msg and "\n" not in msg for msg in failed.values())

@@ -11,7 +11,13 @@ import pytest
 import soundfile as sf
 
 from requant.errors import UsageError
-from requant.library import MANIFEST_NAME, read_manifest, resolve_settings, run_batch
+from requant.library import (
+    MANIFEST_NAME,
+    read_details,
+    read_manifest,
+    resolve_settings,
+    run_batch,
+)
 from requant.library.profiles import (
     PROFILE_KEYS,
     ProfileError,
@@ -153,7 +159,8 @@ def test_profile_drives_a_batch_and_options_override(tmp_path, src):
                                                                 load_profile(prof)), jobs=1)
     ev = [e for e in read_manifest(tmp_path / "out" / MANIFEST_NAME)[0]
           if e["status"] == "converted"][0]
-    assert ev["output"] == "a.aiff" and ev["figures"]["bits"] == 12
+    figures = read_details(tmp_path / "out")[(ev["run_id"], ev["source"])]["figures"]
+    assert ev["output"] == "a.aiff" and figures["bits"] == 12
     assert summary["run_seed"] == 77
     # libsndfile is the oracle for what was written
     info = sf.info(tmp_path / "out" / "a.aiff")

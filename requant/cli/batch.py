@@ -101,9 +101,11 @@ class ConsoleReporter:
         self._files = info["files"]
         if self.quiet:
             return
-        print(f"requant batch: {info['files']} files ({info['audio_files']} to check or convert) "
-              f"into {info['dst']}; {info['executor']}; run seed {info['run_seed']} "
-              f"({info['seed_origin']})", flush=True)
+        up = info.get("up_to_date")
+        print(f"requant batch: {info['files']} files ({info['audio_files']} to check or convert"
+              + (f", {up} up to date" if up else "") + f") into {info['dst']}; "
+              f"{info['executor']}; run seed {info['run_seed']} ({info['seed_origin']})",
+              flush=True)
         if self.tty and info["files"]:
             from rich.console import Console
             from rich.progress import (
@@ -207,7 +209,8 @@ def _print_summary(summary, quiet):
     if not quiet:
         _print_list("not audio, skipped", [f"{_show(n['source'])} ({n['reason']})"
                                            for n in summary["not_audio"]], sys.stdout)
-        print(f"manifest {os.path.join(dst, summary['manifest'])}; summary "
+        print(f"manifest {os.path.join(dst, summary['manifest'])} "
+              f"(+{summary.get('manifest_rows', 0)} rows); summary "
               f"{os.path.join(dst, 'requant-summary.json')}; index "
               f"{os.path.join(dst, summary['index'])}")
 
@@ -227,10 +230,12 @@ def _print_dry_run(result, quiet):
 
 
 def batch(
-    src: Annotated[Path, typer.Argument(help="Folder of audio files (walked recursively; links "
-                                             "to folders are not followed).")],
-    dst: Annotated[Path, typer.Argument(help="Destination folder: mirrors SRC's tree and holds "
-                                             "the manifest, summary and index.")],
+    src: Annotated[Path | None, typer.Argument(
+        help="Folder of audio files (walked recursively; links to folders are not "
+             "followed).", show_default=False)] = None,
+    dst: Annotated[Path | None, typer.Argument(
+        help="Destination folder: mirrors SRC's tree and holds the manifest, summary and "
+             "index.", show_default=False)] = None,
     bits: MaybeBits = None,
     quantizer: MaybeQuantizer = None,
     dither: MaybeDither = None,
@@ -270,6 +275,10 @@ def batch(
     ] = False,
     block_frames: MaybeBlockFrames = None,
     quiet: Quiet = False,
+    compact: Annotated[Path | None, typer.Option(
+        "--compact", metavar="DST",
+        help="Only rewrite DST's manifest, keeping the newest row per file (and what resume "
+             "needs); crash-safe. Takes no SRC.", show_default=False)] = None,
 ):
     """Convert a folder tree (a sound library) into a mirrored tree, with a manifest.
 
@@ -278,6 +287,14 @@ def batch(
     failed, 1 when some file failed, 2 for bad options, 130 when
     interrupted (rerun the same command to resume).
     """
+    if compact is not None:
+        _compact(compact, src, dst, quiet)
+        return
+    if src is None or dst is None:
+        from requant.errors import UsageError
+
+        raise UsageError("give a source folder and a destination folder (requant batch SRC "
+                         "DST), or --compact DST")
     from requant.library import resolve_settings, run_batch
 
     prof = None
@@ -307,6 +324,22 @@ def batch(
         if executor is not None:
             executor.close()
     _report_outcome(result, settings, dry_run=dry_run, quiet=quiet)
+
+
+def _compact(dst, src, extra, quiet):
+    """``--compact DST``: rewrite the manifest; print what it did."""
+    from requant.errors import UsageError
+    from requant.library import compact_manifest
+
+    if src is not None or extra is not None:
+        raise UsageError("--compact takes the destination folder alone (requant batch --compact "
+                         "DST); run the batch separately")
+    done = compact_manifest(dst)
+    if not quiet:
+        print(f"compacted {done['path']}: {done['rows_before']} rows -> {done['rows_after']}, "
+              f"{done['bytes_before'] / 1e6:.1f} MB -> {done['bytes_after'] / 1e6:.1f} MB"
+              + (f"; {done['unreadable']} unreadable line(s) dropped" if done["unreadable"]
+                 else ""))
 
 
 def _report_outcome(result, settings, *, dry_run, quiet):

@@ -5,29 +5,31 @@
 
 from __future__ import annotations
 
+import datetime as _dt
 import os
 import signal
 import threading
 import time
 
-from requant import __version__
 from requant.audio_io.writers import write_json_atomic
 from requant.errors import OutputError, RequantError
 from requant.library.executors.base import BatchReporter, Executor, Reporter, WorkerLost
 from requant.library.executors.local import ProcessExecutor, SerialExecutor, default_jobs
-from requant.library.index import IndexBuilder
-from requant.library.manifest import MANIFEST_NAME, ManifestWriter, read_manifest
-from requant.library.plan import (
-    STATE_NAME,
-    choose_run_seed,
-    plan_dry_run,
-    plan_tasks,
-    remove_stale_temps,
-    take_lock,
+from requant.library.index import write_index
+from requant.library.manifest import (
+    MANIFEST_NAME,
+    RUN_STATUS,
+    DetailsWriter,
+    ManifestWriter,
+    read_row,
 )
+from requant.library.plan import plan_dry_run, plan_run, write_claims
+from requant.library.resume import CLASSES, row_class
 from requant.library.settings import BatchSettings, settings_id
-from requant.library.summary import INDEX_NAME, SUMMARY_NAME, RunRecord, summarize
-from requant.library.task import convert_task, now_iso, task_payloads, worker_label
+from requant.library.spool import Refs
+from requant.library.state import choose_run_seed, read_state, remove_stale_temps, take_lock
+from requant.library.summary import SUMMARY_NAME, RunRecord, Tally, summarize
+from requant.library.task import convert_task, now_iso, worker_label
 from requant.library.tree import check_folders
 
 __all__ = ["run_batch"]
@@ -95,8 +97,8 @@ def run_batch(src: str | os.PathLike, dst: str | os.PathLike,
         raise OutputError(f"cannot create the destination {dst!r} ({exc.strerror or exc}); check "
                           "the path and permissions") from None
     lock_fd = take_lock(dst)
+    run = _Run(src, dst, settings, prune=prune, reporter=reporter, started=started)
     try:
-        run = _Run(src, dst, settings, prune=prune, reporter=reporter, started=started)
         run.plan(overwrite=overwrite, verify=verify_sources)
         run.start(executor, jobs)
         try:
@@ -108,101 +110,154 @@ def run_batch(src: str | os.PathLike, dst: str | os.PathLike,
         finally:
             run.restore_signals()
     finally:
+        run.close()
         os.close(lock_fd)
+
+
+def _run_id(pid):
+    """A run's id: its start time (UTC, to the millisecond) and the process id."""
+    now = _dt.datetime.now(_dt.UTC)
+    return f"{now:%Y%m%dT%H%M%S}.{now.microsecond // 1000:03d}Z-{pid}"
+
+
+def _rounded(ev):
+    """Figures cut to what they mean (keeps a manifest row short)."""
+    for key, digits in (("snr_db", 4), ("duration_s", 6), ("seconds", 4)):
+        v = ev.get(key)
+        if isinstance(v, float) and v == v and abs(v) != float("inf"):
+            ev[key] = round(v, digits)
+    return ev
+
+
+def _unchanged(item, ev):
+    """True when a worker found a file up to date and nothing about it changed: the
+    source's identity and the output's size, time and hash are the recorded ones."""
+    expect = item.get("expect_source") or {}
+    ident = ev.get("source_identity") or {}
+    return (all(ident.get(k) == expect.get(k) for k in ("size", "mtime_ns", "sha256"))
+            and ev.get("output_sha256") == item.get("expect_sha256")
+            and ev.get("output_stat") == item.get("expect_output_stat"))
 
 
 class _Run:
     """One batch run, in the steps :func:`run_batch` takes: plan, start, convert, stop, finish.
 
-    It holds what the steps share: the plan, the executor, the manifest and index being
-    written, the events recorded and the progress totals.
+    It holds what the steps share: the plan (its spools), the executor, the manifest
+    and details being written, where each task's row went, and the tally.
     """
 
     def __init__(self, src, dst, settings, *, prune, reporter, started):
         self.src, self.dst, self.settings, self.prune = src, dst, settings, prune
         self.reporter, self.started = reporter, started
-        self.run_id = f"{started}-{os.getpid()}"
-        self.recorded = []
+        self.run_id = _run_id(os.getpid())
+        self.tally = Tally()
         self.notes = []
         self.interrupted = False
         self.executor = None
         self.own_executor = False
         self._old_sigint = None
+        self.plan_ = None
+        self.manifest = None
+        self.details = None
+        self._rows_fd = None
+        self.done = 0
 
     # ------------------------------------------------------------------ plan
 
     def plan(self, *, overwrite, verify=False):
         """Decide what each file needs, claim the outputs this run may write."""
+        t0 = time.perf_counter()
         stale = remove_stale_temps(self.dst)
         self.manifest_path = os.path.join(self.dst, MANIFEST_NAME)
-        events, bad_lines = read_manifest(self.manifest_path)
         self.run_seed, self.seed_origin = choose_run_seed(self.settings, self.dst)
         self.sid = settings_id(self.settings, self.run_seed)
-        self.tasks, self.parent_events, self.info = plan_tasks(
+        plan = self.plan_ = plan_run(
             self.src, self.dst, self.settings, prune=self.prune, run_seed=self.run_seed,
-            sid=self.sid, overwrite=overwrite, events=events, verify=verify)
-        del events
-        self._claim(self.info["claims"] | {t["output"] for t in self.tasks})
-        # biggest first: long files start early and do not trail at the end
-        self.tasks.sort(key=lambda t: (-t["size"], t["source"]))
-        self.by_source = {t["source"]: t for t in self.tasks}
+            sid=self.sid, overwrite=overwrite, verify=verify, spool_dir=self.dst)
+        self.task_refs, self.event_refs = Refs(len(plan.tasks)), Refs(len(plan.events))
+        self.tally.up_to_date(plan.up_to_date, plan.up_to_date_s)
+        self._open_rows()
+        for source, offset in plan.earlier_warnings:
+            ev = self._row(offset)
+            if ev is not None and ev.get("source") == source:
+                self.tally.earlier_warning(ev)
         if stale:
             self.notes.append(f"removed {len(stale)} temporary file(s) left by an interrupted run")
-        if bad_lines:
-            self.notes.append(bad_lines.sentence(self.manifest_path))
-        self.notes.extend(self.info["notes"])
+        if plan.damage:
+            self.notes.append(plan.damage.sentence(self.manifest_path))
+        self.notes.extend(plan.notes)
+        if len(plan.tasks) or plan.state_stale or \
+                read_state(self.dst).get("run_seed") != self.run_seed:
+            self._claim()
+        self.plan_s = time.perf_counter() - t0
 
-    def _claim(self, claims):
+    def _claim(self, keep=None):
+        write_claims(self.dst, self.run_seed, self.plan_, keep)
+
+    def _open_rows(self):
         try:
-            write_json_atomic({"format": "requant-batch-state", "version": 1,
-                               "requant_version": __version__, "run_seed": self.run_seed,
-                               "updated": now_iso(), "claimed_outputs": sorted(claims)},
-                              os.path.join(self.dst, STATE_NAME))
+            self._rows_fd = os.open(self.manifest_path, os.O_RDONLY | os.O_CREAT, 0o644)
         except OSError as exc:
-            raise OutputError(f"cannot write in the destination {self.dst!r} "
-                              f"({exc.strerror or exc}); free some space or choose a writable "
-                              "folder") from None
+            raise OutputError(f"cannot write the manifest {self.manifest_path!r} "
+                              f"({exc.strerror or exc}); free some space or fix the "
+                              "permissions, then run again") from None
+
+    def _row(self, offset):
+        """The manifest row at ``offset`` (None when there is none)."""
+        if offset is None or offset < 0:
+            return None
+        return read_row(self._rows_fd, offset)
 
     # ------------------------------------------------------------------ start
 
     def start(self, executor, jobs):
         """Start the executor (before any thread of ours: fork safety), then the reporter."""
-        tasks = self.tasks
+        tasks, plan = self.plan_.tasks, self.plan_
         n_workers = min(jobs or default_jobs(), max(1, len(tasks)))
         self.own_executor = executor is None
         if executor is None:
             executor = SerialExecutor() if n_workers <= 1 else ProcessExecutor(n_workers)
         self.executor = executor
-        if tasks:
+        if len(tasks):
             executor.start()
-        self.totals = {"files_done": 0, "files_total": len(tasks) + len(self.parent_events),
-                       "bytes_done": 0, "bytes_total": sum(t["size"] for t in tasks),
-                       "audio_s_done": 0.0}
+        self.totals = {"files_done": 0, "files_total": len(tasks) + len(plan.events),
+                       "bytes_done": 0, "bytes_total": tasks.bytes_total, "audio_s_done": 0.0}
         self.reporter.started({
-            "src": self.src, "dst": self.dst, "files": self.totals["files_total"],
-            "audio_files": len(tasks), "bytes": self.totals["bytes_total"],
-            "jobs": executor.workers if tasks else 0,
-            "executor": executor.description if tasks else "none",
-            "threads_ok": not (tasks and getattr(executor, "forks", False)),
+            "src": self.src, "dst": self.dst, "files": plan.walked,
+            "audio_files": len(tasks), "up_to_date": plan.up_to_date,
+            "bytes": self.totals["bytes_total"],
+            "jobs": executor.workers if len(tasks) else 0,
+            "executor": executor.description if len(tasks) else "none",
+            "threads_ok": not (len(tasks) and getattr(executor, "forks", False)),
             "run_seed": self.run_seed, "seed_origin": self.seed_origin, "settings_id": self.sid})
         for n in self.notes:
             self.reporter.message("note", n)
         self.manifest = ManifestWriter(self.manifest_path)
-        self.index = IndexBuilder()
+        self.details = DetailsWriter(self.dst, self.run_id)
         self.parent_label = worker_label()
 
     # ------------------------------------------------------------------ convert
 
-    def record(self, ev, size=0):
-        """Append one event to the manifest and the index, and report it."""
+    def _write(self, ev):
+        """Append one event to the manifest; returns its row's (offset, crc, class, SNR)."""
         ev.setdefault("error", None)
         ev["settings_id"] = self.sid
         ev["run_id"] = self.run_id
         ev["timestamp"] = now_iso()
         ev.setdefault("worker", self.parent_label)
-        self.manifest.append(ev)
-        self.recorded.append(ev)
-        self.index.add(ev)
+        figures, metadata = ev.pop("figures", None), ev.pop("metadata", None)
+        if ev["status"] == "converted" and (figures is not None or metadata is not None):
+            self.details.append(ev["source"], figures, metadata)
+        offset, crc = self.manifest.append(_rounded(ev))
+        if figures is not None:
+            ev["figures"] = figures
+        if metadata is not None:
+            ev["metadata"] = metadata
+        return offset, crc, row_class(ev), ev.get("snr_db")
+
+    def _done(self, ev, written, size=0):
+        """Count an outcome and report it."""
+        self.tally.add(ev, written=written)
         t = self.totals
         t["files_done"] += 1
         t["bytes_done"] += size
@@ -210,77 +265,132 @@ class _Run:
             t["audio_s_done"] += ev["duration_s"]
         self.reporter.file_done(ev, dict(t))
 
+    def _event(self, m, ev, write, ref):
+        """A parent event: written when it changes the manifest."""
+        if write:
+            ref = self._write(ev)
+        self.event_refs.set(m, ref)
+        self._done(ev, write)
+
     @staticmethod
     def event_from(task, res):
         """The manifest event of a task's result (a dict, or the exception it ended in)."""
         if isinstance(res, BaseException):
-            ev = {"source": task["source"], "output": task["output"], "seed": task["seed"],
-                  "status": "failed",
-                  "error": (str(res) if isinstance(res, (WorkerLost, RequantError)) else
-                            f"{task['source_path']!r} failed in its worker with "
-                            f"{type(res).__name__} ({res}); the batch went on")}
-        else:
-            ev = dict(res)
-        if ev.get("status") == "skipped" and task.get("previous"):
-            prev = task["previous"]
-            for key in ("snr_db", "duration_s", "warnings", "warning_kinds", "metadata",
-                        "figures"):
-                if key in prev:
-                    ev.setdefault(key, prev[key])
-            ev["converted_at"] = prev.get("timestamp")
-        return ev
+            return {"source": task["source"], "output": task["output"], "seed": task["seed"],
+                    "status": "failed",
+                    "error": (str(res) if isinstance(res, (WorkerLost, RequantError)) else
+                              f"{task['source_path']!r} failed in its worker with "
+                              f"{type(res).__name__} ({res}); the batch went on")}
+        return dict(res)
+
+    def _result(self, item, res, draining=False):
+        """Record a task's result: written when it changes the manifest, else counted."""
+        ev = self.event_from(item, res)
+        status = ev.get("status")
+        if status not in ("converted", "failed", "skipped"):
+            if draining:
+                return
+            raise KeyboardInterrupt  # a worker was interrupted: the run stops
+        prev = item.get("prev")
+        write = True
+        if status == "skipped" and prev is not None:
+            unchanged = _unchanged(item, ev)
+            good = self._row(prev[4]) if not unchanged or prev[2] == CLASSES["warn"] else None
+            if unchanged:
+                write = False
+                if good is not None:  # its warnings, from an earlier run, for the summary
+                    ev = dict(good, status="skipped", reason="up to date")
+                else:
+                    ev["duration_s"] = prev[5]
+            elif good is not None:
+                for key in ("snr_db", "duration_s", "warnings", "warning_kinds", "notes"):
+                    if good.get(key):
+                        ev.setdefault(key, good[key])
+                ev["converted_at"] = good.get("converted_at") or good.get("timestamp")
+        elif status == "failed" and prev is not None:
+            last = self._row(prev[0])
+            write = last is None or any(last.get(k) != ev.get(k)
+                                        for k in ("status", "output", "error"))
+        ref = self._write(ev) if write else prev[:4]
+        self.task_refs.set(item["n"], ref)
+        self.done += 1
+        self._done(ev, write, item.get("size") or 0)
 
     def convert(self):
         """Record the planned outcomes, then every file's as it finishes; after Ctrl-C,
         record what the executor gives back while it drains."""
+        plan = self.plan_
         try:
-            for ev in self.parent_events:
-                self.record(ev)
-            for item, res in self.executor.imap_unordered(
-                    convert_task, task_payloads(self.tasks),
-                    tick=getattr(self.reporter, "tick", None)):
-                task = self.by_source[item["source"]]
-                ev = self.event_from(task, res)
-                if ev.get("status") == "interrupted":
-                    raise KeyboardInterrupt
-                self.record(ev, task["size"])
-                # the workers are busy now: load the index templates while they convert
-                self.index.prepare()
+            for m, ev, write, ref in plan.events:
+                self._event(m, ev, write, ref)
+            if len(plan.tasks):
+                for item, res in self.executor.imap_unordered(convert_task, plan.tasks,
+                                                              tick=self._tick):
+                    self._result(item, res)
         except KeyboardInterrupt:
             self.interrupted = True
             if threading.current_thread() is threading.main_thread():
                 # further Ctrl-C are ignored until the summary is written (restore_signals)
                 self._old_sigint = signal.signal(signal.SIGINT, signal.SIG_IGN)
-            for item, res in self.executor.drain():
-                task = self.by_source[item["source"]]
-                ev = self.event_from(task, res)
-                if ev.get("status") in ("converted", "failed", "skipped"):
-                    self.record(ev, task["size"])
+            if len(plan.tasks):
+                for item, res in self.executor.drain():
+                    self._result(item, res, draining=True)
+
+    def _tick(self):
+        """While waiting for the workers: write the manifest lines that wait, refresh the
+        progress."""
+        self.manifest.flush()
+        tick = getattr(self.reporter, "tick", None)
+        if tick is not None:
+            tick()
 
     def stop(self):
-        """Close the manifest and the executor this run started."""
-        self.manifest.close()
-        if self.own_executor and self.tasks:
+        """Close the executor this run started and the details file."""
+        if self.details is not None:
+            self.details.close()
+        if self.own_executor and self.plan_ is not None and len(self.plan_.tasks):
             self.executor.close()
 
     # ------------------------------------------------------------------ finish
 
+    def _resolve(self, kind, value):
+        """The row of a task's or a parent event's entry, or its name while it has none."""
+        from requant.library.spool import EVENT
+
+        if kind == EVENT:
+            ref = self.event_refs.get(value)
+            return ref if ref is not None else self.plan_.events.get(value)[0]["source"]
+        ref = self.task_refs.get(value)
+        return ref if ref is not None else self.plan_.tasks.payload(value)["source"]
+
     def finish(self, *, wall_s, profile_path):
-        """Write the summary and the index; give the summary to the reporter."""
+        """Write the run's row, the summary and the index; give the summary to the reporter."""
+        plan = self.plan_
         summary = summarize(RunRecord(
-            src=self.src, dst=self.dst, settings=self.settings, recorded=self.recorded,
-            tasks=self.tasks, excluded=self.info["excluded"], started=self.started,
-            wall_s=wall_s, run_seed=self.run_seed, seed_origin=self.seed_origin,
-            sid=self.sid, interrupted=self.interrupted,
-            executor=self.executor if self.tasks else None, notes=self.notes,
-            profile_path=profile_path, run_id=self.run_id))
+            src=self.src, dst=self.dst, settings=self.settings, tally=self.tally,
+            tasks=len(plan.tasks), done=self.done, excluded=plan.excluded, walked=plan.walked,
+            plan_s=self.plan_s,
+            started=self.started, wall_s=wall_s, run_seed=self.run_seed,
+            seed_origin=self.seed_origin, sid=self.sid, interrupted=self.interrupted,
+            executor=self.executor if len(plan.tasks) else None, notes=self.notes,
+            profile_path=profile_path, run_id=self.run_id,
+            details=self.details.name if self.details.written else None))
+        self.manifest.append({"status": RUN_STATUS, "run_id": self.run_id,
+                              "settings_id": self.sid, "run_seed": self.run_seed,
+                              "timestamp": now_iso(), "interrupted": self.interrupted,
+                              "counts": summary["counts"], "rows": summary["manifest_rows"],
+                              "wall_s": round(wall_s, 3), "details": summary["details"]})
+        self.manifest.close()
         try:
+            summary["library"] = write_index(self.dst, summary, plan.entries, self._resolve,
+                                             self._rows_fd)
             write_json_atomic(summary, os.path.join(self.dst, SUMMARY_NAME))
-            self.index.write(os.path.join(self.dst, INDEX_NAME), summary)
         except OSError as exc:
             raise OutputError(f"cannot write the summary in {self.dst!r} "
                               f"({exc.strerror or exc}); the manifest holds every file's "
                               "result; free some space and run again") from None
+        if len(plan.tasks) or plan.state_stale:
+            self._claim(keep=lambda n: not self.task_refs.done(n))
         self.reporter.finished(summary)
         return summary
 
@@ -289,3 +399,14 @@ class _Run:
         if self._old_sigint is not None:
             signal.signal(signal.SIGINT, self._old_sigint)
             self._old_sigint = None
+
+    def close(self):
+        """Close the manifest and delete the plan's spools (safe to call twice)."""
+        if self.manifest is not None:
+            self.manifest.close()
+        if self._rows_fd is not None:
+            os.close(self._rows_fd)
+            self._rows_fd = None
+        if self.plan_ is not None:
+            self.plan_.close()
+            self.plan_ = None

@@ -166,16 +166,18 @@ def settings_id(settings: BatchSettings, run_seed: int) -> str:
     Returns
     -------
     str
-        Hex SHA-256 of the canonical JSON of the recipe's identity
-        (:meth:`Recipe.identity`, with the run seed), the output format and
-        the requant version. Custom coefficients enter by value, so editing a
-        coefficient file changes the id.
+        The first 128 bits (32 hex digits) of the SHA-256 of the canonical
+        JSON of the recipe's identity (:meth:`Recipe.identity`, with the run
+        seed), the output format and the requant version. Custom coefficients
+        enter by value, so editing a coefficient file changes the id. (Ids
+        were the whole 64 digits before; a manifest row holding one still
+        matches by its first 32.)
     """
     d = settings.recipe.identity()
     d["seed"] = int(run_seed)
     d["format"] = settings.format
     d["requant_version"] = __version__
-    return hashlib.sha256(_canonical(d).encode("ascii")).hexdigest()
+    return hashlib.sha256(_canonical(d).encode("ascii")).hexdigest()[:32]
 
 
 def derive_seed(run_seed: int, relpath: str) -> int:

@@ -8,6 +8,7 @@ process or on a cluster.
 import datetime as _dt
 import os
 import socket
+import stat
 import threading
 import time
 
@@ -19,7 +20,7 @@ from requant.library.executors.base import WORKER, Terminated
 from requant.library.manifest import sha256_file
 from requant.recipe import Recipe
 
-__all__ = ["convert_task", "source_check", "task_settings", "task_payloads", "now_iso",
+__all__ = ["convert_task", "source_check", "task_settings", "now_iso",
            "worker_label"]
 
 
@@ -162,6 +163,49 @@ def _converted_with_identity(src, convert):
     return report, dict(before, sha256=digest)
 
 
+def _output_stat(path):
+    """[size, mtime_ns] of an output that is a regular file (not a link), else None."""
+    try:
+        st = os.lstat(path)
+    except OSError:
+        return None
+    return [st.st_size, st.st_mtime_ns] if stat.S_ISREG(st.st_mode) else None
+
+
+def _still_up_to_date(task):
+    """The skipped event when the output is still the recorded one, else None.
+
+    The output counts as unchanged when its size and time are the recorded ones
+    (``expect_output_stat``) and the plan did not ask to verify; otherwise its
+    SHA-256 is compared with ``expect_sha256``.
+    """
+    out = task["output_path"]
+    now = _output_stat(out)
+    if now is None:
+        return None
+    expect = task["expect_sha256"]
+    verify = bool((task.get("expect_source") or {}).get("check"))
+    if now == task.get("expect_output_stat") and not verify:
+        digest = expect
+    else:
+        digest = sha256_file(out)
+    if digest != expect:
+        return None
+    return {"status": "skipped", "reason": "up to date", "output_sha256": digest,
+            "source_identity": task.get("source_identity"), "output_stat": now}
+
+
+_RECIPE = {}  # the last settings dict seen and its recipe: a batch sends the same one
+
+
+def _recipe(settings):
+    cached = _RECIPE.get("for")
+    if cached is not settings:
+        _RECIPE["recipe"] = Recipe.from_dict(settings["recipe"])
+        _RECIPE["for"] = settings  # held, so its id cannot be reused meanwhile
+    return _RECIPE["recipe"]
+
+
 def _convert_one(task):
     src, out = task["source_path"], task["output_path"]
     expect = task.get("expect_sha256")
@@ -169,12 +213,12 @@ def _convert_one(task):
     changed = source_check(task) if expect else None
     if changed:
         expect, reason = None, changed
-    if expect and os.path.isfile(out) and not os.path.islink(out):
-        digest = sha256_file(out)
-        if digest == expect:
-            return {"status": "skipped", "reason": "up to date", "output_sha256": digest,
-                    "source_identity": task.get("source_identity")}
-        reason = "output changed since it was written"
+    if expect:
+        skipped = _still_up_to_date(task)
+        if skipped is not None:
+            return skipped
+        if os.path.lexists(out):
+            reason = "output changed since it was written"
     folder = os.path.dirname(out)
     try:
         if not os.path.isdir(folder):
@@ -186,7 +230,7 @@ def _convert_one(task):
         raise OutputError(f"{out!r} already exists and was not written by requant batch; "
                           "move it away or pass --overwrite to replace it")
     s = task["settings"]
-    recipe = Recipe.from_dict(s["recipe"]).with_seed(task["seed"])
+    recipe = _recipe(s).with_seed(task["seed"])
     out_fmt = format_for_path(out)
     report, identity = _converted_with_identity(src, lambda: convert_file(
         src, out, recipe, outputs=Outputs(overwrite=task["overwrite"], metadata=True),
@@ -205,11 +249,13 @@ def _convert_one(task):
     notes = list(report.notes)
     if task.get("note"):
         notes.append(task["note"])
+    written = pending_path(out)  # a CommitGroup may hold it; the rename keeps size and time
     return {
         "status": "converted",
         "reason": reason,
-        "output_sha256": sha256_file(pending_path(out)),  # a CommitGroup may hold it
+        "output_sha256": sha256_file(written),
         "source_identity": identity,
+        "output_stat": _output_stat(written),
         "snr_db": report.measured.snr_db,
         "duration_s": report.input.duration_s,
         "warnings": warnings,
@@ -229,8 +275,13 @@ def convert_task(task):
         Plain data: ``source``/``output`` (relative, POSIX), ``source_path``
         and ``output_path`` (absolute str), ``seed`` (int), ``settings``
         (dict), ``overwrite`` (bool), ``expect_sha256`` (str or None: skip
-        when the output still has this hash), ``reason`` and ``note``
-        (str or None).
+        when the output still has this hash), ``expect_source`` (the
+        recorded ``size``, ``mtime_ns`` and ``sha256`` of the source, and
+        ``check``: hash it even if size and time match), ``expect_output_stat``
+        ([size, mtime_ns] recorded for the output: when it still has them the
+        output is not hashed, unless ``check``), ``reason`` and ``note``
+        (str or None). Other keys (the batch's ``n`` and ``prev``) are
+        carried along untouched.
 
     Returns
     -------
@@ -238,9 +289,10 @@ def convert_task(task):
         An event: ``source``, ``output``, ``status`` (``converted``,
         ``skipped``, ``failed``, or ``interrupted`` when a worker was asked
         to stop), ``error`` (the one-line message), ``seed``, ``seconds``,
-        ``worker`` (host:pid) and, when converted, ``output_sha256``,
-        ``snr_db``, ``duration_s``, ``warnings``, ``warning_kinds``,
-        ``notes``, ``metadata`` and ``figures``.
+        ``worker`` (host:pid); when converted or skipped ``output_sha256``,
+        ``output_stat`` ([size, mtime_ns]) and ``source_identity``; when
+        converted also ``snr_db``, ``duration_s``, ``warnings``,
+        ``warning_kinds``, ``notes``, ``metadata`` and ``figures``.
 
     Notes
     -----
@@ -278,15 +330,3 @@ def convert_task(task):
     base["seconds"] = time.perf_counter() - t0
     base["worker"] = worker_label()
     return base
-
-
-TASK_KEYS = ("source", "output", "source_path", "output_path", "seed", "settings", "overwrite",
-              "expect_sha256", "expect_source", "reason", "note", "size")
-
-
-def task_payloads(tasks):
-    """Only the plain data a worker needs (no previous event)."""
-    for t in tasks:
-        yield {k: t[k] for k in TASK_KEYS}
-
-

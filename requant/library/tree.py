@@ -1,9 +1,10 @@
 """The source tree: which files a batch sees, and where each output goes.
 
-:func:`walk_tree` uses :func:`os.walk` with ``followlinks=False``: a symbolic link to a
-folder is listed and not entered (so link loops cannot hang the walk), a symbolic link
-to a file is read like a file. Hidden files are skipped and listed; hidden folders are
-not entered. Order is sorted, so nothing depends on the file system's order.
+:func:`iter_folders` walks with :func:`os.scandir`, a folder at a time, without following
+links: a symbolic link to a folder is listed and not entered (so link loops cannot hang
+the walk), a symbolic link to a file is read like a file. Hidden files are skipped and
+listed; hidden folders are not entered. Order is sorted, so nothing depends on the file
+system's order. :func:`walk_tree` is the whole tree as one sorted list.
 """
 
 import fnmatch
@@ -18,7 +19,8 @@ from requant.errors import InputError, UsageError
 #: their format and writes anything else as WAV).
 OUTPUT_CHOICES = ("same", "wav", "flac", "aiff")
 
-__all__ = ["OUTPUT_CHOICES", "AUDIO_EXTENSIONS", "output_name", "walk_tree", "check_folders"]
+__all__ = ["OUTPUT_CHOICES", "AUDIO_EXTENSIONS", "output_name", "walk_tree", "iter_folders",
+           "WalkCount", "check_folders"]
 
 
 #: Extensions (lower case) of files libsndfile reads; everything else is "not audio".
@@ -67,6 +69,93 @@ def _matches(rel, patterns):
     return False
 
 
+def _entry(full, rel, name):
+    """The entry of one file: audio, or other with the reason."""
+    try:
+        st = os.stat(full)
+        size, mtime, regular = st.st_size, st.st_mtime_ns, stat.S_ISREG(st.st_mode)
+    except OSError:
+        size, mtime, regular = 0, None, True  # the conversion names what is wrong
+    ext = posixpath.splitext(name)[1].lower()
+    if name.startswith("."):
+        return {"source": rel, "kind": "other", "size": size, "reason": "a hidden file"}
+    if not regular:  # reading a FIFO would wait forever
+        return {"source": rel, "kind": "other", "size": 0,
+                "reason": f"{non_regular_kind(full) or 'not a file'}, not a regular file"}
+    if ext in AUDIO_EXTENSIONS:
+        return {"source": rel, "kind": "audio", "size": size, "reason": None, "mtime_ns": mtime}
+    return {"source": rel, "kind": "other", "size": size,
+            "reason": f"not an audio file ({ext or 'no extension'})"}
+
+
+def _unreadable(rel, exc):
+    return {"source": rel + "/", "kind": "unreadable-folder", "size": 0,
+            "reason": f"the folder {rel!r} cannot be read ({exc.strerror or exc}); check its "
+                      "permissions"}
+
+
+class WalkCount:
+    """What a walk left out: ``excluded``, the files the patterns removed."""
+
+    def __init__(self):
+        self.excluded = 0
+
+
+def iter_folders(src, *, include=(), exclude=(), prune=(), count=None):
+    """Walk ``src`` one folder at a time: yield ``(folder, entries)``.
+
+    ``folder`` is the folder's path relative to ``src`` (``""`` for ``src``,
+    else ending in ``/``); ``entries`` are its files, and its links to folders,
+    as :func:`walk_tree` describes them, sorted by name. Folders come depth
+    first, each before its subfolders, subfolders in sorted order; a folder
+    that cannot be read comes as one entry of kind ``unreadable-folder``.
+    Only one folder's listing is held at a time (and the names of the
+    folders still to visit), so memory does not grow with the tree.
+
+    Parameters
+    ----------
+    src : str
+    include, exclude, prune : see :func:`walk_tree`
+    count : WalkCount, optional
+        Receives the number of files the patterns left out.
+    """
+    src = os.path.abspath(src)
+    prune = {os.path.normcase(os.path.abspath(p)) for p in prune}
+    count = count if count is not None else WalkCount()
+    stack = [("", src)]
+    while stack:
+        reldir, full = stack.pop()
+        try:
+            with os.scandir(full) as it:
+                listing = [(e.name, e.is_dir()) for e in it]
+        except OSError as exc:
+            rel = reldir.rstrip("/") or "."
+            yield reldir, [_unreadable(rel, exc)]
+            continue
+        entries, subdirs = [], []
+        for name, is_dir in sorted(listing):
+            path, rel = os.path.join(full, name), reldir + name
+            if is_dir:
+                if os.path.normcase(path) in prune:
+                    continue
+                if os.path.islink(path):
+                    if not (include and not _matches(rel, include)) and not _matches(rel,
+                                                                                     exclude):
+                        entries.append({"source": rel + "/", "kind": "other", "size": 0,
+                                        "reason": "a link to a folder; links to folders are "
+                                                  "not followed"})
+                elif not name.startswith("."):
+                    subdirs.append((rel + "/", path))
+                continue
+            if (include and not _matches(rel, include)) or _matches(rel, exclude):
+                count.excluded += 1
+                continue
+            entries.append(_entry(path, rel, name))
+        entries.sort(key=lambda e: e["source"])
+        yield reldir, entries
+        stack.extend(reversed(subdirs))
+
+
 def walk_tree(src, *, include=(), exclude=(), prune=()):
     """List the files under ``src``, sorted by relative path.
 
@@ -91,64 +180,17 @@ def walk_tree(src, *, include=(), exclude=(), prune=()):
         and for audio files ``mtime_ns`` (the modification time, ns).
     excluded : int
         Files left out by the patterns.
+
+    Notes
+    -----
+    This holds the whole tree; a batch walks it a folder at a time
+    (:func:`iter_folders`).
     """
-    src = os.path.abspath(src)
-    prune = {os.path.normcase(os.path.abspath(p)) for p in prune}
-    entries, excluded = [], 0
-
-    def onerror(exc):
-        rel = os.path.relpath(getattr(exc, "filename", None) or src, src)
-        rel = "." if rel == "." else rel.replace(os.sep, "/")
-        entries.append({"source": rel + "/", "kind": "unreadable-folder", "size": 0,
-                        "reason": f"the folder {rel!r} cannot be read "
-                                  f"({exc.strerror or exc}); check its permissions"})
-
-    for root, dirs, files in os.walk(src, followlinks=False, onerror=onerror):
-        reldir = os.path.relpath(root, src)
-        reldir = "" if reldir == "." else reldir.replace(os.sep, "/") + "/"
-        keep = []
-        for d in sorted(dirs):
-            full = os.path.join(root, d)
-            if os.path.normcase(full) in prune:
-                continue
-            if os.path.islink(full):
-                rel = reldir + d
-                if not (include and not _matches(rel, include)) and not _matches(rel, exclude):
-                    entries.append({"source": rel + "/", "kind": "other", "size": 0,
-                                    "reason": "a link to a folder; links to folders are not "
-                                              "followed"})
-                continue
-            if d.startswith("."):
-                continue
-            keep.append(d)
-        dirs[:] = keep
-        for name in sorted(files):
-            rel = reldir + name
-            if (include and not _matches(rel, include)) or _matches(rel, exclude):
-                excluded += 1
-                continue
-            full = os.path.join(root, name)
-            try:
-                st = os.stat(full)
-                size, mtime, regular = st.st_size, st.st_mtime_ns, stat.S_ISREG(st.st_mode)
-            except OSError:
-                size, mtime, regular = 0, None, True  # the conversion names what is wrong
-            ext = posixpath.splitext(name)[1].lower()
-            if name.startswith("."):
-                entries.append({"source": rel, "kind": "other", "size": size,
-                                "reason": "a hidden file"})
-            elif not regular:  # reading a FIFO would wait forever
-                entries.append({"source": rel, "kind": "other", "size": 0,
-                                "reason": f"{non_regular_kind(full) or 'not a file'}, not a "
-                                          "regular file"})
-            elif ext in AUDIO_EXTENSIONS:
-                entries.append({"source": rel, "kind": "audio", "size": size, "reason": None,
-                                "mtime_ns": mtime})
-            else:
-                entries.append({"source": rel, "kind": "other", "size": size,
-                                "reason": f"not an audio file ({ext or 'no extension'})"})
+    count = WalkCount()
+    entries = [e for _, folder in iter_folders(src, include=include, exclude=exclude,
+                                               prune=prune, count=count) for e in folder]
     entries.sort(key=lambda e: e["source"])
-    return entries, excluded
+    return entries, count.excluded
 
 
 def check_folders(src, dst):

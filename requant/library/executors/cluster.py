@@ -52,6 +52,7 @@ is cheap and works without the ``cluster`` extra (the error then says what
 to install).
 """
 
+import itertools
 import os
 import queue
 import re
@@ -231,7 +232,7 @@ class _SchedulerLost(Exception):
 
 def _roots(items):
     """SRC and DST (absolute) from the batch's tasks, or (None, None) for other items."""
-    for it in items[:1]:
+    for it in itertools.islice(items, 1):
         try:
             src = _strip_rel(it["source_path"], it["source"])
             dst = _strip_rel(it["output_path"], it["output"])
@@ -539,8 +540,9 @@ class DaskExecutor:
         out (the summary counts them as not started).
         """
         self.start()
-        items = list(items)
-        if not items:
+        if not hasattr(items, "__len__"):
+            items = list(items)
+        if not len(items):
             return
         ctx = self._context(items)
         try:

@@ -85,7 +85,7 @@ class SerialExecutor:
         """Yield (item, fn(item)) in order, in chunks whose outputs reach the disk together
         (as a worker's chunk does, see :func:`run_chunk`)."""
         for chunk in chunk_items(items, per=self.max_chunk, chunk_bytes=self.chunk_bytes):
-            yield from zip(chunk, run_chunk(fn, chunk))
+            yield from zip(chunk, run_chunk(fn, chunk, whole_fs=True))
 
     def drain(self):
         """Nothing runs after an interrupt here."""
@@ -226,8 +226,10 @@ class ProcessExecutor:
         self.start()
 
     def _chunks(self, items):
-        """Group items into chunks: small files travel together, big ones alone."""
-        items = list(items)
+        """Group items into chunks: small files travel together, big ones alone (``items``
+        is read as it is chunked when it has a length, see :func:`chunk_items`)."""
+        if not hasattr(items, "__len__"):
+            items = list(items)
         per = max(1, min(self.max_chunk, len(items) // (self.workers * 8)))
         return chunk_items(items, per=per, chunk_bytes=self.chunk_bytes,
                            taper=self.workers * 4)
@@ -244,7 +246,7 @@ class ProcessExecutor:
         # take the pairs out of the stored result first, so a chunk processed again (after
         # an interrupt during its commit) is not committed twice
         pairs, pending[:] = list(pending), []
-        return list(zip(chunk, commit_chunk(chunk, results, pairs)))
+        return list(zip(chunk, commit_chunk(chunk, results, pairs, whole_fs=True)))
 
     def _finished(self, fut):
         """A finished future's pairs, its outputs committed, with Ctrl-C held back meanwhile
