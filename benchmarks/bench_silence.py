@@ -1,7 +1,7 @@
 """Benchmark: what keeping digital silence silent costs.
 
 ``--silence keep`` (the default) looks ahead for runs of exact zeros and holds
-the last ``silence_min - 1`` frames of each block back; ``--silence dither``
+a trailing run of zeros shorter than ``silence_min`` until the next block; ``--silence dither``
 does not. On material without silence the two must run at the same speed.
 Each row alternates the two (A B A B ...) within this run and prints the
 medians and their ratio, so machine noise hits both alike:

@@ -39,12 +39,13 @@ one channel is written as exact zeros, with no dither and no error, and the
 shaping filter's history and the high-pass dither's memory are cleared in it,
 so that the first sample after it starts from a clean state. Whether a zero
 starts such a run is decided at its first sample by looking ahead: the
-``m`` frames after the ``n`` to be processed (the caller keeps ``sil_len - 1``
-of them back) hold the rest of the run. The decision for a run in progress is
-carried between calls in ``zs`` (0 no run, 1 silent run, 2 a run too short),
-so blocks of any size give the same bits: a sample is kept silent exactly when
-it lies in a run of at least ``sil_len`` zeros (the file's ends bound a run).
-The generator still advances one word per sample inside a silent run.
+``m`` frames after the ``n`` to be processed (a trailing run of zeros still
+shorter than ``sil_len``, which the caller holds back) hold the rest of the
+run. The decision for a run in progress is carried between calls in ``zs``
+(0 no run, 1 silent run, 2 a run too short), so blocks of any size give the
+same bits: a sample is kept silent exactly when it lies in a run of at least
+``sil_len`` zeros (the file's ends bound a run). The generator still advances
+one word per sample inside a silent run.
 (:meth:`requant.dsp.quantizer.Requantizer.silent_mask` says which samples were
 kept silent, from the same rule.)
 
@@ -172,9 +173,10 @@ def build(jit=None, taps=None):
         err : float32 [n*nch] when ``want_err``; written, output minus input
         acc : float64 [nch*11], columns as :data:`ACC_FIELDS`; updated
         sil_len : int, frames; runs of this many exact zeros or more stay
-            silent; 0 dithers everything. A caller keeping silence may pass 0
-            for a block whose ``n`` frames hold no zero at all (most audio): the
-            loop then need not look for silence, and the result is the same.
+            silent; 0 dithers everything. Keeping silence costs little on
+            audio without zeros: the plain loop runs until the first frame that
+            holds one (a test on values already loaded), and the loop that
+            keeps silence takes over from there.
         zs : int64 [nch], the silence decision of the run in progress; updated
     """
     wrap = (lambda f: f) if jit is None else jit
@@ -321,29 +323,36 @@ def build(jit=None, taps=None):
 
     store = wrap(store)
 
-    def pair(x, n, nch, c, s0, s1, mode, offset, h, taps, fbs, fo0, fo1, scale, fkmin, fkmax,
-             e_bound, acc, ao0, ao1, shift, codes, err, inv_scale, want_err):
-        # two channels at once: their feedback chains overlap
-        for i in range(n):
+    def pair(x, i0, n, nch, c, s0, s1, mode, offset, h, taps, fbs, fo0, fo1, scale, fkmin,
+             fkmax, e_bound, acc, ao0, ao1, shift, codes, err, inv_scale, want_err, watch):
+        # frames i0..n-1 of two channels at once: their feedback chains overlap. With
+        # watch, it stops before the first frame where one of them is zero (or their
+        # product underflows to zero: then the loop that keeps silence decides) and
+        # returns its index; else n
+        for i in range(i0, n):
             j = i * nch + c
-            q0, e0, s0 = sample(np.float64(x[j]), s0, mode, offset, h, taps, fbs, fo0, scale,
-                                fkmin, fkmax, e_bound, acc, ao0)
-            q1, e1, s1 = sample(np.float64(x[j + 1]), s1, mode, offset, h, taps, fbs, fo1,
-                                scale, fkmin, fkmax, e_bound, acc, ao1)
+            xs0 = np.float64(x[j])
+            xs1 = np.float64(x[j + 1])
+            if watch and xs0 * xs1 == 0.0:
+                return s0, s1, i
+            q0, e0, s0 = sample(xs0, s0, mode, offset, h, taps, fbs, fo0, scale, fkmin, fkmax,
+                                e_bound, acc, ao0)
+            q1, e1, s1 = sample(xs1, s1, mode, offset, h, taps, fbs, fo1, scale, fkmin, fkmax,
+                                e_bound, acc, ao1)
             codes[j] = int(q0) << shift
             codes[j + 1] = int(q1) << shift
             if want_err:
                 err[j] = e0 * inv_scale
                 err[j + 1] = e1 * inv_scale
-        return s0, s1
+        return s0, s1, n
 
     pair = wrap(pair)
 
-    def pair_keeping(x, n, m, nch, c, s0, s1, z0, z1, mode, offset, h, taps, fbs, fo0, fo1,
-                     scale, fkmin, fkmax, e_bound, acc, ao0, ao1, shift, codes, err, inv_scale,
-                     want_err, sil_len):
-        # as pair, keeping runs of digital silence silent
-        for i in range(n):
+    def pair_keeping(x, i0, n, m, nch, c, s0, s1, z0, z1, mode, offset, h, taps, fbs, fo0,
+                     fo1, scale, fkmin, fkmax, e_bound, acc, ao0, ao1, shift, codes, err,
+                     inv_scale, want_err, sil_len):
+        # as pair, keeping runs of digital silence silent, from frame i0 on
+        for i in range(i0, n):
             j = i * nch + c
             xs0 = np.float64(x[j])
             xs1 = np.float64(x[j + 1])
@@ -405,20 +414,22 @@ def build(jit=None, taps=None):
                 s1 = load(c + 1, rng, hp_prev, fbs, taps, acc)
                 fo1 = fo0 + 2 * taps + 1
                 ao1 = ao0 + _NACC
-                if keeping:
-                    s0, s1, z0, z1 = pair_keeping(x, n, m, nch, c, s0, s1, zs[c], zs[c + 1],
+                i = 0
+                if not keeping or (zs[c] == 0 and zs[c + 1] == 0):
+                    # no run in progress: the plain loop, up to the first zero if keeping
+                    s0, s1, i = pair(x, 0, n, nch, c, s0, s1, mode, offset, h, taps, fbs, fo0,
+                                     fo1, scale, fkmin, fkmax, e_bound, acc, ao0, ao1, shift,
+                                     codes, err, inv_scale, want_err, keeping)
+                    if n > 0:  # the samples so far were non-zero: no run in progress
+                        zs[c] = 0
+                        zs[c + 1] = 0
+                if i < n:  # keeping silence, from the first zero (or a run carried over)
+                    s0, s1, z0, z1 = pair_keeping(x, i, n, m, nch, c, s0, s1, zs[c], zs[c + 1],
                                                   mode, offset, h, taps, fbs, fo0, fo1, scale,
                                                   fkmin, fkmax, e_bound, acc, ao0, ao1, shift,
                                                   codes, err, inv_scale, want_err, sil_len)
                     zs[c] = z0
                     zs[c + 1] = z1
-                else:
-                    s0, s1 = pair(x, n, nch, c, s0, s1, mode, offset, h, taps, fbs, fo0, fo1,
-                                  scale, fkmin, fkmax, e_bound, acc, ao0, ao1, shift, codes, err,
-                                  inv_scale, want_err)
-                    if n > 0:  # every sample was non-zero: no run in progress
-                        zs[c] = 0
-                        zs[c + 1] = 0
                 store(s1, c + 1, rng, hp_prev, fbs, taps, acc)
                 step = 2
             else:

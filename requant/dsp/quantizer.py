@@ -30,6 +30,9 @@ from requant.dsp import native
 from requant.errors import UsageError
 from requant.recipe import DITHERS, QUANTIZERS, Recipe, check_dither_in_loop
 
+#: Column of the kernel's accumulator that counts samples kept silent.
+_SILENT = _kernel.ACC_FIELDS.index("silent")
+
 __all__ = [
     "QUANTIZERS",
     "DITHERS",
@@ -214,6 +217,7 @@ class Requantizer:
         #: Most frames a call holds back (a run of zeros one frame short of silence).
         self.hold = max(0, self.silence_frames - 1)
         self._zs = np.zeros(self.channels, dtype=np.int64)
+        self._kept_silent = False  # whether the last call kept any sample silent
         self._pending = None  # the frames held back, waiting for the next call
         self._held = 0
         self._last_input = None  # (input, frames of it turned into output) of the last call
@@ -307,7 +311,9 @@ class Requantizer:
         look-ahead and wait for the next call."""
         codes, err = self._buffers(ready, codes, error, err_out)
         self._zs_before = self._zs.copy()
+        silent = self.acc[:, _SILENT].sum()
         self._call(self._kernel(x.dtype, kernel), x, ready, hold, codes, err, error)
+        self._kept_silent = self.acc[:, _SILENT].sum() != silent
         self._last_input = (x, ready)
         self._pending = x[ready:].copy() if hold else None
         self._held = hold
@@ -360,7 +366,7 @@ class Requantizer:
         mask = np.zeros(x.shape, dtype=bool) if out is None else out[:n]
         mask[:] = False
         length = self.silence_frames
-        if length == 0 or n == 0 or not (x == 0).any():
+        if length == 0 or n == 0 or not self._kept_silent:  # the kernel counts them
             return mask
         zero = (np.concatenate([x, self._pending]) if self._held else x) == 0
         edge = np.zeros((1, self.channels), dtype=bool)
@@ -401,14 +407,11 @@ class Requantizer:
         c = codes[:n]
         e = err[:n] if error else err
         flat = x.reshape(-1)
-        # most audio holds no exact zero: the kernel need not look for silence then (a
-        # numpy test costs 0.1 ns a sample, the kernel's own look 0.5)
-        sil = self.silence_frames if self.silence_frames and (
-            flat[:n * self.channels] == 0).any() else 0
         run(flat, n, m, self.channels, self.rng.reshape(-1), self._mode,
             self._round_offset, self._h, self.coeffs.size, self.fbs.reshape(-1), self.hp_prev,
             self.scale, 1.0 / self.scale, self.kmin, self.kmax, E_BOUND_LSB, self.shift,
-            c.reshape(-1), e.reshape(-1), int(error), self.acc.reshape(-1), sil, self._zs)
+            c.reshape(-1), e.reshape(-1), int(error), self.acc.reshape(-1),
+            self.silence_frames, self._zs)
 
     def run_all(self, x, *, kernel=None):
         """The codes of a whole signal in one call: :meth:`process`, then :meth:`flush`."""
