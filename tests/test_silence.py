@@ -492,3 +492,23 @@ def test_cli_inspect_takes_silence_min(tmp_path):
     assert "ch 1: 0.188 s (0.073 s)" in out
     code, _, err = run_cli("inspect", src, "--silence-min", "-1")
     assert code == 2 and "Invalid value for '--silence-min'" in err
+
+
+@pytest.mark.slow
+def test_batch_keeps_silence_and_a_changed_setting_reconverts(tmp_path):
+    from helpers import run_cli
+
+    src = tmp_path / "src"
+    src.mkdir()
+    _write(src / "a.wav", material())
+    dst = tmp_path / "dst"
+    code, _, err = run_cli("batch", src, dst, "--seed", "3", "-q")
+    assert code == 0, err
+    y, _ = sf.read(dst / "a.wav", dtype="int16")
+    assert not y[:2000].any() and not y[-3000:].any() and y[2000:2100].any()
+    # the setting is part of the settings id: dithering silence now converts the file again
+    code, out, err = run_cli("batch", src, dst, "--seed", "3", "--silence", "dither")
+    assert code == 0, err
+    assert "converted 1" in out
+    y, _ = sf.read(dst / "a.wav", dtype="int16")
+    assert y[:2000].any() and y[-3000:].any()
