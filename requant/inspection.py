@@ -191,9 +191,8 @@ class _Accumulator:
         n = x.shape[0]
         if n == 0:
             return x
-        x = np.ascontiguousarray(x)
+        x, scale = native.kernel_input(x)
         kernel = native.kernel("scan", x=x.dtype)
-        scale = 2.0**-31 if x.dtype == np.int32 else 1.0
         before = self._nonfinite()
         zeros_before = float(self.lanes[self.lane_index["silent"]].sum())
         done = -(-n // self.block_len)

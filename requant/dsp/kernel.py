@@ -61,6 +61,8 @@ tap count so that the compiler unrolls the sum.
 
 import numpy as np
 
+from requant.dsp.native import plain_twin
+
 __all__ = [
     "DITHER_NONE",
     "DITHER_RPDF",
@@ -445,17 +447,7 @@ def build(jit=None, taps=None):
     return quantize_block
 
 
-_plain = None
-
-
-def quantize_block_plain(*args):
-    """The plain-Python twin of the compiled kernel, for tests (small inputs).
-
-    uint64 arithmetic wraps by design (SFC64); numpy scalars warn about it,
-    compiled code does not, so the warnings are silenced here.
-    """
-    global _plain
-    if _plain is None:
-        _plain = build()
-    with np.errstate(over="ignore", invalid="ignore"):  # inf - inf is how NaN/inf are found
-        return _plain(*args)
+#: The plain-Python twin of the compiled kernel, for tests (small inputs). uint64 arithmetic
+#: wraps by design (SFC64) and inf - inf is how NaN/inf are found: numpy scalars warn about
+#: both, compiled code does not, so the twin is quiet.
+quantize_block_plain = plain_twin(build, quiet=True)

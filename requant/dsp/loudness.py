@@ -26,6 +26,8 @@ import math
 
 import numpy as np
 
+from requant.dsp import native
+
 __all__ = ["BLOCK_SECONDS", "STEP_SECONDS", "ABSOLUTE_GATE_LUFS", "RELATIVE_GATE_LU",
            "SHORT_TERM_SECONDS", "RANGE_RELATIVE_GATE_LU", "RANGE_PERCENTILES", "GATE_BIN_LU",
            "K_WEIGHTING_48K", "SIGNATURE", "k_weighting_sos", "step_sums", "block_mean_squares",
@@ -576,10 +578,7 @@ class LoudnessMeter:
         n = x.shape[0]
         if n == 0:
             return
-        x = np.ascontiguousarray(x)
-        if x.dtype not in (np.float32, np.float64, np.int32):
-            x = np.ascontiguousarray(x, dtype=np.float64)
-        scale = 2.0**-31 if x.dtype == np.int32 else 1.0
+        x, scale = native.kernel_input(x)
         if self.signals == 2:
             e = np.ascontiguousarray(e, dtype=np.float32)
         else:
@@ -630,8 +629,6 @@ _BATCH_STEPS = 256
 @functools.cache
 def _kernel(x_dtype, signals):
     """The compiled K-weighting kernel for a block dtype and signal count."""
-    from requant.dsp import native
-
     return native.kernel("loudness", x=x_dtype, signals=signals)
 
 

@@ -75,6 +75,8 @@ __all__ = [
     "NativeFallbackWarning",
     "cache_dir",
     "kernel",
+    "kernel_input",
+    "plain_twin",
     "kernel_name",
     "pointer_code",
     "signature",
@@ -583,3 +585,52 @@ def kernel(family, **choices):
                 _warn_fallback(spec, exc)
         _loaded[spec.name] = fn
         return fn
+
+
+def kernel_input(x):
+    """A block as the meters' kernels take it, and its scale to full scale.
+
+    Parameters
+    ----------
+    x : ndarray, (frames, channels)
+
+    Returns
+    -------
+    x : ndarray
+        C-contiguous float32, float64 or int32 (any other type as float64).
+    scale : float
+        2^-31 for int32 (libsndfile's left-justified codes), else 1.0.
+    """
+    x = np.ascontiguousarray(x)
+    if x.dtype not in (np.float32, np.float64, np.int32):
+        x = np.ascontiguousarray(x, dtype=np.float64)
+    return x, (2.0**-31 if x.dtype == np.int32 else 1.0)
+
+
+def plain_twin(build, *, quiet=False):
+    """The plain-Python twin of a kernel family, for tests (small inputs).
+
+    Parameters
+    ----------
+    build : callable
+        The family's builder; ``build()`` (no ``jit``) gives the plain kernel.
+    quiet : bool, default False
+        Silence numpy's overflow and invalid-value warnings, which compiled
+        code does not give (wrapping uint64 arithmetic; ``inf - inf``).
+
+    Returns
+    -------
+    callable
+        Takes the kernel's arguments; builds the plain kernel on first use.
+    """
+    built = []
+
+    def twin(*args):
+        if not built:
+            built.append(build())
+        if not quiet:
+            return built[0](*args)
+        with np.errstate(over="ignore", invalid="ignore"):
+            return built[0](*args)
+
+    return twin

@@ -23,6 +23,8 @@ validation, no allocation.
 
 import numpy as np
 
+from requant.dsp.native import plain_twin
+
 __all__ = ["WSUM_FIELDS", "ACC_FIELDS", "SIGNATURE", "build", "residual_block_plain"]
 
 #: Per window and channel (``wsum[(w*nch + c)*6 + field]``), LSB units: the samples
@@ -148,12 +150,5 @@ def build(jit=None):
     return residual_block
 
 
-_plain = None
-
-
-def residual_block_plain(*args):
-    """The plain-Python twin of the compiled kernel, for tests (small inputs)."""
-    global _plain
-    if _plain is None:
-        _plain = build()
-    return _plain(*args)
+#: The plain-Python twin of the compiled kernel, for tests (small inputs).
+residual_block_plain = plain_twin(build)

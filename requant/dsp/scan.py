@@ -37,6 +37,8 @@ plain-Python twin on arrays (the tests compare the two).
 
 import numpy as np
 
+from requant.dsp.native import plain_twin
+
 __all__ = ["LANE_FIELDS", "CHANNEL_FIELDS", "SIGNATURE", "build", "lane_count", "merge_lanes",
            "scan_block_plain"]
 
@@ -347,12 +349,5 @@ def build(jit=None):
     return scan
 
 
-_plain = None
-
-
-def scan_block_plain(*args):
-    """The plain-Python twin of the compiled kernel, for tests (small inputs)."""
-    global _plain
-    if _plain is None:
-        _plain = build()
-    return _plain(*args)
+#: The plain-Python twin of the compiled kernel, for tests (small inputs).
+scan_block_plain = plain_twin(build)

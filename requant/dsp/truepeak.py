@@ -61,6 +61,7 @@ import functools
 
 import numpy as np
 
+from requant.dsp import native
 from requant.dsp.peakkernel import DUAL_SIGNATURE, build_dual, build_peak, fold_phases
 from requant.errors import InputError, UsageError
 
@@ -409,16 +410,12 @@ _PHASES32 = fold_phases(PHASES)
 def _dual_kernel(x_dtype, e_dtype):
     """The compiled dual kernel for these storage dtypes, arguments as declared in
     :data:`DUAL_SIGNATURE` and checked on every call (see :mod:`requant.dsp.native`)."""
-    from requant.dsp import native
-
     return native.kernel("truepeak-dual", xs=x_dtype, es=e_dtype)
 
 
 @functools.cache
 def _single_kernel(x_dtype):
     """The compiled single kernel for a block dtype (float32, float64 or int32)."""
-    from requant.dsp import native
-
     return native.kernel("truepeak", xs=x_dtype)
 
 
@@ -475,10 +472,7 @@ class SkippingTruePeakMeter:
         n = x.shape[0]
         if n == 0:
             return
-        x = np.ascontiguousarray(x)
-        if x.dtype not in (np.float32, np.float64, np.int32):
-            x = np.ascontiguousarray(x, dtype=np.float64)
-        scale = 2.0**-31 if x.dtype == np.int32 else 1.0
+        x, scale = native.kernel_input(x)
         if self._scale is None:
             self._scale = scale
         elif scale != self._scale:
