@@ -90,10 +90,11 @@ SEED_MAX = 2**63 - 1
 #: ``dither`` treats them like any other quiet passage.
 SILENCE_MODES = ("keep", "dither")
 #: Shortest run of exact zeros (ms) that counts as digital silence, by default. 20 ms is far
-#: longer than the zero runs inside music (a 20 Hz tone at one 24-bit LSB is within half an
-#: LSB of zero for under 4 ms of each crossing; a zero crossing of anything louder is one or
-#: two samples), and shorter than any gap a listener hears as silence rather than as a click
-#: (gaps of a few ms are detected as gaps, common practice) or than the tail of a one-shot.
+#: longer than the zero runs inside music (a 20 Hz tone of one 24-bit LSB amplitude is within
+#: half an LSB of zero, so coded 0, for 8.3 ms, a sixth of its 50 ms period, at each
+#: crossing; a zero crossing of anything louder is one or two samples), and shorter than any
+#: gap a listener hears as silence rather than as a click (gaps of a few ms are detected as
+#: gaps, common practice) or than the tail of a one-shot.
 DEFAULT_SILENCE_MIN_MS = 20.0
 #: Longest allowed minimum silent run, ms (the requantizer holds back that much audio).
 MAX_SILENCE_MIN_MS = 10_000.0
