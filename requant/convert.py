@@ -237,11 +237,13 @@ def _open_source(f, path):
                    declared_frames=max(f.frames, declared or 0))
 
 
-def _requantizer(f, source, recipe, targets, block_frames):
+def _requantizer(f, source, recipe, targets, block_frames, *, prepared=False):
     """The requantizer for this file, its coefficients, and whether the input is on the grid.
 
     Input already on the target grid (and in range) is written unchanged: no
-    dither, no shaping, unless the recipe forces dither.
+    dither, no shaping, unless the recipe forces dither. ``source`` is the
+    prepared input's facts (rate, channels); input changed before the
+    quantizer (``prepared``) is never passed through.
     """
     if recipe.shaping.kind == "none":
         coeffs = np.zeros(0)
@@ -250,7 +252,7 @@ def _requantizer(f, source, recipe, targets, block_frames):
 
         coeffs = coefficients_for(recipe.shaping, source.rate)
     scale = float(2 ** (recipe.bits - 1))
-    passthrough = (not recipe.force_dither) and source.frames > 0 and on_grid(
+    passthrough = (not recipe.force_dither) and not prepared and source.frames > 0 and on_grid(
         f, dtype=source.dtype, scale=scale, kmin=-(2 ** (recipe.bits - 1)),
         kmax=2 ** (recipe.bits - 1) - 1, block_frames=min(block_frames, 65536),
         subtype=source.subtype)
@@ -317,12 +319,16 @@ def _analyzer(rq, source, applied_dither, coeffs, block_frames):
     return analyzer, consumer
 
 
-def _stream(f, rq, files, *, source, targets, analysis, block_frames, progress):
+def _stream(f, rq, files, *, source, targets, analysis, block_frames, progress, prep=None,
+            read_dtype=None):
     """Run every block through the requantizer and the writers; return the frames done.
 
     ``analysis`` is ``(analyzer, consumer)`` or None. One-block files are done
     inline (threads would cost more than they save); longer ones overlap
-    reading, requantizing and writing on three threads.
+    reading, requantizing and writing on three threads. ``source`` holds the
+    facts of what the requantizer sees; with ``prep``
+    (:class:`requant.dsp.prepare.Preparer`) the blocks read (``read_dtype``)
+    are prepared first, in pieces of at most ``block_frames``.
     """
     import soundfile as sf
 
@@ -339,9 +345,10 @@ def _stream(f, rq, files, *, source, targets, analysis, block_frames, progress):
     else:
         layouts = layouts[:len(files)]
     want_err = len(files) > 1 or analysis is not None
+    read_dtype = read_dtype or source.dtype
     if source.frames <= block_frames:
         writer = SyncWriter(files, layouts, consumer=consumer)
-        blocks = read_blocks(f, block_frames, source.dtype)
+        blocks = read_blocks(f, block_frames, read_dtype)
     else:
         # the analysis thread runs in bursts (true peak); deeper queues keep the
         # kernel from waiting on it: report vs none 1.49x -> 1.45x (median of 7)
@@ -350,9 +357,16 @@ def _stream(f, rq, files, *, source, targets, analysis, block_frames, progress):
     done = 0
     try:
         f.seek(0)
-        for _start, x in blocks or BlockReader(f, block_frames, source.dtype):
+        for _start, x in blocks or BlockReader(f, block_frames, read_dtype):
+            for y in _prepared(prep, x, block_frames):
+                bufs = writer.buffers()
+                codes, _ = rq.process(y, codes=bufs[0], error=want_err,
+                                      err_out=bufs[1] if want_err else None)
+                done = _hand_over(rq, writer, bufs, codes.shape[0], done, source, targets,
+                                  analysis, progress)
+        for y in _prepared(prep, None, block_frames):  # what the resampler held back
             bufs = writer.buffers()
-            codes, _ = rq.process(x, codes=bufs[0], error=want_err,
+            codes, _ = rq.process(y, codes=bufs[0], error=want_err,
                                   err_out=bufs[1] if want_err else None)
             done = _hand_over(rq, writer, bufs, codes.shape[0], done, source, targets, analysis,
                               progress)
@@ -370,6 +384,17 @@ def _stream(f, rq, files, *, source, targets, analysis, block_frames, progress):
     finally:
         _close_quietly(writer, files, targets)
     return done
+
+
+def _prepared(prep, x, block_frames):
+    """The blocks the requantizer gets for block ``x`` (None: the end of the file)."""
+    if prep is None:
+        if x is not None:
+            yield x
+        return
+    y = prep.process(x) if x is not None else prep.finish()
+    for start in range(0, y.shape[0], block_frames):
+        yield y[start:start + block_frames]
 
 
 def _hand_over(rq, writer, bufs, n, done, source, targets, analysis, progress):
@@ -494,26 +519,57 @@ def convert_file(src, dst, recipe: Recipe | None = None, *, outputs: Outputs | N
         analyze = bool(targets.reports)
     with open_input(targets.src) as f:
         source = _open_source(f, targets.src)
-        rq, coeffs, passthrough = _requantizer(f, source, recipe, targets, block_frames)
-        out_fmt, e_fmt = _containers(source, targets, rq)
+        prep, prepared, work = _preparation(f, source, recipe, block_frames)
+        rq, coeffs, passthrough = _requantizer(f, work, recipe, targets, block_frames,
+                                               prepared=prep is not None)
+        out_fmt, e_fmt = _containers(work, targets, rq)
         tags, finalize = (_metadata_carrier(targets.src, targets.dst, recipe, targets.fmt)
                           if outputs.metadata else (None, None))
         outs = AtomicOutputs()
         try:
-            tmp_out, files = _open_files(outs, source, targets, out_fmt, e_fmt, tags)
-            analysis = (_analyzer(rq, source, rq.dither, rq.coeffs, block_frames)
+            tmp_out, files = _open_files(outs, work, targets, out_fmt, e_fmt, tags)
+            analysis = (_analyzer(rq, work, rq.dither, rq.coeffs, block_frames)
                         if analyze else None)
-            done = _stream(f, rq, files, source=source, targets=targets, analysis=analysis,
-                           block_frames=block_frames, progress=progress)
+            done = _stream(f, rq, files, source=work, targets=targets, analysis=analysis,
+                           block_frames=block_frames, progress=progress, prep=prep,
+                           read_dtype=source.dtype)
             conv = Conversion(recipe=recipe, coeffs=coeffs, source=source, targets=targets,
                               frames=done, out_format=out_fmt, error_format=e_fmt,
                               passthrough=passthrough, block_frames=block_frames,
-                              error_gain=_gain_record(targets, files))
+                              error_gain=_gain_record(targets, files), prepared=prepared,
+                              frames_in=None if prep is None else f.frames)
             report = _finish(rq, conv, analysis, outs, tmp_out=tmp_out, finalize=finalize)
         except BaseException:
             outs.discard()
             raise
     return report
+
+
+def _preparation(f, source, recipe, block_frames):
+    """The stages before the quantizer for this file: ``(preparer, facts, work)``.
+
+    ``work`` is what the requantizer sees (the delivered rate and channels,
+    float64); without a stage that applies, ``(None, None, source)``. With a
+    true-peak ceiling the file is read once first to measure it
+    (:func:`requant.dsp.prepare.measure_true_peak`).
+    """
+    from requant.dsp.prepare import Preparer, ceiling_gain_db, measure_true_peak
+
+    prep = Preparer.for_file(recipe, source.channels, source.rate)
+    if prep is None:
+        return None, None, source
+    tp = None
+    if recipe.peak_ceiling_dbtp is not None:
+        f.seek(0)
+        tp = measure_true_peak((x for _start, x in BlockReader(f, block_frames, source.dtype)),
+                               recipe, source.channels, source.rate)
+        gain = ceiling_gain_db(recipe.gain_db, tp, recipe.peak_ceiling_dbtp)
+        prep = Preparer(recipe, source.channels, source.rate, gain_db=gain)
+    work = _Source(rate=prep.rate_out, channels=prep.channels_out,
+                   frames=prep.frames_out(source.frames), subtype=source.subtype,
+                   format=source.format, dtype="float64",
+                   declared_frames=prep.frames_out(source.declared_frames))
+    return prep, prep.facts(recipe, true_peak_before_dbtp=tp), work
 
 
 def _gain_record(targets, files):

@@ -51,6 +51,12 @@ __all__ = [
     "SILENCE_MODES",
     "DEFAULT_SILENCE_MIN_MS",
     "MAX_SILENCE_MIN_MS",
+    "MAX_GAIN_DB",
+    "MIN_CEILING_DBTP",
+    "MAX_CEILING_DBTP",
+    "DOWNMIX_LAWS",
+    "MIN_RATE",
+    "MAX_RATE",
     "RECIPE_KEYS",
     "RecipeError",
     "RecipeTypeError",
@@ -98,6 +104,18 @@ SILENCE_MODES = ("keep", "dither")
 DEFAULT_SILENCE_MIN_MS = 20.0
 #: Longest allowed minimum silent run, ms (the requantizer holds back that much audio).
 MAX_SILENCE_MIN_MS = 10_000.0
+#: Largest gain before requantizing, dB either way (a bigger change is a mistake, not a delivery).
+MAX_GAIN_DB = 60.0
+#: Lowest and highest true-peak ceiling, dBTP.
+MIN_CEILING_DBTP = -60.0
+MAX_CEILING_DBTP = 0.0
+#: How several channels become one: ``mean`` (the channels' average: a full-scale correlated
+#: stereo file cannot clip), ``-3db`` (the sum times 1/√N: each of two channels at −3.01 dB,
+#: equal power for uncorrelated channels, so a correlated full-scale stereo file peaks at +3 dB).
+DOWNMIX_LAWS = ("mean", "-3db")
+#: Lowest and highest delivery sample rate, Hz.
+MIN_RATE = 8000
+MAX_RATE = 384000
 #: Largest magnitude of a user coefficient: beyond it the loop cannot be useful, and
 #: sums of such numbers overflow.
 MAX_COEFFICIENT = 1e6
@@ -119,6 +137,12 @@ RECIPE_KEYS = {
     "silence": "one of " + ", ".join(SILENCE_MODES),
     "silence_min_ms": f"a number of ms above 0 and at most {MAX_SILENCE_MIN_MS:g} (the shortest "
                       "run of exact zeros kept silent)",
+    "channels": "1 or 2 (the delivered channels), or null to keep the source's",
+    "downmix": "one of " + ", ".join(DOWNMIX_LAWS),
+    "rate": f"a sample rate in Hz from {MIN_RATE} to {MAX_RATE}, or null to keep the source's",
+    "gain_db": f"a gain in dB from {-MAX_GAIN_DB:g} to {MAX_GAIN_DB:g}, applied before dither",
+    "peak_ceiling_dbtp": f"a true-peak ceiling in dBTP from {MIN_CEILING_DBTP:g} to "
+                         f"{MAX_CEILING_DBTP:g}, or null for none",
 }
 
 
@@ -268,6 +292,49 @@ def _check_silence_min(ms):
         raise RecipeError("silence_min_ms", ms,
                           f"is out of range; it must be {RECIPE_KEYS['silence_min_ms']}")
     return float(ms)
+
+
+def _check_gain(gain_db):
+    if not _is_number(gain_db):
+        raise _typed("gain_db", gain_db)
+    if not (math.isfinite(gain_db) and abs(float(gain_db)) <= MAX_GAIN_DB):
+        raise RecipeError("gain_db", gain_db,
+                          f"is out of range; it must be {RECIPE_KEYS['gain_db']}")
+    return float(gain_db)
+
+
+def _check_ceiling(ceiling):
+    if ceiling is None:
+        return None
+    if not _is_number(ceiling):
+        raise _typed("peak_ceiling_dbtp", ceiling)
+    if not (math.isfinite(ceiling) and MIN_CEILING_DBTP <= float(ceiling) <= MAX_CEILING_DBTP):
+        raise RecipeError("peak_ceiling_dbtp", ceiling,
+                          f"is out of range; it must be {RECIPE_KEYS['peak_ceiling_dbtp']}")
+    return float(ceiling)
+
+
+def _check_channels(channels):
+    if channels is None:
+        return None
+    if not _is_int(channels):
+        raise _typed("channels", channels)
+    if channels not in (1, 2):
+        raise RecipeError("channels", channels,
+                          f"is not allowed; it must be {RECIPE_KEYS['channels']}")
+    return int(channels)
+
+
+def _check_rate(rate):
+    if rate is None:
+        return None
+    if _is_number(rate) and not _is_int(rate) and math.isfinite(rate) and rate == int(rate):
+        rate = int(rate)
+    if not _is_int(rate):
+        raise _typed("rate", rate)
+    if not MIN_RATE <= rate <= MAX_RATE:
+        raise RecipeError("rate", rate, f"is out of range; it must be {RECIPE_KEYS['rate']}")
+    return int(rate)
 
 
 def _check_bool(field, value):
@@ -558,6 +625,9 @@ class Shaping:
 
 # --------------------------------------------------------------------------- the recipe
 
+#: The keys of the stages before the quantizer (channels, rate, gain).
+_PREPARE_KEYS = ("channels", "downmix", "rate", "gain_db", "peak_ceiling_dbtp")
+
 _FLAT_SHAPING = ("shaping", "shaping_order", "shaping_limit_db", "shaping_coeffs",
                  "shaping_source", "shaping_rate")
 
@@ -600,6 +670,24 @@ class Recipe:
         The shortest run of exact zeros kept silent
         (:data:`DEFAULT_SILENCE_MIN_MS` says why 20); in frames, see
         :meth:`silence_frames`.
+    channels : {1, 2} or None, default None
+        The delivered channels; None keeps the source's. Several channels
+        become one by ``downmix``; one becomes two by copying it. Applied first.
+    downmix : {'mean', '-3db'}, default 'mean'
+        How several channels become one (:data:`DOWNMIX_LAWS`).
+    rate : int, Hz, 8000..384000, or None, default None
+        The delivered sample rate; None keeps the source's. Converted in
+        float64 (:mod:`requant.dsp.resample`) after the channels, before the
+        gain; dither, shaping, the error signal and the report are those of
+        the new rate.
+    gain_db : float, dB, −60..+60, default 0
+        A gain applied in float64 before dither: the error signal is the
+        output minus the *gained* input.
+    peak_ceiling_dbtp : float, dBTP, −60..0, or None, default None
+        A true-peak ceiling (ITU-R BS.1770-4 true peak): the file is measured
+        first, and if its true peak after ``gain_db`` is above the ceiling
+        the gain is lowered by the difference (one gain for the whole file;
+        never a limiter, never a raise).
 
     Notes
     -----
@@ -617,6 +705,11 @@ class Recipe:
     force_dither: bool = False
     silence: str = "keep"
     silence_min_ms: float = DEFAULT_SILENCE_MIN_MS
+    channels: int | None = None
+    downmix: str = "mean"
+    rate: int | None = None
+    gain_db: float = 0.0
+    peak_ceiling_dbtp: float | None = None
 
     #: Dictionary keys that are not fields of their own (the shaping's parts).
     FLAT_SHAPING_KEYS: ClassVar[tuple[str, ...]] = _FLAT_SHAPING
@@ -631,6 +724,11 @@ class Recipe:
         _check_bool("force_dither", self.force_dither)
         _choice("silence", self.silence, SILENCE_MODES)
         object.__setattr__(self, "silence_min_ms", _check_silence_min(self.silence_min_ms))
+        object.__setattr__(self, "channels", _check_channels(self.channels))
+        _choice("downmix", self.downmix, DOWNMIX_LAWS)
+        object.__setattr__(self, "rate", _check_rate(self.rate))
+        object.__setattr__(self, "gain_db", _check_gain(self.gain_db))
+        object.__setattr__(self, "peak_ceiling_dbtp", _check_ceiling(self.peak_ceiling_dbtp))
         check_dither_in_loop(self.dither, self.shaping.kind != "none")
 
     @property
@@ -670,6 +768,11 @@ class Recipe:
             "force_dither": self.force_dither,
             "silence": self.silence,
             "silence_min_ms": self.silence_min_ms,
+            "channels": self.channels,
+            "downmix": self.downmix,
+            "rate": self.rate,
+            "gain_db": self.gain_db,
+            "peak_ceiling_dbtp": self.peak_ceiling_dbtp,
         }
 
     @classmethod
@@ -702,7 +805,7 @@ class Recipe:
                               f"is not a recipe setting{did}; known settings are "
                               f"{', '.join(RECIPE_KEYS)}")
         fields = {k: data[k] for k in ("bits", "quantizer", "dither", "seed", "force_dither",
-                                        "silence", "silence_min_ms")
+                                        "silence", "silence_min_ms", *_PREPARE_KEYS)
                   if k in data}
         if any(k in data for k in _FLAT_SHAPING):
             fields["shaping"] = _shaping_from_flat(data, base.shaping, base_dir)
@@ -721,7 +824,22 @@ class Recipe:
         d.pop("shaping_source")
         if self.silence != "keep":
             d.pop("silence_min_ms")  # it decides nothing then
+        # the stages before the quantizer count only when they do something, so a library
+        # converted before they existed keeps its settings id
+        if not self.changes_input:
+            for key in _PREPARE_KEYS:
+                d.pop(key)
+        elif self.channels != 1:
+            d.pop("downmix")
         return d
+
+    @property
+    def changes_input(self):
+        """Whether anything happens to the input before the quantizer (channels, rate,
+        gain, ceiling). Whether a change is needed for a given file (its channels or
+        rate may already be the target's) is decided by :mod:`requant.dsp.prepare`."""
+        return (self.channels is not None or self.rate is not None or self.gain_db != 0.0
+                or self.peak_ceiling_dbtp is not None)
 
     def describe(self):
         """One line for people: ``16-bit, round, dither tpdf, shaping none, seed 7``."""
@@ -729,8 +847,18 @@ class Recipe:
         forced = ", dither forced" if self.force_dither else ""
         silence = (f"silence kept (>= {self.silence_min_ms:g} ms)" if self.silence == "keep"
                    else "silence dithered")
+        before = ""
+        if self.channels is not None:
+            before += (f", mono ({self.downmix} downmix)" if self.channels == 1
+                       else ", stereo")
+        if self.rate is not None:
+            before += f", {self.rate} Hz"
+        if self.gain_db:
+            before += f", gain {self.gain_db:+g} dB"
+        if self.peak_ceiling_dbtp is not None:
+            before += f", true peak at most {self.peak_ceiling_dbtp:g} dBTP"
         return (f"{self.bits}-bit, {self.quantizer}, dither {self.dither}, shaping "
-                f"{self.shaping.describe()}, {seed}{forced}, {silence}")
+                f"{self.shaping.describe()}, {seed}{forced}, {silence}{before}")
 
 
 def _shaping_from_flat(data, current, base_dir):

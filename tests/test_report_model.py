@@ -27,7 +27,7 @@ TOP = ["requant_version", "created", "settings", "input", "output", "error_signa
        "measured", "predicted", "channels", "warnings", "notes"]
 RECIPE = ["bits", "quantizer", "dither", "shaping", "shaping_order", "shaping_limit_db",
           "shaping_coeffs", "shaping_source", "shaping_rate", "seed", "force_dither", "silence",
-          "silence_min_ms"]
+          "silence_min_ms", "channels", "downmix", "rate", "gain_db", "peak_ceiling_dbtp"]
 INPUT = ["path", "format", "sample_rate", "channels", "frames", "duration_s", "subtype",
          "declared_frames"]
 OUTPUT = ["path", "format", "subtype", "bits", "container_bits", "passthrough"]

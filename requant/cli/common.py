@@ -25,8 +25,14 @@ from requant.recipe import (
     DEFAULT_LIMIT_DB,
     DEFAULT_ORDER,
     DITHERS,
+    DOWNMIX_LAWS,
+    MAX_CEILING_DBTP,
+    MAX_GAIN_DB,
+    MAX_RATE,
     MAX_SILENCE_MIN_MS,
     MAX_TAPS,
+    MIN_CEILING_DBTP,
+    MIN_RATE,
     QUANTIZERS,
     SEED_MAX,
     SILENCE_MODES,
@@ -35,7 +41,9 @@ from requant.recipe import (
 
 __all__ = ["CAUTION", "DEFAULTS", "err", "friendly", "set_debug", "handle_sigterm", "stop_reason",
            "stop_exit_code", "Quantizer", "Dither", "Silence", "SilenceOpt", "SilenceMin",
-           "MaybeSilence", "MaybeSilenceMin",
+           "MaybeSilence", "MaybeSilenceMin", "Downmix", "ChannelsOpt", "DownmixOpt", "RateOpt",
+           "GainOpt", "PeakCeiling", "MaybeChannels", "MaybeDownmix", "MaybeRate", "MaybeGain",
+           "MaybePeakCeiling",
            "recipe_options", "OPTIONS", "Bits", "QuantizerOpt", "DitherOpt", "ShapingOpt",
            "ShapingOrder", "ShapingLimit", "ShaperOrder", "ShaperLimit", "Seed", "ForceDither",
            "Overwrite", "Quiet",
@@ -119,6 +127,9 @@ Dither = Enum("Dither", {d.replace("-", "_"): d for d in DITHERS}, type=str)
 Dither.__doc__ = "The dithers of requant.recipe.DITHERS."
 Silence = Enum("Silence", {m: m for m in SILENCE_MODES}, type=str)
 Silence.__doc__ = "What to do with digital silence: requant.recipe.SILENCE_MODES."
+Downmix = Enum("Downmix", {("minus_3db" if m == "-3db" else m): m for m in DOWNMIX_LAWS},
+               type=str)
+Downmix.__doc__ = "How channels fold to one: requant.recipe.DOWNMIX_LAWS."
 
 #: Every shared option: flags, help, limits, and the default shown for layered forms.
 OPTIONS = {
@@ -142,6 +153,21 @@ OPTIONS = {
     "silence_min": (("--silence-min",), "Shortest run of exact zeros, in ms, that counts as "
                     "digital silence.",
                     {"min": 0.001, "max": MAX_SILENCE_MIN_MS}, f"{DEFAULTS.silence_min_ms:g}"),
+    "channels": (("--channels",), "Deliver 1 or 2 channels (default: as the source): several "
+                 "fold to one by --downmix, one is copied to two.", {"min": 1, "max": 2}, None),
+    "downmix": (("--downmix",), "How channels fold to one: mean (their average; cannot clip) "
+                "or -3db (their sum times 1/sqrt(N)).", {}, DEFAULTS.downmix),
+    "rate": (("--rate",), f"Deliver at this sample rate, Hz ({MIN_RATE} to {MAX_RATE}; "
+             "default: as the source); converted in float64 before dither.",
+             {"min": MIN_RATE, "max": MAX_RATE}, None),
+    "gain": (("--gain",), f"Gain in dB ({-MAX_GAIN_DB:g} to {MAX_GAIN_DB:g}) applied in "
+             "float64 before dither; the error signal is output minus the gained input.",
+             {"min": -MAX_GAIN_DB, "max": MAX_GAIN_DB}, "0"),
+    "peak_ceiling": (("--peak-ceiling",), "True-peak ceiling, dBTP "
+                     f"({MIN_CEILING_DBTP:g} to {MAX_CEILING_DBTP:g}): the file is measured "
+                     "first and the gain lowered so its true peak lands on the ceiling (one "
+                     "gain for the file, never a limiter).",
+                     {"min": MIN_CEILING_DBTP, "max": MAX_CEILING_DBTP}, None),
     "overwrite": (("--overwrite",), "Replace existing outputs (never the input).", {}, None),
     "quiet": (("--quiet", "-q"), "Print only warnings and errors.", {}, None),
     "block_frames": (("--block-frames",), "Frames per block (the output is the same for any "
@@ -170,6 +196,11 @@ Seed = Annotated[int | None, _option("seed")]
 ForceDither = Annotated[bool, _option("force_dither")]
 SilenceOpt = Annotated[Silence, _option("silence")]
 SilenceMin = Annotated[float, _option("silence_min")]
+ChannelsOpt = Annotated[int | None, _option("channels")]
+DownmixOpt = Annotated[Downmix, _option("downmix")]
+RateOpt = Annotated[int | None, _option("rate")]
+GainOpt = Annotated[float, _option("gain")]
+PeakCeiling = Annotated[float | None, _option("peak_ceiling")]
 Overwrite = Annotated[bool, _option("overwrite")]
 Quiet = Annotated[bool, _option("quiet")]
 BlockFrames = Annotated[int, _option("block_frames")]
@@ -182,6 +213,11 @@ MaybeForceDither = Annotated[bool | None, _option("force_dither", layered=True)]
 MaybeSilence = Annotated[Silence | None, _option("silence", layered=True)]
 MaybeSilenceMin = Annotated[float | None, _option("silence_min", layered=True)]
 MaybeBlockFrames = Annotated[int | None, _option("block_frames", layered=True)]
+MaybeChannels = Annotated[int | None, _option("channels", layered=True)]
+MaybeDownmix = Annotated[Downmix | None, _option("downmix", layered=True)]
+MaybeRate = Annotated[int | None, _option("rate", layered=True)]
+MaybeGain = Annotated[float | None, _option("gain", layered=True)]
+MaybePeakCeiling = Annotated[float | None, _option("peak_ceiling", layered=True)]
 
 ErrorPath = Annotated[Path | None, typer.Option(
     "--error", help="Write the error signal (output minus input), 32-bit float .wav or .aiff.")]
@@ -230,11 +266,14 @@ def cluster_executor(cluster, jobs, timeout_s):
 
 
 def recipe_options(*, bits, quantizer, dither, shaping, shaping_order, shaping_limit, seed,
-                   force_dither, silence=None, silence_min=None):
+                   force_dither, silence=None, silence_min=None, channels=None, downmix=None,
+                   rate=None, gain=None, peak_ceiling=None):
     """The recipe keys given on a command line (None: not given), as a flat dict."""
     flat = {"bits": bits, "quantizer": getattr(quantizer, "value", quantizer),
             "dither": getattr(dither, "value", dither), "shaping": shaping,
             "shaping_order": shaping_order, "shaping_limit_db": shaping_limit, "seed": seed,
             "force_dither": force_dither, "silence": getattr(silence, "value", silence),
-            "silence_min_ms": silence_min}
+            "silence_min_ms": silence_min, "channels": channels,
+            "downmix": getattr(downmix, "value", downmix), "rate": rate, "gain_db": gain,
+            "peak_ceiling_dbtp": peak_ceiling}
     return {k: v for k, v in flat.items() if v is not None}

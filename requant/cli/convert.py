@@ -14,15 +14,21 @@ from requant.cli.common import (
     DEFAULTS,
     Bits,
     BlockFrames,
+    ChannelsOpt,
     Dither,
     DitherOpt,
+    Downmix,
+    DownmixOpt,
     ErrorGainOpt,
     ErrorPath,
     ForceDither,
+    GainOpt,
     Overwrite,
+    PeakCeiling,
     Quantizer,
     QuantizerOpt,
     Quiet,
+    RateOpt,
     ReportPaths,
     Seed,
     ShapingLimit,
@@ -55,6 +61,11 @@ def convert(
     force_dither: ForceDither = DEFAULTS.force_dither,
     silence: SilenceOpt = Silence(DEFAULTS.silence),
     silence_min: SilenceMin = DEFAULTS.silence_min_ms,
+    channels: ChannelsOpt = None,
+    downmix: DownmixOpt = Downmix(DEFAULTS.downmix),
+    rate: RateOpt = None,
+    gain: GainOpt = DEFAULTS.gain_db,
+    peak_ceiling: PeakCeiling = None,
     block_frames: BlockFrames = DEFAULT_BLOCK_FRAMES,
     quiet: Quiet = False,
 ):
@@ -65,7 +76,8 @@ def convert(
     recipe = Recipe.from_dict(recipe_options(
         bits=bits, quantizer=quantizer, dither=dither, shaping=shaping,
         shaping_order=shaping_order, shaping_limit=shaping_limit, seed=seed,
-        force_dither=force_dither, silence=silence, silence_min=silence_min))
+        force_dither=force_dither, silence=silence, silence_min=silence_min,
+        channels=channels, downmix=downmix, rate=rate, gain=gain, peak_ceiling=peak_ceiling))
     outputs = Outputs(error=error, report=tuple(report or ()), overwrite=overwrite,
                       error_gain=error_gain)
     progress = _ProgressPrinter(quiet)

@@ -257,6 +257,12 @@ class Conversion:
     block_frames : int, frames
     error_gain : requant.report.model.ErrorGain, optional
         How loud the error signal was written; default exact (unity gain).
+    prepared : requant.dsp.prepare.PreparedFacts, optional
+        What the stages before the quantizer did (channels, rate, gain); None
+        when none applied. ``frames`` are then the delivered frames and
+        ``frames_in`` the frames read.
+    frames_in : int, optional
+        Frames read from the input (default: ``frames``).
     """
 
     recipe: Recipe
@@ -269,6 +275,18 @@ class Conversion:
     passthrough: bool
     block_frames: int
     error_gain: ErrorGain = ErrorGain()
+    prepared: Any = None
+    frames_in: int | None = None
+
+    @property
+    def read_frames(self):
+        """Frames read from the input."""
+        return self.frames if self.frames_in is None else self.frames_in
+
+    @property
+    def rate(self):
+        """The delivered sample rate, Hz."""
+        return self.source.rate if self.prepared is None else self.prepared.rate_out
 
 
 def build_report(rq, conv, *, analysis=None, metadata=None):
@@ -293,11 +311,10 @@ def build_report(rq, conv, *, analysis=None, metadata=None):
     total, pred_total, channels = _figures(rq, conv.frames, conv.passthrough)
     warnings, notes = _sentences(total, bits=rq.bits, dither=conv.recipe.dither,
                                  passthrough=conv.passthrough)
-    if conv.frames != conv.source.declared_frames:
-        warnings.append(f"{conv.targets.src!r} holds {conv.frames} frames although its header "
-                        f"declares {conv.source.declared_frames} (the file was cut short); the "
-                        "frames that are there were "
-                        "converted.")
+    if conv.read_frames != conv.source.declared_frames:
+        warnings.append(f"{conv.targets.src!r} holds {conv.read_frames} frames although its "
+                        f"header declares {conv.source.declared_frames} (the file was cut "
+                        "short); the frames that are there were converted.")
     section = None
     if analysis is not None:
         more, section = _fold_analysis(analysis, total, pred_total, channels,
@@ -306,7 +323,9 @@ def build_report(rq, conv, *, analysis=None, metadata=None):
         _weighted_for_silence(total, pred_total, channels, conv.frames)
         notes.extend(_difference_notes(total, pred_total, dither_applied=rq.dither,
                                        section=section))
-    note = _silence_note(channels, frames=conv.frames, rate=conv.source.rate,
+    if conv.prepared is not None:
+        notes.insert(0, f"before requantizing: {conv.prepared.sentence()}")
+    note = _silence_note(channels, frames=conv.frames, rate=conv.rate,
                          min_ms=conv.recipe.silence_min_ms)
     if note:
         notes.append(note)
@@ -325,12 +344,14 @@ def build_report(rq, conv, *, analysis=None, metadata=None):
         warnings=tuple(warnings),
         notes=tuple(notes),
         analysis=section,
+        preparation=(None if conv.prepared is None
+                     else {**conv.prepared.to_dict(), "frames_out": conv.frames}),
     )
 
 
 def _files(rq, conv, metadata):
     """The report's ``input``, ``output`` and ``error_signal``."""
-    source, targets, frames = conv.source, conv.targets, conv.frames
+    source, targets, frames = conv.source, conv.targets, conv.read_frames
     record = None if metadata is None else MetadataRecord.from_dict(metadata)
     return {
         "input": InputFacts(path=targets.src, format=source.format, sample_rate=source.rate,

@@ -587,6 +587,11 @@ class Report:
     analysis : Analysis or None
         None when the analysis did not run; the JSON form then has no
         ``analysis`` key and no analysis figures.
+    preparation : mapping or None
+        What happened before the quantizer (channels, rate, gain, true-peak
+        ceiling; :class:`requant.dsp.prepare.PreparedFacts` plus
+        ``frames_out``); None, and no ``preparation`` key in JSON, when nothing
+        did.
 
     Notes
     -----
@@ -610,6 +615,7 @@ class Report:
     warnings: tuple[str, ...] = ()
     notes: tuple[str, ...] = ()
     analysis: Analysis | None = None
+    preparation: Mapping[str, Any] | None = None
 
     @property
     def analysed(self) -> bool:
@@ -639,4 +645,6 @@ class Report:
         }
         if analysed:
             out["analysis"] = self.analysis.to_dict()
+        if self.preparation is not None:
+            out["preparation"] = _plain(self.preparation)
         return out
