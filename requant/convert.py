@@ -598,7 +598,8 @@ def _finish(rq, conv, analysis, outs, *, tmp_out, finalize):
         res = analyzer.finish()
     meta = None
     if finalize is not None:
-        meta = finalize(tmp_out, conv.out_format, dither_applied=rq.dither)
+        meta = finalize(tmp_out, conv.out_format, dither_applied=rq.dither,
+                        rate_changed=conv.rate != conv.source.rate)
     report = build_report(rq, conv, analysis=res, metadata=meta)
     targets = conv.targets
     if targets.reports:

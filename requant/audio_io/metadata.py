@@ -12,7 +12,7 @@ from requant.audio_io import riff
 from requant.audio_io.probe import sndfile_target
 from requant.errors import OutputError
 
-__all__ = ["CarryMetadata", "is_riff_wave", "source_tags", "history_text"]
+__all__ = ["CarryMetadata", "is_riff_wave", "source_tags", "history_text", "metadata_sentences"]
 
 
 # Source WAV chunks that are not metadata (see requant.audio_io.riff.copy_metadata).
@@ -66,7 +66,13 @@ class CarryMetadata:
         self.tags = tags
         self.source_is_wav = source_is_wav
 
-    def __call__(self, tmp_out, out_format, dither_applied=None):
+    def __call__(self, tmp_out, out_format, dither_applied=None, rate_changed=False):
+        """Carry the chunks into ``tmp_out``; the record of what was carried and dropped.
+
+        ``rate_changed``: the output's sample rate is not the source's, so the
+        chunks that hold sample positions (:data:`requant.audio_io.riff.POSITION_CHUNKS`)
+        are dropped, and said to be.
+        """
         meta = {"copied": [], "rewritten": [], "dropped": [], "tags": sorted(self.tags or {})}
         if not self.source_is_wav:
             return meta
@@ -89,7 +95,9 @@ class CarryMetadata:
                                       channels=channels,
                                       text=history_text(self.recipe, dither_applied))
         try:
-            got = riff.copy_metadata(self.source, tmp_out, coding_history_row=row)
+            got = riff.copy_metadata(self.source, tmp_out, coding_history_row=row,
+                                     also_drop=riff.POSITION_CHUNKS if rate_changed
+                                     else frozenset())
         except riff.ChunkError as exc:
             meta["error"] = (f"the WAV chunks of the source could not be copied ({exc}); the "
                              "audio was converted without them")
@@ -108,5 +116,46 @@ class CarryMetadata:
         fmt = next(c for c in riff.read_chunks(path) if c.id == "fmt ")
         channels, rate = struct.unpack_from("<HI", fmt.read(path, max_bytes=64)[:8], 2)
         return rate, channels
+
+
+def metadata_sentences(meta, out_format):
+    """What a conversion did with the source's metadata, for people.
+
+    Parameters
+    ----------
+    meta : requant.report.model.MetadataRecord
+    out_format : str
+        The output container (``WAV``, ``RF64``, ``FLAC``, ``AIFF``).
+
+    Returns
+    -------
+    (str or None, list of str)
+        One line saying what was carried (None when the source had none), and
+        warnings: chunks dropped and why, a chunk list that could not be read.
+        ``convert`` prints them; ``batch`` records them per file.
+    """
+    warnings = []
+    kept = [*meta.rewritten, *meta.copied]
+    parts = []
+    if kept:
+        shown = [f"{c.strip()} (+1 coding-history row)" if c == "bext" and c in meta.rewritten
+                 else c.strip() for c in kept]
+        parts.append("WAV chunks " + ", ".join(shown))
+    if meta.tags and out_format not in ("WAV", "RF64"):
+        parts.append("text tags " + ", ".join(meta.tags))
+    line = ("metadata kept: " + "; ".join(parts)) if parts else None
+    dropped = [c for c in meta.dropped if c not in _NOT_METADATA]
+    if dropped:
+        names = ", ".join(repr(c) for c in dropped)
+        if out_format not in ("WAV", "RF64"):
+            warnings.append(f"the WAV chunks {names} cannot be stored in {out_format} and were "
+                            "dropped; write WAV (a .wav output, or --format wav in a batch) to "
+                            "keep them")
+        else:
+            warnings.append(f"the WAV chunks {names} hold sample positions that a change of "
+                            "sample rate makes wrong, and were dropped")
+    if meta.error:
+        warnings.append(meta.error)
+    return line, warnings
 
 

@@ -44,6 +44,7 @@ from requant.audio_io.atomic import TEMP_SUFFIX, temp_stem
 from requant.errors import InputError, OutputError, UsageError
 
 __all__ = [
+    "POSITION_CHUNKS",
     "BEXT_FIXED_BYTES",
     "DEFAULT_MAX_CHUNKS",
     "MAX_IN_MEMORY_BYTES",
@@ -72,6 +73,10 @@ _RF64_FORMS = (b"RF64", b"BW64")
 _REGENERATED = frozenset({"fmt ", "data", "fact", "ds64"})  # the writer's own describe the output
 _PADDING = frozenset({"JUNK", "junk", "PAD ", "FLLR"})  # filler, no content (common practice)
 _STALE = frozenset({"PEAK", "levl"})  # summaries of sample values; requantizing changes them
+#: Chunks that hold sample positions or the sample period (cue points, sampler loops,
+#: playlist segments): wrong after a change of sample rate. (A ``LIST``/``adtl`` naming cue
+#: points stays: its labels are text and harmless without the cues.)
+POSITION_CHUNKS = frozenset({"cue ", "smpl", "plst"})
 _R98_MODES = ("mono", "stereo", "dual-mono", "joint-stereo", "multichannel")
 
 
@@ -506,7 +511,8 @@ def _fsync_dir(folder: Path) -> None:
 
 
 def copy_metadata(source: str | os.PathLike, output: str | os.PathLike, *,
-                  coding_history_row: str | None = None) -> dict[str, list[str] | str]:
+                  coding_history_row: str | None = None,
+                  also_drop: frozenset[str] = frozenset()) -> dict[str, list[str] | str]:
     """Copy the source WAV's metadata chunks into a freshly written output WAV.
 
     `output` is rewritten atomically (a temporary file in the same folder,
@@ -523,6 +529,9 @@ def copy_metadata(source: str | os.PathLike, output: str | os.PathLike, *,
         A row from :func:`coding_history_row`, ending in CR LF. If given, it
         is appended to the CodingHistory of the source's ``bext`` chunk. No
         ``bext`` is created when the source has none.
+    also_drop : frozenset of str, optional
+        More source chunk ids not to carry (e.g. those that point at sample
+        positions, :data:`POSITION_CHUNKS`, when the rate changed).
 
     Returns
     -------
@@ -601,7 +610,7 @@ def copy_metadata(source: str | os.PathLike, output: str | os.PathLike, *,
                                   "write the output to a new path first")
             src = _scan(fs, source)
             out = _scan(fo, output)
-            items, report = _plan(fs, src, source, fo, out, output, row)
+            items, report = _plan(fs, src, source, fo, out, output, row, also_drop)
             report["form"], header, items = _frame(fo, out, output, items)
             tmp = _write_temp(output, header, items)
         try:
@@ -628,7 +637,8 @@ def _encoded_row(coding_history_row: str) -> bytes:
     return coding_history_row.encode("ascii")
 
 
-def _plan(fs, src: _Layout, source: Path, fo, out: _Layout, output: Path, row):
+def _plan(fs, src: _Layout, source: Path, fo, out: _Layout, output: Path, row,
+          also_drop=frozenset()):
     """Choose and order the chunks of the new file; see :func:`copy_metadata`."""
     fmts = [c for c in out.chunks if c.id == "fmt "]
     datas = [c for c in out.chunks if c.id == "data"]
@@ -645,7 +655,7 @@ def _plan(fs, src: _Layout, source: Path, fo, out: _Layout, output: Path, row):
     for c in src.chunks:
         if c.id == "data":
             seen_data = True
-        if c.id in _REGENERATED or c.id in _PADDING or c.id in _STALE:
+        if c.id in _REGENERATED or c.id in _PADDING or c.id in _STALE or c.id in also_drop:
             dropped.append(c.id)
             continue
         item = _bext_with_row(fs, c, row, source) if c.id == "bext" and row is not None else None

@@ -66,6 +66,11 @@ def convert(
     rate: RateOpt = None,
     gain: GainOpt = DEFAULTS.gain_db,
     peak_ceiling: PeakCeiling = None,
+    metadata: Annotated[bool, typer.Option(
+        "--metadata/--no-metadata",
+        help="Carry the source's metadata over, as batch does: a WAV's chunks into a WAV "
+             "(bext with a coding-history row appended), text tags into FLAC and AIFF; what "
+             "cannot be carried is listed.")] = True,
     block_frames: BlockFrames = DEFAULT_BLOCK_FRAMES,
     quiet: Quiet = False,
 ):
@@ -79,7 +84,7 @@ def convert(
         force_dither=force_dither, silence=silence, silence_min=silence_min,
         channels=channels, downmix=downmix, rate=rate, gain=gain, peak_ceiling=peak_ceiling))
     outputs = Outputs(error=error, report=tuple(report or ()), overwrite=overwrite,
-                      error_gain=error_gain)
+                      error_gain=error_gain, metadata=metadata)
     progress = _ProgressPrinter(quiet)
     try:
         rep = convert_file(input, output, recipe, outputs=outputs, block_frames=block_frames,

@@ -13,7 +13,6 @@ import threading
 import time
 
 from requant.audio_io.atomic import pending_path
-from requant.audio_io.formats import format_for_path
 from requant.convert import Outputs, convert_file
 from requant.errors import InputError, OutputError, RequantError
 from requant.library.executors.base import WORKER, Terminated
@@ -231,7 +230,6 @@ def _convert_one(task):
                           "move it away or pass --overwrite to replace it")
     s = task["settings"]
     recipe = _recipe(s).with_seed(task["seed"])
-    out_fmt = format_for_path(out)
     report, identity = _converted_with_identity(src, lambda: convert_file(
         src, out, recipe, outputs=Outputs(overwrite=task["overwrite"], metadata=True),
         block_frames=s["block_frames"], analyze=s["analyze"]))
@@ -241,11 +239,6 @@ def _convert_one(task):
     if "correlated-error" in kinds and report.analysis is None:
         warnings.append("Without dither the error follows the signal (signal-correlated error); "
                         "add dither, or measure it with --analyze.")
-    if meta is not None and meta.dropped and out_fmt != "WAV":
-        warnings.append(f"the WAV chunks {', '.join(repr(c) for c in meta.dropped)} cannot be "
-                        f"stored in {out_fmt} and were dropped; choose --format wav to keep them")
-    if meta is not None and meta.error:
-        warnings.append(meta.error)
     notes = list(report.notes)
     if task.get("note"):
         notes.append(task["note"])

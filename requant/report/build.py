@@ -325,6 +325,13 @@ def build_report(rq, conv, *, analysis=None, metadata=None):
                                        section=section))
     if conv.prepared is not None:
         notes.insert(0, f"before requantizing: {conv.prepared.sentence()}")
+    if metadata is not None:
+        from requant.audio_io.metadata import metadata_sentences
+
+        line, more = metadata_sentences(MetadataRecord.from_dict(metadata), conv.out_format)
+        if line:
+            notes.append(line)
+        warnings.extend(more)
     note = _silence_note(channels, frames=conv.frames, rate=conv.rate,
                          min_ms=conv.recipe.silence_min_ms)
     if note:
