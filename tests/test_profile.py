@@ -43,6 +43,11 @@ format = "flac"
 include = ["*.wav"]
 exclude = ["scratch/*"]
 seed = 20240501
+channels = 1
+downmix = "-3db"
+rate = 44100
+gain_db = -1.5
+peak_ceiling_dbtp = -1.0
 """
 
 
@@ -55,7 +60,9 @@ def test_good_profile_gives_every_key(tmp_path):
                     "force_dither": True, "silence": "dither", "silence_min_ms": 35,
                     "analyze": True, "format": "flac",
                     "include": ["*.wav"],
-                    "exclude": ["scratch/*"], "seed": 20240501}
+                    "exclude": ["scratch/*"], "seed": 20240501, "channels": 1,
+                    "downmix": "-3db", "rate": 44100, "gain_db": -1.5,
+                    "peak_ceiling_dbtp": -1.0}
     assert set(prof) | {"description"} == set(PROFILE_KEYS)
 
 

@@ -13,6 +13,7 @@ from requant.errors import UsageError
 __all__ = [
     "OUTPUT_FORMATS",
     "LOSSY_EXTENSIONS",
+    "LOSSY_SUBTYPES",
     "format_for_path",
     "subtype_for",
     "container_bits_of",
@@ -35,6 +36,11 @@ LOSSY_EXTENSIONS = {
     ".mp3": "MP3", ".ogg": "Ogg Vorbis", ".oga": "Ogg Vorbis", ".opus": "Opus",
     ".m4a": "AAC", ".aac": "AAC", ".wma": "WMA", ".mp2": "MPEG layer II",
 }
+
+#: libsndfile subtypes of lossy codecs, as a source: what they decode to is the codec's
+#: approximation, its noise floor the codec's, not the master's.
+LOSSY_SUBTYPES = {"VORBIS": "Ogg Vorbis", "OPUS": "Opus", "MPEG_LAYER_I": "MPEG layer I",
+                  "MPEG_LAYER_II": "MPEG layer II", "MPEG_LAYER_III": "MP3"}
 
 #: Container word lengths of integer subtypes.
 _SUBTYPE_BITS = {"PCM_U8": 8, "PCM_S8": 8, "PCM_16": 16, "PCM_24": 24, "PCM_32": 32}

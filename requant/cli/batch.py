@@ -16,15 +16,20 @@ from typing import Annotated
 import typer
 
 from requant.cli.common import (
-    CAUTION,
+    FEW_BITS_CAUTION,
     Cluster,
     ClusterTimeout,
     Jobs,
     MaybeBits,
     MaybeBlockFrames,
+    MaybeChannels,
     MaybeDither,
+    MaybeDownmix,
     MaybeForceDither,
+    MaybeGain,
+    MaybePeakCeiling,
     MaybeQuantizer,
+    MaybeRate,
     MaybeShaping,
     MaybeSilence,
     MaybeSilenceMin,
@@ -246,6 +251,11 @@ def batch(
     force_dither: MaybeForceDither = None,
     silence: MaybeSilence = None,
     silence_min: MaybeSilenceMin = None,
+    channels: MaybeChannels = None,
+    downmix: MaybeDownmix = None,
+    rate: MaybeRate = None,
+    gain: MaybeGain = None,
+    peak_ceiling: MaybePeakCeiling = None,
     analyze: Annotated[bool | None, typer.Option(
         "--analyze/--no-analyze",
         help="Measure each file's weighted noise, signal-correlated error and true peak "
@@ -305,7 +315,8 @@ def batch(
     options = recipe_options(bits=bits, quantizer=quantizer, dither=dither, shaping=shaping,
                              shaping_order=shaping_order, shaping_limit=shaping_limit,
                              seed=seed, force_dither=force_dither, silence=silence,
-                             silence_min=silence_min)
+                             silence_min=silence_min, channels=channels, downmix=downmix,
+                             rate=rate, gain=gain, peak_ceiling=peak_ceiling)
     options.update({"format": format.value if format else None, "include": include or None,
                     "exclude": exclude or None, "block_frames": block_frames,
                     "analyze": analyze})
@@ -357,6 +368,6 @@ def _report_outcome(result, settings, *, dry_run, quiet):
         raise typer.Exit(code=stop_exit_code())
     _print_summary(result, quiet)
     if settings.recipe.bits <= 8 and not quiet and result["counts"]["converted"]:
-        print(CAUTION, file=sys.stderr)
+        print(FEW_BITS_CAUTION, file=sys.stderr)  # batch writes no error signals
     if result["counts"]["failed"]:
         raise typer.Exit(code=1)

@@ -39,7 +39,8 @@ from requant.recipe import (
     Recipe,
 )
 
-__all__ = ["CAUTION", "DEFAULTS", "err", "friendly", "set_debug", "handle_sigterm", "stop_reason",
+__all__ = ["CAUTION", "FEW_BITS_CAUTION", "DEFAULTS", "err", "friendly", "set_debug",
+           "handle_sigterm", "stop_reason",
            "stop_exit_code", "Quantizer", "Dither", "Silence", "SilenceOpt", "SilenceMin",
            "MaybeSilence", "MaybeSilenceMin", "Downmix", "ChannelsOpt", "DownmixOpt", "RateOpt",
            "GainOpt", "PeakCeiling", "MaybeChannels", "MaybeDownmix", "MaybeRate", "MaybeGain",
@@ -54,6 +55,9 @@ __all__ = ["CAUTION", "DEFAULTS", "err", "friendly", "set_debug", "handle_sigter
 #: The short caution printed after work that may be loud.
 CAUTION = ("Caution: few-bit outputs and error signals can be loud. Start playback at a low "
            "level; your own judgement and local workplace rules on hearing come first.")
+#: The caution after few-bit outputs when no error signal was written.
+FEW_BITS_CAUTION = ("Caution: few-bit outputs can be loud and harsh. Start playback at a low "
+                    "level; your own judgement and local workplace rules on hearing come first.")
 
 #: The library's defaults, which every command's defaults come from.
 DEFAULTS = Recipe()

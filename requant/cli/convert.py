@@ -12,6 +12,7 @@ from requant.audio_io.formats import DEFAULT_BLOCK_FRAMES
 from requant.cli.common import (
     CAUTION,
     DEFAULTS,
+    FEW_BITS_CAUTION,
     Bits,
     BlockFrames,
     ChannelsOpt,
@@ -99,8 +100,10 @@ def convert(
             print(f"note: {note}")
     for w in rep.warnings:
         print(f"warning: {w}", file=sys.stderr)
-    if rep.error_signal is not None or (bits <= 8 and not quiet):
+    if rep.error_signal is not None:
         print(CAUTION, file=sys.stderr)
+    elif bits <= 8 and not quiet:
+        print(FEW_BITS_CAUTION, file=sys.stderr)
 
 
 def error_line(err):

@@ -44,7 +44,8 @@ __all__ = ["PROFILE_KEYS", "OUTPUT_CHOICES", "ProfileError", "load_profile", "pa
 #: The recipe's keys a profile may set (the rest of the recipe's dictionary form is
 #: written by requant, not typed by people).
 _RECIPE_PART = ("bits", "quantizer", "dither", "shaping", "shaping_order", "shaping_limit_db",
-                "force_dither", "seed", "silence", "silence_min_ms")
+                "force_dither", "seed", "silence", "silence_min_ms", "channels", "downmix", "rate",
+                "gain_db", "peak_ceiling_dbtp")
 #: The batch's keys a profile may set; ``block_frames`` belongs to the machine.
 _BATCH_PART = ("format", "analyze", "include", "exclude")
 

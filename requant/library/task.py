@@ -13,6 +13,7 @@ import threading
 import time
 
 from requant.audio_io.atomic import pending_path
+from requant.audio_io.formats import LOSSY_SUBTYPES
 from requant.convert import Outputs, convert_file
 from requant.errors import InputError, OutputError, RequantError
 from requant.library.executors.base import WORKER, Terminated
@@ -75,6 +76,8 @@ def _classify(report, meta):
         kinds.append("metadata-error")
     if report.input.truncated:
         kinds.append("truncated")
+    if report.input.subtype in LOSSY_SUBTYPES:
+        kinds.append("lossy-source")
     return kinds
 
 

@@ -13,7 +13,7 @@ from dataclasses import dataclass
 from typing import Any
 
 from requant import __version__
-from requant.audio_io.formats import container_bits_of
+from requant.audio_io.formats import LOSSY_SUBTYPES, container_bits_of
 from requant.dsp.figures import measured_figures, predicted_figures
 from requant.dsp.quantizer import predicted_error_power_lsb2
 from requant.recipe import Recipe
@@ -32,7 +32,7 @@ from requant.report.model import (
     ReportSettings,
 )
 
-__all__ = ["build_report", "Conversion", "settings_block"]
+__all__ = ["build_report", "Conversion", "settings_block", "passthrough_reason"]
 
 _ANALYSIS_KEYS = ("method", "spectrum", "quietest_passage", "histogram", "true_peak", "loudness",
                   "dc_offset")
@@ -82,7 +82,8 @@ def _fold_analysis(res, total, pred_total, channels, *, passthrough):
     if tp_db is not None and tp_db > 0.0:
         warnings.append(
             f"The output's true peak is {tp_db:+.2f} dBTP (above 0 dBTP): converters and lossy "
-            "encoders downstream may clip; lower the gain before delivery."
+            "encoders downstream may clip; convert again with --peak-ceiling -1 (one gain that "
+            "puts the true peak at -1 dBTP)."
         )
     section = Analysis(**{k: res[k] for k in _ANALYSIS_KEYS if k in res})
     return warnings, section
@@ -188,18 +189,46 @@ def _scale_weighted(figures, share):
             figures[key] = value + 10.0 * math.log10(share) if share > 0 else None
 
 
-def _sentences(total, *, bits, dither, passthrough):
+def passthrough_reason(subtype, bits):
+    """Why an input on the target grid is on it, from its container: one clause.
+
+    >>> passthrough_reason("PCM_24", 16)
+    'it holds 16-bit audio in a 24-bit file (its low 8 bits are all zero)'
+    """
+    held = container_bits_of(subtype) if subtype.startswith("PCM") else None
+    if subtype in ("FLOAT", "DOUBLE"):
+        return (f"its {'32' if subtype == 'FLOAT' else '64'}-bit float samples all lie on the "
+                f"{bits}-bit grid ({bits}-bit audio in a float file)")
+    if held == bits:
+        return f"it is already {bits}-bit"
+    if held is not None and held > bits:
+        return (f"it holds {bits}-bit audio in a {held}-bit file (its low {held - bits} bits "
+                "are all zero)")
+    if held is not None:
+        return f"it is {held}-bit, shorter than the {bits}-bit target"
+    return f"its samples all lie on the {bits}-bit grid"
+
+
+def _sentences(total, *, bits, dither, passthrough, subtype="", error_written=True):
     """The report's warnings and notes about what the figures show."""
     warnings, notes = [], []
     if passthrough:
         notes.append(
-            f"The input already lies on the {bits}-bit grid: it was written unchanged, "
-            "without dither (pass --force-dither to dither anyway)."
+            f"The input already lies on the {bits}-bit grid: "
+            f"{passthrough_reason(subtype, bits)}. It was written unchanged, without dither "
+            "(pass --force-dither to dither anyway)."
+        )
+    if subtype in LOSSY_SUBTYPES:
+        warnings.append(
+            f"The source is lossy-coded ({LOSSY_SUBTYPES[subtype]}): its noise floor is the "
+            "codec's, not the master's, so the figures describe requantizing the decoded "
+            "codec output; deliver from the uncompressed master where you can."
         )
     if total["over_full_scale_samples"]:
         warnings.append(
             f"{total['over_full_scale_samples']} input samples lie beyond full scale and were "
-            "clipped; lower the gain before requantizing."
+            "clipped; lower the gain before requantizing (--gain DB, or --peak-ceiling -1 "
+            "for one gain that puts the true peak at -1 dBTP)."
         )
     if total["clipped_samples"]:
         warnings.append(
@@ -218,7 +247,7 @@ def _sentences(total, *, bits, dither, passthrough):
             "busy signals, not for quiet passages or fades."
         )
     peak_db = total["error_peak_dbfs"]
-    if peak_db is not None and peak_db > -20.0:
+    if peak_db is not None and peak_db > -20.0 and error_written:
         warnings.append(
             f"The error signal peaks at {peak_db:.1f} dBFS: it is loud; start playback at a low "
             "level."
@@ -310,7 +339,8 @@ def build_report(rq, conv, *, analysis=None, metadata=None):
     """
     total, pred_total, channels = _figures(rq, conv.frames, conv.passthrough)
     warnings, notes = _sentences(total, bits=rq.bits, dither=conv.recipe.dither,
-                                 passthrough=conv.passthrough)
+                                 passthrough=conv.passthrough, subtype=conv.source.subtype,
+                                 error_written=conv.targets.error is not None)
     if conv.read_frames != conv.source.declared_frames:
         warnings.append(f"{conv.targets.src!r} holds {conv.read_frames} frames although its "
                         f"header declares {conv.source.declared_frames} (the file was cut "
