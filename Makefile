@@ -10,6 +10,9 @@ BROWSER_STAMP := $(VENV)/.browser-stamp
 .PHONY: demo test test-fast lint bench clean
 
 $(STAMP): pyproject.toml
+	@echo "setting up ./.venv: requant and what it needs (numpy, scipy, soundfile, numba, typer,"
+	@echo "matplotlib, jinja2, dask.distributed; for the tests pytest, hypothesis, selenium, ruff, pyloudnorm);"
+	@echo "first run only, a few minutes"
 	$(PYTHON) -m venv $(VENV)
 	$(BIN)/python -m pip install --quiet --upgrade pip
 	$(BIN)/python -m pip install --quiet -e '.[test,cluster]'

@@ -493,6 +493,9 @@ def convert_file(src, dst, recipe: Recipe | None = None, *, outputs: Outputs | N
         quietest passage and true peak (:mod:`requant.dsp.analysis`).
         Default: when a report is written.
     progress : callable(frames_done, frames_total), optional
+        Called as blocks are done. If it has a ``stage(label)`` method, that
+        is called when the work changes (``'measuring the true peak for the
+        ceiling'``, ``'requantizing'``, ``'measuring and writing the report'``).
 
     Returns
     -------
@@ -519,7 +522,7 @@ def convert_file(src, dst, recipe: Recipe | None = None, *, outputs: Outputs | N
         analyze = bool(targets.reports)
     with open_input(targets.src) as f:
         source = _open_source(f, targets.src)
-        prep, prepared, work = _preparation(f, source, recipe, block_frames)
+        prep, prepared, work = _preparation(f, source, recipe, block_frames, progress)
         rq, coeffs, passthrough = _requantizer(f, work, recipe, targets, block_frames,
                                                prepared=prep is not None)
         out_fmt, e_fmt = _containers(work, targets, rq)
@@ -530,9 +533,14 @@ def convert_file(src, dst, recipe: Recipe | None = None, *, outputs: Outputs | N
             tmp_out, files = _open_files(outs, work, targets, out_fmt, e_fmt, tags)
             analysis = (_analyzer(rq, work, rq.dither, rq.coeffs, block_frames)
                         if analyze else None)
+            _stage(progress, "requantizing")
             done = _stream(f, rq, files, source=work, targets=targets, analysis=analysis,
                            block_frames=block_frames, progress=progress, prep=prep,
                            read_dtype=source.dtype)
+            if analysis is not None or targets.reports:
+                _stage(progress, "measuring and writing the report")
+                if progress is not None:
+                    progress(done, work.frames)
             conv = Conversion(recipe=recipe, coeffs=coeffs, source=source, targets=targets,
                               frames=done, out_format=out_fmt, error_format=e_fmt,
                               passthrough=passthrough, block_frames=block_frames,
@@ -545,7 +553,14 @@ def convert_file(src, dst, recipe: Recipe | None = None, *, outputs: Outputs | N
     return report
 
 
-def _preparation(f, source, recipe, block_frames):
+def _stage(progress, label):
+    """Tell a progress display that supports it (``progress.stage``) what is happening."""
+    stage = getattr(progress, "stage", None)
+    if stage is not None:
+        stage(label)
+
+
+def _preparation(f, source, recipe, block_frames, progress=None):
     """The stages before the quantizer for this file: ``(preparer, facts, work)``.
 
     ``work`` is what the requantizer sees (the delivered rate and channels,
@@ -561,8 +576,15 @@ def _preparation(f, source, recipe, block_frames):
     tp = None
     if recipe.peak_ceiling_dbtp is not None:
         f.seek(0)
-        tp = measure_true_peak((x for _start, x in BlockReader(f, block_frames, source.dtype)),
-                               recipe, source.channels, source.rate)
+        _stage(progress, "measuring the true peak for the ceiling")
+
+        def blocks():
+            for start, x in BlockReader(f, block_frames, source.dtype):
+                if progress is not None:
+                    progress(start + x.shape[0], source.frames)
+                yield x
+
+        tp = measure_true_peak(blocks(), recipe, source.channels, source.rate)
         gain = ceiling_gain_db(recipe.gain_db, tp, recipe.peak_ceiling_dbtp)
         prep = Preparer(recipe, source.channels, source.rate, gain_db=gain)
     work = _Source(rate=prep.rate_out, channels=prep.channels_out,

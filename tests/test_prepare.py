@@ -174,3 +174,37 @@ def test_cli_shows_the_gain_it_applied_and_refuses_a_layout_it_cannot_fold(tmp_p
     assert code == 0, err
     assert "folded to mono (-3db)" in out
     assert sf.info(tmp_path / "m.wav").channels == 1
+
+
+def test_progress_names_each_stage_so_it_never_sits_silent_at_the_end(tmp_path):
+    import io
+
+    from requant.cli.convert import _ProgressPrinter
+
+    hot_master(tmp_path / "hot.wav", seconds=31.0)
+    stream = io.StringIO()
+    progress = _ProgressPrinter(False, stream=stream, tty=True)
+    try:
+        convert_file(tmp_path / "hot.wav", tmp_path / "o.wav",
+                     Recipe(peak_ceiling_dbtp=-1.0, seed=1),
+                     outputs=Outputs(report=tmp_path / "r.json"), progress=progress)
+    finally:
+        progress.close()
+    assert progress.stages == ["measuring the true peak for the ceiling", "requantizing",
+                               "measuring and writing the report"]
+
+
+@pytest.mark.slow  # compiles kernels into an empty cache
+def test_a_first_compile_is_announced_in_one_line(tmp_path):
+    import os
+
+    env = dict(os.environ, REQUANT_CACHE_DIR=str(tmp_path / "empty-cache"))
+    sf.write(tmp_path / "a.wav", np.zeros((480, 1), np.float32) + 0.1, RATE, subtype="FLOAT")
+    code, out, err = run_cli("convert", tmp_path / "a.wav", tmp_path / "b.wav", "--seed", "1",
+                             env=env, timeout=300)
+    assert code == 0, err
+    lines = [ln for ln in err.splitlines() if "preparing the fast path" in ln]
+    assert len(lines) == 1 and "once per machine" in lines[0]
+    code, out, err = run_cli("convert", tmp_path / "a.wav", tmp_path / "c.wav", "--seed", "1",
+                             env=env)
+    assert code == 0 and "preparing the fast path" not in err  # cached now

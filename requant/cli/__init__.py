@@ -40,6 +40,23 @@ app = typer.Typer(
 )
 
 
+def _notice_compiles():
+    """One line on stderr the first time this process compiles a kernel (a new machine, or
+    a new requant version): the pause that follows is then not a silent one."""
+    from requant import notices
+
+    said = []
+
+    def say(name):
+        if not said:
+            said.append(name)
+            print(f"requant: preparing the fast path for this machine (compiling kernels, once "
+                  f"per machine and version, about {notices.COMPILE_SECONDS} s each)",
+                  file=sys.stderr, flush=True)
+
+    notices.on_compile(say)
+
+
 @app.callback(invoke_without_command=True)
 def _root(
     ctx: typer.Context,
@@ -48,6 +65,7 @@ def _root(
                                  is_eager=True),
 ):
     set_debug(debug)
+    _notice_compiles()
     if version:
         from requant import __version__
 

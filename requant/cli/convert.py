@@ -148,12 +148,27 @@ def summary_line(rep):
 
 
 class _ProgressPrinter:
-    """A rich progress bar on a terminal, for files longer than 30 s; nothing otherwise."""
+    """A rich progress bar on a terminal, for files longer than 30 s; nothing otherwise.
 
-    def __init__(self, quiet):
+    :meth:`stage` names what the conversion is doing (a first pass that
+    measures the true peak, requantizing, the report), so the bar never sits
+    at 100 % in silence while the report is written.
+    """
+
+    def __init__(self, quiet, stream=None, tty=None):
         self._bar = None
         self._task = None
-        self._on = (not quiet) and sys.stderr.isatty()
+        self._stream = stream or sys.stderr
+        self._on = (not quiet) and (self._stream.isatty() if tty is None else tty)
+        self._label = "requantizing"
+        self.stages = []
+
+    def stage(self, label):
+        """Show ``label`` from now on (and start counting again)."""
+        self._label = label
+        self.stages.append(label)
+        if self._bar is not None:
+            self._bar.update(self._task, description=label)
 
     def __call__(self, done, total):
         if not self._on:
@@ -162,12 +177,13 @@ class _ProgressPrinter:
             if total < 48000 * 30:
                 self._on = False
                 return
+            from rich.console import Console
             from rich.progress import Progress
 
-            self._bar = Progress(transient=True)
+            self._bar = Progress(transient=True, console=Console(file=self._stream))
             self._bar.start()
-            self._task = self._bar.add_task("requantizing", total=total)
-        self._bar.update(self._task, completed=done)
+            self._task = self._bar.add_task(self._label, total=total)
+        self._bar.update(self._task, completed=done, total=total, description=self._label)
 
     def close(self):
         if self._bar is not None:

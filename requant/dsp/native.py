@@ -137,6 +137,7 @@ KERNELS = {
     "residual": Family("requant.dsp.residual", "build", "SIGNATURE", {}),
     "loudness": Family("requant.dsp.loudness", "build", "SIGNATURE", {"signals": (1, 2)}, True),
     "scan": Family("requant.dsp.scan", "build", "SIGNATURE", {}, True),
+    "resample": Family("requant.dsp.ratekernel", "build", "SIGNATURE", {}, True),
 }
 
 
@@ -408,6 +409,9 @@ def _native_raw(spec):
         except (OSError, ValueError, KeyError, TypeError):
             obj = meta = None
     if obj is None:
+        from requant.notices import compiling
+
+        compiling(spec.name)
         obj, symbol = _compile(spec)
         meta = {"symbol": symbol, "sha256": hashlib.sha256(obj).hexdigest(),
                 "args": list(spec.codes)}
