@@ -28,8 +28,9 @@ ALLOWED = {
     "cli": {"library", "listening", "convert", "inspection", "demo", "audit", "report", "dsp",
             "audio_io", "recipe"},
 }
-#: Modules every group may use: the exceptions, the lazy-export helper, the package face.
-BASE = {"requant.errors", "requant._lazy", "requant", "requant.__main__"}
+#: Modules every group may use: the exceptions, the notices of pauses, the lazy-export helper,
+#: the package face.
+BASE = {"requant.errors", "requant.notices", "requant._lazy", "requant", "requant.__main__"}
 
 
 def _modules():
@@ -90,7 +91,7 @@ def test_layers(module):
 
 
 def test_every_module_has_a_layer():
-    assert {_group(m) for m in MODULES} - {None} <= set(ALLOWED) | {"errors", "_lazy",
+    assert {_group(m) for m in MODULES} - {None} <= set(ALLOWED) | {"errors", "notices", "_lazy",
                                                                      "__main__"}
 
 

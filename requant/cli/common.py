@@ -34,6 +34,7 @@ from requant.recipe import (
     MIN_CEILING_DBTP,
     MIN_RATE,
     QUANTIZERS,
+    RECIPE_KEYS,
     SEED_MAX,
     SILENCE_MODES,
     Recipe,
@@ -269,15 +270,23 @@ def cluster_executor(cluster, jobs, timeout_s):
     return DaskExecutor(cluster, connect_timeout=timeout_s)
 
 
-def recipe_options(*, bits, quantizer, dither, shaping, shaping_order, shaping_limit, seed,
-                   force_dither, silence=None, silence_min=None, channels=None, downmix=None,
-                   rate=None, gain=None, peak_ceiling=None):
-    """The recipe keys given on a command line (None: not given), as a flat dict."""
-    flat = {"bits": bits, "quantizer": getattr(quantizer, "value", quantizer),
-            "dither": getattr(dither, "value", dither), "shaping": shaping,
-            "shaping_order": shaping_order, "shaping_limit_db": shaping_limit, "seed": seed,
-            "force_dither": force_dither, "silence": getattr(silence, "value", silence),
-            "silence_min_ms": silence_min, "channels": channels,
-            "downmix": getattr(downmix, "value", downmix), "rate": rate, "gain_db": gain,
-            "peak_ceiling_dbtp": peak_ceiling}
-    return {k: v for k, v in flat.items() if v is not None}
+#: Command-line option names that differ from the recipe's keys.
+_RECIPE_KEY_OF = {"shaping_limit": "shaping_limit_db", "silence_min": "silence_min_ms",
+                  "gain": "gain_db", "peak_ceiling": "peak_ceiling_dbtp"}
+
+
+def recipe_options(**given):
+    """The recipe keys given on a command line (None: not given), as a flat dict.
+
+    Keyword names are the commands' parameter names (``shaping_limit``,
+    ``silence_min``, ``gain``, ``peak_ceiling`` and the recipe's own keys);
+    choices given as enums become their values.
+    """
+    flat = {}
+    for name, value in given.items():
+        key = _RECIPE_KEY_OF.get(name, name)
+        if key not in RECIPE_KEYS:
+            raise TypeError(f"recipe_options() got an unknown option {name!r}")
+        if value is not None:
+            flat[key] = getattr(value, "value", value)
+    return flat
