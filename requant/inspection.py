@@ -1,5 +1,6 @@
 """Say what an audio file really holds: word length in use, levels, loudness,
-clipping, DC offset, digital silence and noise floor.
+clipping, DC offset, digital silence, the quietest passage (and the noise floor
+when that passage is noise), and which method suits it.
 
 The file is streamed in blocks (memory does not grow with its length), and
 every figure is the same, bit for bit, whatever the block size. One pass: a
@@ -20,10 +21,15 @@ bits_used
     24 (the float32 significand; 32 for float64 files) the content is
     reported as ``"float"`` with the container's own bits (24 for float32, 53
     for float64). A file of zeros gives 0.
-peak_dbfs, true_peak_dbtp
-    ``20 log10(max |x|)``; the true peak per ITU-R BS.1770-4 Annex 2
+peak_dbfs, true_peak_dbtp, true_peak_meter_dbtp
+    ``20 log10(max |x|)``; the true peak: the larger of the sample peak and
+    the reading of the ITU-R BS.1770-4 Annex 2 meter
     (:class:`requant.dsp.truepeak.SkippingTruePeakMeter`, zero history before
-    the file, zero flush after).
+    the file, zero flush after), which is kept as ``true_peak_meter``. The
+    standard's interpolator does not pass the samples through unchanged (its
+    phase 0 centre tap is 0.972), so on sparse or few-bit material it can read
+    below the sample peak (0.245 dB below for a lone sample); a true peak
+    below the sample peak would be a contradiction, so it is not shown.
 loudness
     ``integrated_lufs`` (ITU-R BS.1770-4) and ``range_lu`` (EBU Tech 3342) of
     the whole file, with the ``channel_layout`` and ``channel_weights`` taken
@@ -31,9 +37,12 @@ loudness
     None when undefined (see docs/theory.md, "Loudness").
 rms_dbfs
     AES17: a full-scale sine reads 0 dBFS, i.e. ``10 log10(2 mean(x^2))``.
-dc_offset, dc_offset_dbfs
-    The mean, and ``20 log10 |mean|`` (relative to full-scale amplitude, like
-    the peak). The overall figure is the channel mean of largest magnitude.
+dc_offset, dc_offset_dbfs, dc_offset_polarity
+    The mean (signed), ``20 log10 |mean|`` (relative to full-scale amplitude,
+    like the peak; a level, so without the sign) and the sign in words
+    (``"positive"``, ``"negative"``, None for 0). The console shows the
+    signed mean in percent of full scale beside the level. The overall figure
+    is the channel mean of largest magnitude.
 clipped_samples, clip_runs
     Samples in runs of at least ``clip_run`` (default 3) consecutive samples
     at full scale, and the number of such runs. "At full scale" means
@@ -47,7 +56,13 @@ over_samples
     Samples with ``|x| > 1`` (only possible in float files); they clip when
     converted to PCM.
 silent_fraction
-    The share of samples exactly 0.
+    The share of samples exactly 0. Many zeros are not missing audio: a
+    quiet signal dithered to a few bits holds mostly 0 codes, scattered (TPDF
+    on a signal far below 1 LSB gives 0 three times in four). So the
+    ``mostly-silent`` finding counts only samples in runs of exact zeros
+    (``silent_run_frames``) and ``scattered-zeros`` names the other case;
+    ``silent-gap`` names runs of at least :data:`GAP_MIN_S` inside the audio
+    (not at its start or end), in every channel or in one channel alone.
 silent_runs, silent_run_count, silent_run_frames
     The runs of exact zeros at least ``silence_min_ms`` long (default 20 ms,
     the rule by which ``convert --silence keep`` leaves a run silent):
@@ -55,14 +70,27 @@ silent_runs, silent_run_count, silent_run_frames
     and, at the top level, for the frames silent in every channel. At most
     1000 are listed per list; the count and the frames cover them all
     (:class:`requant.dsp.runs.SilentRuns`).
-noise_floor_dbfs
+quiet_level_dbfs, quiet_kind, quiet_tonal_fraction, noise_floor_dbfs
     The file is cut into blocks of ``floor_block_s`` (default 50 ms) from its
     start; the AES17 RMS level of each block that is not entirely zero is
     collected in a histogram of 0.01 dB bins, and the ``floor_percentile``
-    (default 10th, nearest-rank) percentile of it is reported. It estimates
-    the level of the quietest passages (hiss, hum, dither) while ignoring
-    digital silence. A final partial block counts only when the file is
-    shorter than one block. ``None`` when every block is silent.
+    (default 10th, nearest-rank) percentile of it is the level of the
+    quietest passage, digital silence ignored. A final partial block counts
+    only when the file is shorter than one block. ``None`` when every block
+    is silent. In a file with music throughout that passage is the quietest
+    music, not noise, so it is judged: the spectra of up to
+    :data:`QUIET_EXAMPLES` blocks at that level (per channel and 1 dB bin,
+    the first met) are summed and the share of their power standing in
+    spectral lines is measured (:func:`requant.dsp.analysis.tonal_fraction`).
+    Under :data:`NOISE_TONAL_MAX` it is ``"noise"`` and its level is also
+    the ``noise_floor_dbfs``; otherwise ``"tonal"`` (music, tones, hum) and
+    the noise floor is None (it lies somewhere below). With fewer than
+    :data:`MIN_JUDGED_BLOCKS` blocks to judge, the kind is None.
+method_advice
+    Which method suits the file at ``for_bits`` (default 16) and why, in
+    figures (:func:`requant.dsp.audibility.advise`) and one paragraph
+    (``text``, :func:`requant.report.advice.advice_paragraph`), from the bits
+    in use, the rate and the quietest passage. None for a file with no sound.
 
 dB figures of zero (silence) are ``None``, as in :mod:`requant.dsp.figures`.
 Samples that are NaN or infinite (float files only) are counted in
@@ -74,18 +102,23 @@ from __future__ import annotations
 
 import math
 import os
+import textwrap
 
 import numpy as np
 
 from requant.errors import UsageError
 from requant.recipe import DEFAULT_SILENCE_MIN_MS, MAX_SILENCE_MIN_MS, silence_min_frames
 
-__all__ = ["inspect_file", "format_inspection", "DEFAULT_BLOCK_FRAMES"]
+__all__ = ["inspect_file", "format_inspection", "DEFAULT_BLOCK_FRAMES", "DEFAULT_FOR_BITS",
+           "NOISE_TONAL_MAX", "GAP_MIN_S"]
 
 #: Frames read per block by default: about 2 MiB of samples (262144 stereo frames), so the
 #: per-block work in Python is small beside the kernels' (1-2 % of the time).
 DEFAULT_BLOCK_FRAMES = None
 _BLOCK_BYTES = 1 << 21
+
+#: The word length the "which method" advice is for, unless asked otherwise.
+DEFAULT_FOR_BITS = 16
 
 #: Integer subtypes read as left-justified int32, and their word lengths.
 _PCM_BITS = {"PCM_S8": 8, "PCM_U8": 8, "PCM_16": 16, "PCM_24": 24, "PCM_32": 32}
@@ -104,6 +137,32 @@ _HIST_STEP_DB = 0.01
 _HIST_BINS = 45000
 
 
+#: Level bins (1 dB wide, over the histogram's range) in which the quietest-passage test
+#: keeps example blocks.
+_QUIET_BIN_DB = 1.0
+_QUIET_BINS = int((_HIST_STEP_DB * _HIST_BINS) / _QUIET_BIN_DB)
+#: Floor blocks kept per channel and level bin: their spectra, summed, judge whether the
+#: quietest passage is noise.
+QUIET_EXAMPLES = 8
+#: Fewest example blocks whose summed spectra are judged: white noise puts about 19 % of a
+#: single periodogram's power 6 dB above the running median by chance, 0.3 % of three
+#: summed (the chi-squared law of periodogram bins, 2 degrees of freedom each).
+MIN_JUDGED_BLOCKS = 3
+#: The quietest passage counts as noise (then it is the noise floor) when less than this
+#: share of its power stands in spectral lines, i.e. more than 6 dB above the running median
+#: of its averaged spectrum (:func:`requant.dsp.analysis.tonal_fraction`, the measure the
+#: convert report applies to its error). Our choice: white or shaped noise gives well under
+#: 1 %; music, tones and hum put most of their power in lines.
+NOISE_TONAL_MAX = 0.10
+#: Interior runs of exact zeros at least this long (in every channel, or in one channel
+#: while another plays) are named as possible dropouts. Our choice: shorter runs are more
+#: often edits or pauses between sounds.
+GAP_MIN_S = 0.5
+#: A quiet file whose zeros are scattered is called dither-like when its peak stays within
+#: this many LSB of its word length in use (codes toggling round 0). Our choice.
+DITHER_PEAK_MAX_LSB = 8
+
+
 def _db20(value):
     """20 log10(|value|); None for zero."""
     value = abs(float(value))
@@ -118,6 +177,109 @@ def _power_dbfs(mean_square):
 def _trailing_zeros32(value):
     value = int(value) & 0xFFFFFFFF
     return 32 if value == 0 else (value & -value).bit_length() - 1
+
+
+class _QuietExamples:
+    """Example floor blocks, by level, for the test of whether the quietest passage is noise.
+
+    The quietest passage's level is known only at the end of the file (a percentile of the
+    block levels), so the first :data:`QUIET_EXAMPLES` live floor blocks of each channel in
+    each 1 dB level bin leave their spectrum here: one Hann-windowed periodogram of the
+    largest power of two of frames in the block (2048 of the 2400 at 48 kHz: 23 Hz bins, fine
+    enough to resolve the harmonics of low notes), the block's mean removed. Memory is flat
+    (at most one spectrum per channel and bin), the blocks are taken in file order whatever
+    the read size, and the cost is a few hundred FFTs per file.
+    """
+
+    def __init__(self, channels, block_len):
+        self.ch = channels
+        self.L = block_len
+        seg = 1 << max(0, int(math.floor(math.log2(max(block_len, 1)))))
+        self.seg = seg if seg >= 64 else 0  # 0: blocks too short to judge
+        self.count = np.zeros((channels, _QUIET_BINS), dtype=np.int64)
+        self.psd = {}
+        self.tail = None
+        if self.seg:
+            self.win = 0.5 - 0.5 * np.cos(2.0 * np.pi * np.arange(seg) / seg)
+            self.off = (block_len - seg) // 2  # the block's middle frames
+
+    def _bin(self, level_db):
+        return int(min(max(math.floor((level_db - _HIST_LO_DB) / _QUIET_BIN_DB), 0),
+                       _QUIET_BINS - 1))
+
+    def feed_blocks(self, x, scale, b, *, first_block, first_frame):
+        """Take the floor blocks completed in block ``x`` (``b``: the scan's sums of squares
+        and live flags, (blocks, channels, 2)); block ``first_block`` starts at frame
+        ``first_block * L``, ``x`` at ``first_frame``."""
+        if not self.seg:
+            return
+        with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+            level = 10.0 * np.log10(2.0 * b[:, :, 0] / self.L)
+        ok = (b[:, :, 1] != 0.0) & np.isfinite(level)
+        idx = np.zeros(level.shape, dtype=np.intp)
+        idx[ok] = np.clip(np.floor((level[ok] - _HIST_LO_DB) / _QUIET_BIN_DB), 0,
+                          _QUIET_BINS - 1)
+        want = ok & (self.count[np.arange(self.ch)[None, :], idx] < QUIET_EXAMPLES)
+        if not want.any():
+            return
+        keys, segs = [], []
+        for i, c in zip(*np.nonzero(want)):
+            c, j = int(c), int(idx[i, c])
+            if self.count[c, j] >= QUIET_EXAMPLES:
+                continue
+            self.count[c, j] += 1
+            keys.append((c, j))
+            segs.append(self._block(x, (first_block + int(i)) * self.L - first_frame, c))
+        if not segs:
+            return
+        v = np.stack(segs) * scale  # one FFT call for every block taken from this read
+        v = np.where(np.isfinite(v), v, 0.0)
+        v -= v.mean(axis=1, keepdims=True)
+        power = np.abs(np.fft.rfft(v * self.win, axis=1)) ** 2
+        for key, p in zip(keys, power):
+            self.psd[key] = p if key not in self.psd else self.psd[key] + p
+
+    def _block(self, x, start, c):
+        """The periodogram's frames of the floor block starting ``start`` frames into ``x``
+        (before it: in the kept tail), as float64."""
+        a, b = start + self.off, start + self.off + self.seg
+        if a >= 0:
+            return x[a:b, c].astype(np.float64)
+        t = self.tail.shape[0]
+        if b <= 0:
+            return self.tail[t + a:t + b, c].astype(np.float64)
+        return np.concatenate((self.tail[t + a:, c], x[:b, c])).astype(np.float64)
+
+    def keep_tail(self, x):
+        """Keep the last floor block's worth of frames (a block may begin in earlier reads)."""
+        if not self.seg:
+            return
+        if x.shape[0] >= self.L or self.tail is None:
+            self.tail = np.array(x[-self.L:])
+        else:
+            self.tail = np.concatenate((self.tail, x))[-self.L:]
+
+    def judge(self, level_db, channels):
+        """The tonal share of the kept blocks at ``level_db`` (1 dB bin, widened by up to
+        2 dB until :data:`QUIET_EXAMPLES` blocks are pooled), over ``channels``, and the
+        number of blocks pooled; ``(None, 0)`` when none was kept."""
+        if level_db is None or not self.seg:
+            return None, 0
+        j = self._bin(level_db)
+        for half in (0, 1, 2):
+            keys = [(c, k) for c in channels for k in range(j - half, j + half + 1)
+                    if (c, k) in self.psd]
+            pooled = int(sum(self.count[c, k] for c, k in keys))
+            if pooled >= QUIET_EXAMPLES:
+                break
+        if pooled < MIN_JUDGED_BLOCKS:
+            return None, pooled
+        from requant.dsp.analysis import tonal_fraction
+
+        total = self.psd[keys[0]].copy()
+        for key in keys[1:]:
+            total += self.psd[key]
+        return float(tonal_fraction(total[2:])), pooled
 
 
 class _Accumulator:
@@ -161,6 +323,7 @@ class _Accumulator:
         self.hist = np.zeros((ch, _HIST_BINS), dtype=np.int64)
         self.peak_meter = SkippingTruePeakMeter(ch)
         self.runs = SilentRuns(ch, silence_min_frames)
+        self.quiet = _QuietExamples(ch, self.block_len)
         try:
             self.loudness = LoudnessMeter(ch, sample_rate)
         except ValueError:  # a rate too low for K-weighting: no loudness
@@ -207,7 +370,10 @@ class _Accumulator:
         if k:
             b = blocks[:2 * self.ch * k].reshape(k, self.ch, 2)
             self._histogram(b[:, :, 0].T, b[:, :, 1].T != 0.0, self.block_len)
+            self.quiet.feed_blocks(x, scale, b, first_block=self.full_blocks,
+                                   first_frame=self.frames - n)
             self.full_blocks += k
+        self.quiet.keep_tail(x)
         if self._nonfinite() != before:
             return np.where(np.isfinite(x), x, 0).astype(x.dtype)
         return x
@@ -322,7 +488,8 @@ def _check_float(name, value, lo, hi):
 
 def inspect_file(path, *, block_frames=DEFAULT_BLOCK_FRAMES, clip_run=3,
                  dc_threshold_dbfs=-60.0, silent_threshold=0.5, floor_block_s=0.05,
-                 floor_percentile=10.0, silence_min_ms=DEFAULT_SILENCE_MIN_MS):
+                 floor_percentile=10.0, silence_min_ms=DEFAULT_SILENCE_MIN_MS,
+                 for_bits=DEFAULT_FOR_BITS):
     """Stream an audio file and report what it really holds.
 
     Parameters
@@ -347,6 +514,8 @@ def inspect_file(path, *, block_frames=DEFAULT_BLOCK_FRAMES, clip_run=3,
     silence_min_ms : float, ms, default 20
         Shortest run of exact zeros listed in ``silent_runs`` (as
         ``convert --silence-min``).
+    for_bits : int, 1..32, default 16
+        The word length the "which method" advice is for (``method_advice``).
 
     Returns
     -------
@@ -355,15 +524,20 @@ def inspect_file(path, *, block_frames=DEFAULT_BLOCK_FRAMES, clip_run=3,
         (e.g. "PCM_24"), ``sample_rate`` (Hz), ``channels`` (count),
         ``frames``, ``duration_s``, ``container_bits``, ``bits_used``,
         ``bits_kind`` ("pcm", "grid" or "float"), ``peak``, ``peak_dbfs``,
-        ``true_peak``, ``true_peak_dbtp``, ``rms_dbfs``, ``dc_offset``,
-        ``dc_offset_dbfs``, ``clipped_samples``, ``clip_runs``,
-        ``over_samples``, ``nonfinite_samples``, ``silent_fraction``,
+        ``true_peak``, ``true_peak_dbtp``, ``true_peak_meter``,
+        ``true_peak_meter_dbtp``, ``rms_dbfs``, ``dc_offset``,
+        ``dc_offset_dbfs``, ``dc_offset_polarity``, ``clipped_samples``,
+        ``clip_runs``, ``over_samples``, ``nonfinite_samples``,
+        ``silent_fraction``, ``quiet_level_dbfs``, ``quiet_kind``,
+        ``quiet_tonal_fraction``, ``quiet_blocks_judged``,
         ``noise_floor_dbfs``, ``silent_runs``, ``silent_run_count``,
         ``silent_run_frames``; ``per_channel``: a list with one dict of the
         same figures per channel (plus ``channel``, numbered from 1);
-        ``settings``: the options used and the derived ``clip_level`` and
-        ``floor_block_frames``; ``findings``: short codes of what was found;
-        ``recommendations``: one plain sentence per finding.
+        ``settings``: the options used and the derived ``clip_level``,
+        ``floor_block_frames``, ``gap_min_s`` and ``noise_tonal_max``;
+        ``findings``: short codes of what was found; ``recommendations``: one
+        plain sentence per finding; ``method_advice``: which method suits the
+        file at ``for_bits`` (or None).
         See the module docstring for how each figure is computed.
 
     Raises
@@ -385,6 +559,9 @@ def inspect_file(path, *, block_frames=DEFAULT_BLOCK_FRAMES, clip_run=3,
     _check_float("floor_block_s", floor_block_s, 1e-4, 60.0)
     _check_float("floor_percentile", floor_percentile, 0.0, 100.0)
     _check_float("silence_min_ms", silence_min_ms, 1e-3, MAX_SILENCE_MIN_MS)
+    _check_int("for_bits", for_bits, 1)
+    if for_bits > 32:
+        raise UsageError(f"for_bits={for_bits!r} must be at most 32")
 
     with open_input(path) as f:
         container, subtype = f.format, f.subtype
@@ -412,6 +589,8 @@ def inspect_file(path, *, block_frames=DEFAULT_BLOCK_FRAMES, clip_run=3,
             "silent_threshold": float(silent_threshold), "floor_block_s": float(floor_block_s),
             "floor_block_frames": acc.block_len, "floor_percentile": float(floor_percentile),
             "silence_min_ms": float(silence_min_ms), "silence_min_frames": acc.runs.min_frames,
+            "gap_min_s": GAP_MIN_S, "noise_tonal_max": NOISE_TONAL_MAX,
+            "for_bits": int(for_bits),
         },
     )
 
@@ -454,12 +633,34 @@ def _runs(acc, i):
     }
 
 
+def _polarity(mean):
+    """The sign of a DC offset in words (a dB level cannot carry it)."""
+    if not mean:
+        return None
+    return "positive" if mean > 0 else "negative"
+
+
+def _quiet(acc, hist, channels):
+    """The quietest passage: its level, whether it is noise, and so the noise floor."""
+    level = acc.floor_db(hist)
+    tonal, pooled = acc.quiet.judge(level, channels)
+    kind = None if tonal is None else ("noise" if tonal < NOISE_TONAL_MAX else "tonal")
+    return {
+        "quiet_level_dbfs": level,
+        "quiet_kind": kind,
+        "quiet_tonal_fraction": tonal,
+        "quiet_blocks_judged": pooled,
+        "noise_floor_dbfs": level if kind == "noise" else None,
+    }
+
+
 def _channel_figures(acc, c, frames, **bits_args):
     """One channel's figures (``_min`` and ``_max`` for the recommendations only)."""
     bits, kind = _bits_of_channel(acc, c, **bits_args)
     g = acc.field
     mean = float(g("sum1")[c] / frames) if frames else None
-    tp = float(acc.peak_meter.true_peak[c])
+    meter = float(acc.peak_meter.true_peak[c])
+    tp = max(meter, float(g("peak")[c]))
     return {
         "channel": c + 1,
         "bits_used": bits,
@@ -468,15 +669,18 @@ def _channel_figures(acc, c, frames, **bits_args):
         "peak_dbfs": _db20(g("peak")[c]),
         "true_peak": tp,
         "true_peak_dbtp": _db20(tp),
+        "true_peak_meter": meter,
+        "true_peak_meter_dbtp": _db20(meter),
         "rms_dbfs": _power_dbfs(g("sum2")[c] / frames) if frames else None,
         "dc_offset": mean,
         "dc_offset_dbfs": _db20(mean) if frames else None,
+        "dc_offset_polarity": _polarity(mean),
         "clipped_samples": int(g("clipped")[c]),
         "clip_runs": int(g("clip_runs")[c]),
         "over_samples": int(g("overs")[c]),
         "nonfinite_samples": int(g("nonfinite")[c]),
         "silent_fraction": float(g("silent")[c] / frames) if frames else None,
-        "noise_floor_dbfs": acc.floor_db(acc.hist[c]),
+        **_quiet(acc, acc.hist[c], [c]),
         **_runs(acc, c),
         "_min": float(g("vmin")[c]),
         "_max": float(g("vmax")[c]),
@@ -494,6 +698,7 @@ def _build_report(acc, *, path, container, subtype, rate, container_bits, pcm_bi
     total = frames * ch
     dc = max((p["dc_offset"] for p in per), key=abs) if frames and per else None
     tp_all = max((p["true_peak"] for p in per), default=0.0)
+    meter_all = max((p["true_peak_meter"] for p in per), default=0.0)
     with np.errstate(over="ignore", invalid="ignore"):
         sum2 = float(g("sum2").sum())
     report = {
@@ -511,15 +716,18 @@ def _build_report(acc, *, path, container, subtype, rate, container_bits, pcm_bi
         "peak_dbfs": _db20(g("peak").max()) if ch else None,
         "true_peak": tp_all,
         "true_peak_dbtp": _db20(tp_all),
+        "true_peak_meter": meter_all,
+        "true_peak_meter_dbtp": _db20(meter_all),
         "rms_dbfs": _power_dbfs(sum2 / total) if total else None,
         "dc_offset": dc,
         "dc_offset_dbfs": _db20(dc) if dc is not None else None,
+        "dc_offset_polarity": _polarity(dc),
         "clipped_samples": int(g("clipped").sum()),
         "clip_runs": int(g("clip_runs").sum()),
         "over_samples": int(g("overs").sum()),
         "nonfinite_samples": int(g("nonfinite").sum()),
         "silent_fraction": float(g("silent").sum() / total) if total else None,
-        "noise_floor_dbfs": acc.floor_db(acc.hist.sum(axis=0)),
+        **_quiet(acc, acc.hist.sum(axis=0), list(range(ch))),
         **_runs(acc, ch),
         "loudness": _loudness(acc),
         "per_channel": per,
@@ -530,6 +738,7 @@ def _build_report(acc, *, path, container, subtype, rate, container_bits, pcm_bi
         del p["_min"], p["_max"]
     report["findings"] = findings
     report["recommendations"] = sentences
+    report["method_advice"] = _method_advice(report)
     return report
 
 
@@ -555,11 +764,8 @@ def _recommend(r):
     if r["silent_fraction"] == 1.0:
         out.append(("all-silent", "The file holds only digital silence (every sample is 0)."))
         return [k for k, _ in out], [t for _, t in out]
-    if r["silent_fraction"] >= s["silent_threshold"]:
-        out.append(("mostly-silent",
-                    f"{100 * r['silent_fraction']:.0f} % of the samples are digital silence "
-                    "(exactly 0): check for missing audio or long padding."))
     b, cb, kind = r["bits_used"], r["container_bits"], r["bits_kind"]
+    out += _silence_findings(r)
     if not b:
         pass  # no nonzero finite sample: nothing to say about the word length
     elif kind == "pcm" and b < cb:
@@ -609,6 +815,77 @@ def _recommend(r):
                     f"DC offset at or above {s['dc_threshold_dbfs']:.0f} dBFS on {where}: "
                     "remove it with a high-pass filter before requantizing."))
     return [k for k, _ in out], [t for _, t in out]
+
+
+def _silence_findings(r):
+    """Digital silence (runs of exact zeros) told from a quiet signal whose codes are
+    mostly 0 (scattered zeros), and runs of zeros inside the audio (possible dropouts)."""
+    s, per = r["settings"], r["per_channel"]
+    ms = s["silence_min_ms"]
+    run_share = sum(p["silent_run_frames"] for p in per) / (r["frames"] * r["channels"])
+    out = []
+    if run_share >= s["silent_threshold"]:
+        out.append(("mostly-silent",
+                    f"{100 * run_share:.0f} % of the samples lie in runs of exact zeros of "
+                    f"{ms:g} ms or more (digital silence): check for missing audio or long "
+                    "padding."))
+    elif r["silent_fraction"] >= s["silent_threshold"]:
+        b = r["bits_used"]
+        codes = ""
+        if b and r["bits_kind"] in ("pcm", "grid"):
+            peak_lsb = r["peak"] * 2.0 ** (b - 1)
+            codes = (f"; the codes stay within {peak_lsb:.0f} LSB of 0 at {b} bits, as dither "
+                     "noise makes them" if peak_lsb <= DITHER_PEAK_MAX_LSB else
+                     f"; the peak is {peak_lsb:.0f} LSB at {b} bits")
+        out.append(("scattered-zeros",
+                    f"{100 * r['silent_fraction']:.0f} % of the samples are exactly 0 but "
+                    f"scattered ({100 * run_share:.1f} % in runs of {ms:g} ms or more){codes}: "
+                    "a quiet signal at a short word length, not missing audio."))
+    gaps = _gaps(r)
+    if gaps:
+        shown = "; ".join(f"{g['duration_s']:.3f} s at {g['start_s']:.3f} s ({g['where']})"
+                          for g in gaps[:3])
+        more = f"; and {len(gaps) - 3} more" if len(gaps) > 3 else ""
+        out.append(("silent-gap",
+                    f"Exact zeros inside the audio for {s['gap_min_s']:g} s or more: {shown}"
+                    f"{more}. Check for missing audio (a dropout) unless it is a pause."))
+    return out
+
+
+def _gaps(r):
+    """Runs of exact zeros of at least ``gap_min_s`` that neither start nor end the file:
+    in every channel, or in one channel while another holds sound."""
+    frames, rate = r["frames"], r["sample_rate"]
+    least = r["settings"]["gap_min_s"] * rate
+
+    def inside(run):
+        return (run["start_frame"] > 0 and run["start_frame"] + run["frames"] < frames
+                and run["frames"] >= least)
+
+    gaps = [dict(run, where="every channel") for run in r["silent_runs"] if inside(run)]
+    if r["channels"] > 1:
+        every = [(g["start_frame"], g["start_frame"] + g["frames"]) for g in gaps]
+        for p in r["per_channel"]:
+            for run in p["silent_runs"]:
+                a, e = run["start_frame"], run["start_frame"] + run["frames"]
+                if inside(run) and not any(lo <= a and e <= hi for lo, hi in every):
+                    gaps.append(dict(run, where=f"ch {p['channel']} only"))
+    return sorted(gaps, key=lambda g: g["start_frame"])
+
+
+def _method_advice(r):
+    """The "which method" figures and paragraph at ``settings.for_bits``; None for a file
+    with no sound."""
+    from requant.dsp.audibility import advise
+    from requant.report.advice import advice_paragraph
+
+    if r["frames"] == 0 or r["silent_fraction"] == 1.0 or not r["sample_rate"]:
+        return None
+    exact = {"lossless-reduction", "full-word-length"} & set(r["findings"])
+    a = advise(r["settings"]["for_bits"], r["sample_rate"], quiet_dbfs=r["quiet_level_dbfs"],
+               quiet_is_noise={"noise": True, "tonal": False}.get(r["quiet_kind"]),
+               bits_in_use=r["bits_used"] if exact else None)
+    return {**a.to_dict(), "text": advice_paragraph(a)}
 
 
 def _fmt_loudness(loud):
@@ -681,11 +958,13 @@ def format_inspection(report):
         ("Sample peak (dBFS)", "peak_dbfs", "+.2f"),
         ("True peak (dBTP)", "true_peak_dbtp", "+.2f"),
         ("RMS (dBFS, AES17)", "rms_dbfs", "+.2f"),
-        ("DC offset (dBFS)", "dc_offset_dbfs", "+.1f"),
+        ("DC offset (% of FS)", "dc_offset", "signed-pct"),
+        ("DC offset level (dBFS)", "dc_offset_dbfs", "+.1f"),
         ("Clipped samples", "clipped_samples", "d"),
         ("Samples over full scale", "over_samples", "d"),
         ("Digital silence (%)", "silent_fraction", "pct"),
-        ("Noise floor (dBFS)", "noise_floor_dbfs", "+.1f"),
+        ("Quietest passage (dBFS)", "quiet_level_dbfs", "+.1f"),
+        ("  which is", "quiet_kind", "s"),
     ]
     heads = [f"ch {p['channel']}" for p in per] + (["all"] if len(per) > 1 else [])
     label_w = max(len(label) for label, _, _ in rows) + 2
@@ -694,6 +973,8 @@ def format_inspection(report):
         values = [p[key] for p in per] + ([r[key]] if len(per) > 1 else [])
         if fmt == "pct":
             cells = [num(None if v is None else 100.0 * v, ".1f") for v in values]
+        elif fmt == "signed-pct":  # the mean with its sign: the dB level below has none
+            cells = [num(None if v is None else 100.0 * v, "+.4f") for v in values]
         else:
             cells = [num(v, fmt) for v in values]
         table.append(f"{label:<{label_w}}" + "".join(f"{c:>10}" for c in cells))
@@ -701,12 +982,51 @@ def format_inspection(report):
     s = r["settings"]
     lines += [
         "",
+        *_true_peak_note(r),
         f"Clipping: runs of {s['clip_run']} or more samples at full scale.",
-        f"Noise floor: {s['floor_percentile']:g}th percentile of {1000 * s['floor_block_s']:g} ms "
-        "block RMS levels, silent blocks excluded.",
+        f"Quietest passage: {s['floor_percentile']:g}th percentile of "
+        f"{1000 * s['floor_block_s']:g} ms block RMS levels, digital silence excluded. It is "
+        f"'noise' (the noise floor) when under {100 * s['noise_tonal_max']:g} % of its power "
+        "stands in spectral lines, else 'tonal' (music, tones or hum).",
+        _noise_floor_line(r),
         *_format_runs(r),
         "",
         "Recommendations" if r["recommendations"] else "Recommendations: none",
     ]
     lines += [f"  - {text}" for text in r["recommendations"]]
+    advice = r.get("method_advice")
+    if advice is not None:
+        lines += ["", f"Which method at {advice['bits']} bits (--for-bits)"]
+        lines += textwrap.wrap(advice["text"], width=96, initial_indent="  ",
+                               subsequent_indent="  ")
     return "\n".join(lines)
+
+
+def _true_peak_note(r):
+    """What the true-peak row shows, and where the meter read below the sample peak."""
+    low = [p for p in r["per_channel"]
+           if p["true_peak_meter"] < p["peak"] and p["peak"] > 0.0]
+    note = ("True peak: the larger of the sample peak and the ITU-R BS.1770-4 (4x oversampled) "
+            "reading.")
+    if not low:
+        return [note]
+    where = ", ".join(f"ch {p['channel']} {_fmt_db(p['true_peak_meter_dbtp'], 'dBTP')} against "
+                      f"{_fmt_db(p['peak_dbfs'], 'dBFS')}" for p in low)
+    return [note, f"  The reading is below the sample peak here ({where}): the standard's "
+                  "interpolation filter does not pass samples through unchanged (its phase 0 "
+                  "centre tap is 0.972, -0.25 dB for a lone sample), so it reads a little low "
+                  "on sparse or few-bit material."]
+
+
+def _noise_floor_line(r):
+    kind, level = r["quiet_kind"], r["quiet_level_dbfs"]
+    if level is None:
+        return "Noise floor: n/a (no sound)."
+    if kind == "noise":
+        return (f"Noise floor: {level:+.1f} dBFS (the quietest passage is noise; "
+                f"{100 * r['quiet_tonal_fraction']:.1f} % of its power in spectral lines).")
+    if kind == "tonal":
+        return (f"Noise floor: not shown. The quietest passage ({level:+.1f} dBFS) holds "
+                f"music or tones ({100 * r['quiet_tonal_fraction']:.0f} % of its power in "
+                "spectral lines), so the noise lies below it.")
+    return "Noise floor: not judged (the file is shorter than one block)."

@@ -299,12 +299,16 @@ def test_silent_fraction(tmp_path):
     v = rng.integers(1, 1000, size=(1000, 2)) * rng.choice([-1, 1], size=(1000, 2))
     v[:300, 0] = 0
     v[100:1000, 1] = 0
-    r = inspect_file(write(tmp_path, "x.wav", v.astype(np.int16), "PCM_16"))
+    # runs of 6.25 and 18.75 ms: listed (so digital silence) from a 5 ms minimum
+    r = inspect_file(write(tmp_path, "x.wav", v.astype(np.int16), "PCM_16"), silence_min_ms=5)
     assert [p["silent_fraction"] for p in r["per_channel"]] == [0.3, 0.9]
     assert r["silent_fraction"] == 0.6
-    assert "mostly-silent" in r["findings"]  # 60 % >= 50 % (our threshold)
-    r = inspect_file(r["path"], silent_threshold=0.7)
-    assert "mostly-silent" not in r["findings"]
+    assert "mostly-silent" in r["findings"]  # 60 % in runs >= 50 % (our threshold)
+    r = inspect_file(r["path"], silent_threshold=0.7, silence_min_ms=5)
+    assert not {"mostly-silent", "scattered-zeros"} & set(r["findings"])
+    # under the default 20 ms minimum the same zeros are no runs: scattered, not silence
+    r = inspect_file(r["path"])
+    assert "mostly-silent" not in r["findings"] and "scattered-zeros" in r["findings"]
 
 
 def test_noise_floor_is_quiet_passage_level(tmp_path):
@@ -318,8 +322,11 @@ def test_noise_floor_is_quiet_passage_level(tmp_path):
     v = np.concatenate([loud, silence, quiet])
     r = inspect_file(write(tmp_path, "x.wav", v.astype(np.int16), "PCM_16"))
     expected = 20 * math.log10(a / 32768) + 10 * math.log10(2)
-    assert r["noise_floor_dbfs"] == pytest.approx(expected, abs=0.01)  # 0.01 dB bins
+    assert r["quiet_level_dbfs"] == pytest.approx(expected, abs=0.01)  # 0.01 dB bins
     assert r["settings"]["floor_block_frames"] == 2400
+    # a square wave is lines (its odd harmonics), no noise: no noise floor is claimed
+    assert r["quiet_kind"] == "tonal" and r["quiet_tonal_fraction"] > 0.9
+    assert r["noise_floor_dbfs"] is None
 
 
 # --------------------------------------------------------------------------
@@ -545,3 +552,230 @@ def test_side_thread_runs_in_order_and_reraises():
         with pytest.raises(ValueError):
             side.join()
     side.close()
+
+
+# --------------------------------------------------------------------------
+# Issue 20: the quietest passage, digital silence against dither, true peak, DC sign
+
+
+def _loud_then(quiet, seconds=2.0):
+    """Two seconds of a loud 997 Hz sine (float), then ``quiet``."""
+    n = np.arange(int(seconds * RATE))
+    return np.concatenate([0.5 * np.sin(2 * np.pi * 997 * n / RATE), quiet])
+
+
+def test_quietest_passage_of_noise_is_the_noise_floor(tmp_path):
+    # Gaussian noise of RMS sigma reads 10 log10(2 sigma^2) dBFS (AES17, closed form); the 10th
+    # percentile of its 50 ms block levels lies 1.28 standard deviations (about 0.16 dB for
+    # 2400 samples: sqrt(2/2400) relative power) below that.
+    sigma = 10 ** (-73 / 20)
+    noise = np.random.default_rng(20).normal(0.0, sigma, 2 * RATE)
+    r = inspect_file(write(tmp_path, "n.wav", _loud_then(noise), "FLOAT"))
+    expected = 10 * math.log10(2 * sigma**2)
+    assert r["quiet_kind"] == "noise" and r["quiet_tonal_fraction"] < 0.01
+    assert r["quiet_level_dbfs"] == pytest.approx(expected - 0.16, abs=0.15)
+    assert r["noise_floor_dbfs"] == r["quiet_level_dbfs"]
+    assert r["per_channel"][0]["noise_floor_dbfs"] == r["noise_floor_dbfs"]
+    assert f"Noise floor: {r['noise_floor_dbfs']:+.1f} dBFS (the quietest passage is noise" in \
+        format_inspection(r)
+
+
+def test_quietest_passage_of_music_is_not_called_noise(tmp_path):
+    # A quiet phrase of notes (a 110 Hz tone with six harmonics, then 165 Hz, each decaying)
+    # at about -64 dBFS over 16-bit TPDF noise (-93.3 dBFS): music throughout, no noise floor.
+    rng = np.random.default_rng(21)
+    n = np.arange(RATE // 2)
+    notes = []
+    for f0 in (110.0, 165.0, 110.0, 165.0):
+        tone = sum(0.6**k * np.sin(2 * np.pi * f0 * (k + 1) * n / RATE) for k in range(7))
+        notes.append(tone * np.exp(-n / RATE / 0.8))
+    phrase = 10 ** (-62 / 20) * np.concatenate(notes) / 2.0
+    x = _loud_then(phrase)
+    lsb = 2.0**-15
+    codes = np.floor(x / lsb + 0.5 + rng.uniform(-0.5, 0.5, x.size)
+                     + rng.uniform(-0.5, 0.5, x.size)).astype(np.int16)
+    r = inspect_file(write(tmp_path, "m.wav", codes, "PCM_16"))
+    assert r["quiet_kind"] == "tonal" and r["quiet_tonal_fraction"] > 0.5
+    assert r["noise_floor_dbfs"] is None and r["quiet_level_dbfs"] < -60.0
+    text = format_inspection(r)
+    assert "Quietest passage (dBFS)" in text and "Noise floor (dBFS)" not in text
+    assert "holds music or tones" in text
+    # at 12 bits flat TPDF (-69.2 dBFS) lies under the phrase but is audible played loud
+    a = inspect_file(r["path"], for_bits=12)["method_advice"]
+    assert (a["choice"], a["reason"], a["quiet_is_noise"]) == ("hearing", "audible", False)
+    assert "(music or tones, not noise)" in a["text"] and "--shaping hearing" in a["text"]
+
+
+def test_noise_shaped_dither_is_noise(tmp_path):
+    # Noise through the hearing shaper's NTF (scipy.signal.lfilter as the reference filter):
+    # a steep but smooth spectrum, no lines.
+    from scipy.signal import lfilter
+
+    from requant.dsp.shaping import design_hearing, ntf_taps
+
+    white = np.random.default_rng(22).uniform(-1, 1, 3 * 44100) * 2.0**-15
+    shaped = lfilter(ntf_taps(design_hearing(44100)), [1.0], white)
+    r = inspect_file(write(tmp_path, "s.wav", shaped.astype(np.float32), "FLOAT", rate=44100))
+    assert r["quiet_kind"] == "noise" and r["noise_floor_dbfs"] is not None
+
+
+def test_too_short_to_judge(tmp_path):
+    # two 50 ms blocks: fewer than MIN_JUDGED_BLOCKS, so the passage is not judged
+    x = np.random.default_rng(23).normal(0, 0.01, 2 * 2400)
+    r = inspect_file(write(tmp_path, "t.wav", x.astype(np.float32), "FLOAT"))
+    assert r["quiet_level_dbfs"] is not None and r["quiet_kind"] is None
+    assert r["noise_floor_dbfs"] is None
+    assert "not judged" in format_inspection(r)
+
+
+def _dithered_8_bit_of_quiet_sine(tmp_path):
+    """A -60 dBFS 997 Hz sine (4 s) requantized to 8 bits with TPDF by requant itself."""
+    from requant.convert import Outputs, convert_file
+    from requant.recipe import Recipe
+
+    n = np.arange(4 * RATE)
+    src = write(tmp_path, "quiet.wav",
+                (10 ** (-60 / 20) * np.sin(2 * np.pi * 997 * n / RATE)).astype(np.float32),
+                "FLOAT")
+    out = tmp_path / "quiet8.wav"
+    convert_file(src, out, Recipe.from_dict({"bits": 8, "dither": "tpdf", "seed": 4}),
+                 outputs=Outputs())
+    return out
+
+
+def test_dithered_few_bit_output_is_not_missing_audio(tmp_path):
+    # TPDF on a signal far below 1 LSB: codes 0 with probability about 3/4 and +-1 otherwise
+    # (REFERENCES.md section 2: on-grid input gives -1, 0, +1 with 1/8, 3/4, 1/8), so most
+    # samples are 0 but no run of zeros reaches 20 ms (960 samples: 0.75^960 ~ 1e-120).
+    r = inspect_file(_dithered_8_bit_of_quiet_sine(tmp_path))
+    assert r["silent_fraction"] == pytest.approx(0.75, abs=0.03)
+    assert r["silent_run_count"] == 0
+    assert "mostly-silent" not in r["findings"] and "silent-gap" not in r["findings"]
+    assert "scattered-zeros" in r["findings"]
+    text = " ".join(r["recommendations"])
+    assert "not missing audio" in text and "as dither noise makes them" in text
+    assert "check for missing audio" not in text.lower()
+    assert r["quiet_kind"] == "noise"  # the dither noise (-45 dBFS) covers the sine
+
+
+@pytest.mark.parametrize("where", ["every", "one"])
+def test_a_dropout_of_exact_zeros_is_missing_audio(tmp_path, where):
+    rng = np.random.default_rng(24)
+    v = rng.integers(-3000, 3000, size=(10 * RATE, 2))
+    cols = slice(None) if where == "every" else slice(1, 2)
+    v[4 * RATE:6 * RATE, cols] = 0  # a 2 s dropout in the middle
+    r = inspect_file(write(tmp_path, "d.wav", v.astype(np.int16), "PCM_16"))
+    assert "silent-gap" in r["findings"] and "mostly-silent" not in r["findings"]
+    text = " ".join(r["recommendations"])
+    assert "2.000 s at 4.000 s" in text and "Check for missing audio" in text
+    assert ("(every channel)" if where == "every" else "(ch 2 only)") in text
+
+
+def test_silence_at_the_ends_is_no_dropout(tmp_path):
+    v = np.random.default_rng(25).integers(-3000, 3000, size=4 * RATE)
+    v[:RATE] = 0
+    v[-RATE:] = 0
+    r = inspect_file(write(tmp_path, "p.wav", v.astype(np.int16), "PCM_16"))
+    assert r["silent_run_count"] == 2 and "silent-gap" not in r["findings"]
+
+
+def test_true_peak_is_never_below_the_sample_peak(tmp_path):
+    # A lone 4-bit code among zeros: the ITU-R BS.1770-4 interpolator's largest tap is phase
+    # 0's centre tap 0.9721679687500 (REFERENCES.md section 5), so the meter reads exactly
+    # 0.97217 times the sample (-0.245 dB); the true peak shown is the sample peak.
+    v = np.zeros(RATE, dtype=np.int64)
+    v[RATE // 2] = 7
+    r = inspect_file(write(tmp_path, "p.wav", codes_left_justified(v, 4), "PCM_16"))
+    peak = 7 / 8
+    assert r["peak"] == peak and r["true_peak"] == peak
+    assert r["true_peak_meter"] == pytest.approx(0.97216796875 * peak, rel=1e-12)
+    assert r["true_peak_meter_dbtp"] == pytest.approx(r["peak_dbfs"] - 0.2447, abs=1e-3)
+    assert r["per_channel"][0]["true_peak_dbtp"] == r["peak_dbfs"]
+    text = format_inspection(r)
+    assert "reading is below the sample peak here (ch 1 -1.41 dBTP against -1.16 dBFS)" in text
+    # where the meter reads above the samples, its reading stands
+    n = np.arange(8000)
+    x = np.round(16384 * np.sin(np.pi / 2 * n + np.pi / 4)).astype(np.int16)
+    r = inspect_file(write(tmp_path, "s.wav", x, "PCM_16"))
+    assert r["true_peak"] == r["true_peak_meter"] > r["peak"]
+    assert "reading is below" not in format_inspection(r)
+
+
+def test_dc_offset_keeps_its_sign(tmp_path):
+    # mean -100 codes: -100/32768 = -0.3052 % of full scale, level 20 log10(100/32768)
+    s = np.random.default_rng(26).integers(-3000, 3000, size=4000)
+    v = np.concatenate([s, -s]) - 100
+    r = inspect_file(write(tmp_path, "dc.wav", v.astype(np.int16), "PCM_16"))
+    assert r["dc_offset"] == pytest.approx(-100 / 32768, rel=1e-12)
+    assert r["dc_offset_polarity"] == "negative"
+    assert r["per_channel"][0]["dc_offset_polarity"] == "negative"
+    text = format_inspection(r)
+    row = next(line for line in text.splitlines() if line.startswith("DC offset (% of FS)"))
+    assert row.split()[-1] == "-0.3052"
+    assert "mean -0.003052" in " ".join(r["recommendations"])
+
+
+def test_method_advice_follows_the_file(tmp_path):
+    # 16 bits of loud noise in a 24-bit file: nothing to add at 16 bits; at 12 bits the file's
+    # own noise (about -7 dBFS) buries flat TPDF (-69.2 dBFS): plain TPDF
+    from requant.dsp.audibility import floor_rise_db, tpdf_noise_dbfs
+
+    path, _ = _fixture("16-in-24", tmp_path)
+    r = inspect_file(path)
+    assert r["method_advice"]["reason"] == "lossless"
+    assert "no method needed" in r["method_advice"]["text"]
+    r = inspect_file(path, for_bits=12)
+    a = r["method_advice"]
+    assert a["bits"] == 12 and a["choice"] == "tpdf" and a["reason"] == "own-noise"
+    assert a["tpdf_dbfs"] == pytest.approx(tpdf_noise_dbfs(12))
+    assert a["quiet_dbfs"] == r["quiet_level_dbfs"] and a["quiet_is_noise"] is True
+    assert a["floor_rise_tpdf_db"] == floor_rise_db(a["quiet_dbfs"], a["tpdf_dbfs"])
+    text = format_inspection(r)
+    assert "Which method at 12 bits" in text and "Use plain TPDF" in a["text"]
+    assert " ".join(a["text"].split()[:6]) in " ".join(text.split())
+    with pytest.raises(UsageError, match="for_bits"):
+        inspect_file(path, for_bits=33)
+
+
+def test_cli_inspect_shows_what_issue_20_asked(tmp_path):
+    # What the user sees: dither is not missing audio, a dropout is; the quietest passage is
+    # named; the DC offset keeps its sign; the true peak note; the advice at --for-bits.
+    import json
+
+    from helpers import run_cli
+
+    code, out, err = run_cli("inspect", _dithered_8_bit_of_quiet_sine(tmp_path))
+    assert code == 0, err
+    assert "not missing audio" in out and "check for missing audio" not in out.lower()
+    assert "Quietest passage (dBFS)" in out and "Noise floor: " in out
+
+    rng = np.random.default_rng(27)
+    v = rng.integers(-3000, 3000, size=(6 * RATE, 2)) - 100
+    v[2 * RATE:4 * RATE] = 0
+    v[RATE, 1] = -32767 - 1  # a lone full-scale sample: the meter reads 0.245 dB under it
+    path = write(tmp_path, "d.wav", v.astype(np.int16), "PCM_16")
+    facts = tmp_path / "facts.json"
+    code, out, err = run_cli("inspect", path, "--for-bits", "12", "--json", facts)
+    assert code == 0, err
+    assert "Check for missing audio (a dropout)" in " ".join(out.split())
+    assert "2.000 s at 2.000 s (every channel)" in out
+    row = next(line for line in out.splitlines() if line.startswith("DC offset (% of FS)"))
+    assert all(cell.startswith("-") for cell in row.split()[-3:])
+    assert "reading is below the sample peak here (ch 2" in out
+    assert "Which method at 12 bits (--for-bits)" in out
+    data = json.loads(facts.read_text())
+    assert data["dc_offset_polarity"] == "negative" and data["dc_offset"] < 0
+    assert data["true_peak"] == 1.0 and data["true_peak_meter"] < 1.0
+    assert data["method_advice"]["bits"] == 12 and data["settings"]["for_bits"] == 12
+    assert "silent-gap" in data["findings"]
+
+
+def test_cli_for_bits_default_is_the_library_default():
+    # STYLE.md: CLI defaults never drift from the library's
+    import inspect as pyinspect
+
+    from requant.cli.info import inspect_command
+    from requant.inspection import DEFAULT_FOR_BITS
+
+    assert pyinspect.signature(inspect_command).parameters["for_bits"].default == \
+        DEFAULT_FOR_BITS == pyinspect.signature(inspect_file).parameters["for_bits"].default

@@ -17,9 +17,13 @@ def inspect_command(
     json_path: Annotated[Path | None, typer.Option(
         "--json", help="Also write the findings as JSON.")] = None,
     silence_min: SilenceMin = DEFAULTS.silence_min_ms,
+    for_bits: Annotated[int, typer.Option(
+        "--for-bits", min=1, max=32,
+        help="Word length the 'which method' advice is for.")] = 16,
     overwrite: Overwrite = False,
 ):
-    """Say what a file holds: bits in use, peaks, loudness, DC, clipping, silence, noise floor."""
+    """Say what a file holds: bits in use, peaks, loudness, DC, clipping, silence, the
+    quietest passage (and the noise floor when it is noise), and which method suits it."""
     from requant.audio_io.atomic import check_outputs
     from requant.audio_io.reader import open_input
     from requant.audio_io.writers import write_json_atomic
@@ -28,7 +32,7 @@ def inspect_command(
     if json_path is not None:
         check_outputs([file], [json_path], overwrite=overwrite)
     open_input(file).close()  # one clear line for unreadable files
-    rep = inspect_file(file, silence_min_ms=silence_min)
+    rep = inspect_file(file, silence_min_ms=silence_min, for_bits=for_bits)
     print(format_inspection(rep))
     if json_path is not None:
         write_json_atomic(rep, json_path, warnings_key="recommendations")
