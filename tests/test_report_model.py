@@ -34,12 +34,13 @@ OUTPUT = ["path", "format", "subtype", "bits", "container_bits", "passthrough"]
 FIGURES = ["snr_db", "error_power_lsb2", "error_mean_lsb", "error_rms_dbfs", "signal_rms_dbfs",
            "error_peak_dbfs", "clipped_samples"]
 MEASURED = FIGURES + ["over_full_scale_samples", "shaping_overloads", "silent_frames"]
-MEASURED_ANALYSED = MEASURED + ["a_weighted_noise_dbfs", "itu468_noise_dbfs", "tonal_fraction",
+MEASURED_ANALYSED = MEASURED + ["a_weighted_noise_dbfs", "itu468_noise_dbfs",
+                                "threshold_weighted_noise_dbfs", "tonal_fraction",
                                 "correlation_fraction", "correlated_error_fraction",
                                 "input_true_peak_dbtp", "output_true_peak_dbtp",
                                 "signal_correlated"]
 PREDICTED = ["snr_db", "error_power_lsb2", "error_rms_dbfs"]
-WEIGHTED = ["a_weighted_noise_dbfs", "itu468_noise_dbfs"]
+WEIGHTED = ["a_weighted_noise_dbfs", "itu468_noise_dbfs", "threshold_weighted_noise_dbfs"]
 CHANNEL = FIGURES + ["silent_frames"]
 CHANNEL_ANALYSED = CHANNEL + WEIGHTED + ["correlated_error_fraction", "input_dc_offset",
                                          "output_dc_offset", "input_true_peak_dbtp",

@@ -8,8 +8,9 @@ block by block and keeps only fixed-size state:
   At most :data:`MAX_SEGMENTS` segments per channel are analysed, spread
   evenly over the file, so long files cost no more than short ones. The
   weighted noise figures integrate this PSD against the A-weighting (IEC
-  61672-1) and the ITU-R BS.468-4 curve (used here with an RMS detector,
-  not the standard's quasi-peak one).
+  61672-1), the ITU-R BS.468-4 curve (used here with an RMS detector,
+  not the standard's quasi-peak one) and the inverse of Terhardt's hearing
+  threshold (the weighting the ``hearing`` shaper minimises).
 * **Signal-correlated error** -- two figures, the larger of which is
   reported as ``correlated_error_fraction``:
 
@@ -516,7 +517,8 @@ class ErrorAnalyzer:
     def _weights(self, freqs):
         from requant.dsp.weighting import weighting_power
 
-        return {"a": weighting_power("a", freqs), "itu468": weighting_power("itu468", freqs)}
+        return {"a": weighting_power("a", freqs), "itu468": weighting_power("itu468", freqs),
+                "threshold": weighting_power("threshold", freqs)}
 
     def predicted_psd(self, freqs):
         """Predicted one-sided error PSD (full scale²/Hz), dither noise only.
@@ -533,7 +535,7 @@ class ErrorAnalyzer:
         return 2.0 * sigma2 / self.rate * ntf2
 
     def predicted_weighted(self):
-        """Predicted weighted noise powers (full scale²) for 'a' and 'itu468'."""
+        """Predicted weighted noise powers (full scale²) for 'a', 'itu468' and 'threshold'."""
         from requant.dsp.weighting import band_mean, frequency_grid
 
         grid = frequency_grid(self.rate, points=8192)
@@ -635,6 +637,7 @@ class ErrorAnalyzer:
         out["measured"] = {
             "a_weighted_noise_dbfs": meas_w.get("a"),
             "itu468_noise_dbfs": meas_w.get("itu468"),
+            "threshold_weighted_noise_dbfs": meas_w.get("threshold"),
             "tonal_fraction": tonal,
             "correlation_fraction": rho2,
             "correlated_error_fraction": corr,
@@ -642,6 +645,7 @@ class ErrorAnalyzer:
         out["predicted"] = {
             "a_weighted_noise_dbfs": _db(pw["a"]),
             "itu468_noise_dbfs": _db(pw["itu468"]),
+            "threshold_weighted_noise_dbfs": _db(pw["threshold"]),
         }
         out["channels"] = per_channel
         if self._tp is not None:

@@ -34,6 +34,8 @@ from requant.report.model import (
 
 __all__ = ["build_report", "Conversion", "settings_block", "passthrough_reason"]
 
+#: The weighted noise figures the analysis measures and predicts.
+_WEIGHTED_KEYS = ("a_weighted_noise_dbfs", "itu468_noise_dbfs", "threshold_weighted_noise_dbfs")
 _ANALYSIS_KEYS = ("method", "spectrum", "quietest_passage", "histogram", "true_peak", "loudness",
                   "dc_offset")
 
@@ -43,10 +45,10 @@ def _fold_analysis(res, total, pred_total, channels, *, passthrough):
 
     Returns the analysis' warnings and its :class:`Analysis` section.
     """
-    for key in ("a_weighted_noise_dbfs", "itu468_noise_dbfs", "tonal_fraction",
-                "correlation_fraction", "correlated_error_fraction"):
+    for key in _WEIGHTED_KEYS + ("tonal_fraction", "correlation_fraction",
+                                 "correlated_error_fraction"):
         total[key] = res["measured"][key]
-    for key in ("a_weighted_noise_dbfs", "itu468_noise_dbfs"):
+    for key in _WEIGHTED_KEYS:
         pred_total[key] = res["predicted"][key]
     tp = res.get("true_peak")
     if tp is not None:
@@ -56,17 +58,18 @@ def _fold_analysis(res, total, pred_total, channels, *, passthrough):
         meas, pred = channels[c]
         meas["a_weighted_noise_dbfs"] = row["a"]
         meas["itu468_noise_dbfs"] = row["itu468"]
+        meas["threshold_weighted_noise_dbfs"] = row["threshold"]
         meas["correlated_error_fraction"] = max(row["tonal_fraction"], row["correlation_fraction"])
         meas["input_dc_offset"] = res["dc_offset"]["input"][c]
         meas["output_dc_offset"] = res["dc_offset"]["output"][c]
         if tp is not None:
             meas["input_true_peak_dbtp"] = tp["input_dbtp_per_channel"][c]
             meas["output_true_peak_dbtp"] = tp["output_dbtp_per_channel"][c]
-        pred["a_weighted_noise_dbfs"] = res["predicted"]["a_weighted_noise_dbfs"]
-        pred["itu468_noise_dbfs"] = res["predicted"]["itu468_noise_dbfs"]
+        for key in _WEIGHTED_KEYS:
+            pred[key] = res["predicted"][key]
     if passthrough:
         # written unchanged: no error, nothing to predict, nothing to warn about
-        for key in ("a_weighted_noise_dbfs", "itu468_noise_dbfs"):
+        for key in _WEIGHTED_KEYS:
             pred_total[key] = None
             for _, pred in channels:
                 pred[key] = None
@@ -183,7 +186,7 @@ def _silence_note(channels, *, frames, rate, min_ms):
 def _scale_weighted(figures, share):
     """Weighted predictions (from the analysis, for every sample) scaled to the requantized
     share of the samples, in place."""
-    for key in ("a_weighted_noise_dbfs", "itu468_noise_dbfs"):
+    for key in _WEIGHTED_KEYS:
         value = figures.get(key)
         if value is not None:
             figures[key] = value + 10.0 * math.log10(share) if share > 0 else None

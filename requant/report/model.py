@@ -346,6 +346,10 @@ class MeasuredFigures(ErrorFigures):
         Error weighted by the A-curve (IEC 61672-1).
     itu468_noise_dbfs : float or None, dBFS
         Error weighted by the ITU-R BS.468-4 curve, RMS detector.
+    threshold_weighted_noise_dbfs : float or None, dBFS
+        Error weighted by the inverse of Terhardt's (1979) hearing threshold,
+        1 at 1 kHz (:mod:`requant.dsp.weighting`): the figure the ``hearing``
+        shaper lowers while the others rise.
     tonal_fraction : float or None
         Share of the error power in tones (whole file).
     correlation_fraction : float or None
@@ -369,6 +373,7 @@ class MeasuredFigures(ErrorFigures):
     silent_frames: int = 0
     a_weighted_noise_dbfs: float | None = None
     itu468_noise_dbfs: float | None = None
+    threshold_weighted_noise_dbfs: float | None = None
     tonal_fraction: float | None = None
     correlation_fraction: float | None = None
     correlated_error_fraction: float | None = None
@@ -388,7 +393,8 @@ class MeasuredFigures(ErrorFigures):
         """
         names = _ERROR_KEYS + ("over_full_scale_samples", "shaping_overloads", "silent_frames")
         if analysed:
-            names += ("a_weighted_noise_dbfs", "itu468_noise_dbfs", "tonal_fraction",
+            names += ("a_weighted_noise_dbfs", "itu468_noise_dbfs",
+                      "threshold_weighted_noise_dbfs", "tonal_fraction",
                       "correlation_fraction", "correlated_error_fraction")
         if true_peak:
             names += _TRUE_PEAK_KEYS
@@ -405,7 +411,7 @@ class ChannelMeasured(ErrorFigures):
     ----------
     silent_frames : int
         Frames of this channel kept digitally silent.
-    a_weighted_noise_dbfs, itu468_noise_dbfs : float or None, dBFS
+    a_weighted_noise_dbfs, itu468_noise_dbfs, threshold_weighted_noise_dbfs : float or None, dBFS
         As in :class:`MeasuredFigures`.
     correlated_error_fraction : float or None
         The larger of the channel's tonal and linear shares (whole file).
@@ -423,6 +429,7 @@ class ChannelMeasured(ErrorFigures):
     silent_frames: int = 0
     a_weighted_noise_dbfs: float | None = None
     itu468_noise_dbfs: float | None = None
+    threshold_weighted_noise_dbfs: float | None = None
     correlated_error_fraction: float | None = None
     input_dc_offset: float | None = None
     output_dc_offset: float | None = None
@@ -433,7 +440,8 @@ class ChannelMeasured(ErrorFigures):
         """The JSON form (see :meth:`MeasuredFigures.to_dict`)."""
         names = _ERROR_KEYS + ("silent_frames",)
         if analysed:
-            names += ("a_weighted_noise_dbfs", "itu468_noise_dbfs", "correlated_error_fraction",
+            names += ("a_weighted_noise_dbfs", "itu468_noise_dbfs",
+                      "threshold_weighted_noise_dbfs", "correlated_error_fraction",
                       "input_dc_offset", "output_dc_offset")
         if true_peak:
             names += _TRUE_PEAK_KEYS
@@ -451,7 +459,7 @@ class PredictedFigures:
     error_power_lsb2 : float, LSB²
         Predicted error power per sample (0 for a pass-through).
     error_rms_dbfs : float or None, dBFS
-    a_weighted_noise_dbfs, itu468_noise_dbfs : float or None, dBFS
+    a_weighted_noise_dbfs, itu468_noise_dbfs, threshold_weighted_noise_dbfs : float or None, dBFS
         From the analysis (None without it, and for a pass-through).
     """
 
@@ -460,12 +468,14 @@ class PredictedFigures:
     error_rms_dbfs: float | None
     a_weighted_noise_dbfs: float | None = None
     itu468_noise_dbfs: float | None = None
+    threshold_weighted_noise_dbfs: float | None = None
 
     def to_dict(self, *, analysed: bool) -> dict[str, Any]:
         """The JSON form; the weighted figures only when ``analysed``."""
         names = ("snr_db", "error_power_lsb2", "error_rms_dbfs")
         if analysed:
-            names += ("a_weighted_noise_dbfs", "itu468_noise_dbfs")
+            names += ("a_weighted_noise_dbfs", "itu468_noise_dbfs",
+                      "threshold_weighted_noise_dbfs")
         return _pick(self, names)
 
 
