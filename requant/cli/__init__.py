@@ -1,8 +1,9 @@
 """The ``requant`` command line: parsing and printing only.
 
 One module per command group (:mod:`.convert`, :mod:`.batch`, :mod:`.listen`,
-:mod:`.info` for ``inspect`` and ``shaper``, :mod:`.audit`, :mod:`.demo`), registered here;
-options shared by several commands are declared once in :mod:`.common`.
+:mod:`.info` for ``inspect`` and ``shaper``, :mod:`.rate` for ``rate``, :mod:`.audit`,
+:mod:`.demo`), registered here; options shared by several commands are declared once in
+:mod:`.common`.
 Nothing below imports this package. Heavy modules (numpy, soundfile, numba,
 scipy, matplotlib) are imported inside the commands, so that ``requant
 --help`` starts fast. Domain errors (:class:`requant.errors.RequantError`)
@@ -25,6 +26,7 @@ from requant.cli import convert as _convert
 from requant.cli import demo as _demo
 from requant.cli import info as _info
 from requant.cli import listen as _listen
+from requant.cli import rate as _rate
 from requant.cli.common import err, friendly, handle_sigterm, set_debug, stop_exit_code
 
 __all__ = ["app", "main", "console"]
@@ -78,6 +80,8 @@ def _root(
 
 shaper_app = typer.Typer(help="Show, design and export noise-shaping filters.",
                          no_args_is_help=True, rich_markup_mode=None)
+rate_app = typer.Typer(help="Show the sample-rate converter's filter for a pair of rates.",
+                       no_args_is_help=True, rich_markup_mode=None)
 
 #: Every command: (typer app, name, function), in the order ``--help`` lists them.
 COMMANDS = (
@@ -89,10 +93,12 @@ COMMANDS = (
     (app, "score", _listen.score),
     (app, "audit", _audit.audit),
     (shaper_app, "show", _info.shaper_show),
+    (rate_app, "show", _rate.rate_show),
 )
 for _app, _name, _fn in COMMANDS:
     _app.command(_name)(friendly(_fn))
 app.add_typer(shaper_app, name="shaper")
+app.add_typer(rate_app, name="rate")
 
 
 class _GuardedStdout:
