@@ -106,6 +106,7 @@ import textwrap
 
 import numpy as np
 
+from requant.dsp.audibility import NOISE_TONAL_MAX
 from requant.errors import UsageError
 from requant.recipe import DEFAULT_SILENCE_MIN_MS, MAX_SILENCE_MIN_MS, silence_min_frames
 
@@ -148,12 +149,6 @@ QUIET_EXAMPLES = 8
 #: single periodogram's power 6 dB above the running median by chance, 0.3 % of three
 #: summed (the chi-squared law of periodogram bins, 2 degrees of freedom each).
 MIN_JUDGED_BLOCKS = 3
-#: The quietest passage counts as noise (then it is the noise floor) when less than this
-#: share of its power stands in spectral lines, i.e. more than 6 dB above the running median
-#: of its averaged spectrum (:func:`requant.dsp.analysis.tonal_fraction`, the measure the
-#: convert report applies to its error). Our choice: white or shaped noise gives well under
-#: 1 %; music, tones and hum put most of their power in lines.
-NOISE_TONAL_MAX = 0.10
 #: Interior runs of exact zeros at least this long (in every channel, or in one channel
 #: while another plays) are named as possible dropouts. Our choice: shorter runs are more
 #: often edits or pauses between sounds.

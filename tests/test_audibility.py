@@ -140,3 +140,116 @@ def test_threshold_comparison_wording():
         "-109.4 dBFS measured, 15.3 dB below flat TPDF at 16 bits (-94.1 dBFS predicted)"
     assert threshold_comparison(-94.12, -94.1, bits=16, predicted=True).startswith(
         "-94.1 dBFS predicted, the same as flat TPDF")
+
+
+# --------------------------------------------------------------------------
+# The convert side: the console summary and the report's first table and paragraph
+
+
+def _noise_master(tmp_path, *, rate=48000, seconds=6.0, floor_dbfs=-70.0):
+    """A float master: a loud harmonic tone, then its own hiss (Gaussian, known level)."""
+    import soundfile as sf
+
+    rng = np.random.default_rng(30)
+    n = int(rate * seconds)
+    t = np.arange(n) / rate
+    tone = sum(0.5**k * np.sin(2 * np.pi * 220 * (k + 1) * t) for k in range(5)) * 0.2
+    tone[n // 2:] = 0.0
+    sigma = math.sqrt(10 ** (floor_dbfs / 10) / 2)
+    x = tone + rng.normal(0.0, sigma, n)
+    path = tmp_path / "master.wav"
+    sf.write(path, x.astype(np.float32), rate, subtype="FLOAT")
+    return path
+
+
+def test_threshold_weighted_noise_measured_as_predicted(tmp_path):
+    # Convert with flat TPDF and with the hearing shaper: each measured threshold-weighted
+    # figure lies within 0.2 dB of its prediction, and the measured difference is the
+    # predicted benefit (the weighting per requant.dsp.weighting, Terhardt 1979).
+    from requant.convert import Outputs, convert_file
+    from requant.recipe import Recipe
+
+    src = _noise_master(tmp_path)
+    got = {}
+    for shaping in ("none", "hearing"):
+        rep = convert_file(src, tmp_path / f"{shaping}.wav",
+                           Recipe.from_dict({"bits": 16, "shaping": shaping, "seed": 2}),
+                           outputs=Outputs(), analyze=True)
+        m, p = rep.measured, rep.predicted
+        assert m.threshold_weighted_noise_dbfs == pytest.approx(
+            p.threshold_weighted_noise_dbfs, abs=0.2)
+        assert [c.measured.threshold_weighted_noise_dbfs is not None for c in rep.channels] == \
+            [True]
+        got[shaping] = m.threshold_weighted_noise_dbfs
+    assert got["none"] == pytest.approx(predicted_noise_dbfs(16, 48000), abs=0.2)
+    benefit = advise(16, 48000).hearing_benefit_db
+    assert got["none"] - got["hearing"] == pytest.approx(benefit, abs=0.3)
+
+
+def test_report_first_table_and_advice(tmp_path):
+    # The report's first table leads with the threshold-weighted noise and sets flat TPDF at
+    # the same word length beside every noise figure; the paragraph judges the master's own
+    # hiss (-70 dBFS) as noise that buries flat TPDF at 16 bits.
+    from requant.convert import Outputs, convert_file
+    from requant.recipe import Recipe
+    from requant.report.tables import page_context
+
+    src = _noise_master(tmp_path)
+    md, html = tmp_path / "r.md", tmp_path / "r.html"
+    rep = convert_file(src, tmp_path / "o.wav",
+                       Recipe.from_dict({"bits": 16, "shaping": "hearing", "seed": 2}),
+                       outputs=Outputs(report=(md, html)))
+    ctx = page_context(rep, None, bands_per_octave=48)
+    t = ctx["tables"][0]
+    assert t["head"][-1] == "flat TPDF at 16 bits, predicted"
+    first = t["rows"][0]
+    assert first[0].startswith("hearing-threshold-weighted noise")
+    assert first[1] == f"{rep.measured.threshold_weighted_noise_dbfs:.2f}"
+    assert float(first[-1]) == pytest.approx(predicted_noise_dbfs(16, 48000), abs=0.01)
+    snr = next(r for r in t["rows"] if r[0].startswith("SNR"))
+    assert float(snr[-1]) > float(snr[1])  # flat TPDF's SNR is better; shaping's is worse
+    assert "dB below flat TPDF at 16 bits" in ctx["headline"]
+    q = rep.analysis.quietest_passage
+    assert q["signal_tonal_fraction"] < 0.01  # the hiss is noise
+    assert "own noise floor" in ctx["advice"] and "Use plain TPDF" in ctx["advice"]
+    assert "This conversion is shaped" in ctx["advice"]
+    text = md.read_text()
+    assert "## Which method for this file" in text and "own noise floor" in text
+    page = html.read_text()
+    assert 'id="advice"' in page and "flat TPDF at 16 bits, predicted" in page
+
+
+def test_passage_tonal_fraction_tells_tones_from_noise():
+    # white noise has no lines (its averaged periodogram stays within 6 dB of its median);
+    # a sum of three sines is all lines
+    from requant.dsp.analysis import passage_tonal_fraction
+
+    rng = np.random.default_rng(31)
+    assert passage_tonal_fraction(rng.normal(size=(32768, 2))) < 0.01
+    t = np.arange(32768) / 48000
+    tones = sum(np.sin(2 * np.pi * f * t) for f in (220, 330, 440))[:, None]
+    assert passage_tonal_fraction(tones + 1e-4 * rng.normal(size=tones.shape)) > 0.9
+
+
+def test_cli_convert_summary_shows_what_is_heard(tmp_path):
+    # What the user sees: the third line sets the hearing-threshold-weighted noise beside flat
+    # TPDF's; predicted without a report, measured with one.
+    from helpers import run_cli
+
+    src = _noise_master(tmp_path, seconds=3.0)
+    code, out, err = run_cli("convert", src, tmp_path / "o.wav", "--bits", "16",
+                             "--shaping", "hearing", "--seed", "2")
+    assert code == 0, err
+    lines = out.splitlines()
+    heard = next(line for line in lines if "hearing-threshold-weighted noise" in line)
+    flat = predicted_noise_dbfs(16, 48000)
+    shaped = flat - advise(16, 48000).hearing_benefit_db
+    assert heard.strip() == (f"hearing-threshold-weighted noise {shaped:.1f} dBFS predicted, "
+                             f"{flat - shaped:.1f} dB below flat TPDF at 16 bits "
+                             f"({flat:.1f} dBFS predicted)")
+    assert lines.index(heard) == 2 and lines[1].lstrip().startswith("SNR")
+    code, out, err = run_cli("convert", src, tmp_path / "o2.wav", "--bits", "16",
+                             "--shaping", "hearing", "--seed", "2", "--report",
+                             tmp_path / "r.json")
+    assert code == 0, err
+    assert "dBFS measured, " in out and "dB below flat TPDF at 16 bits" in out

@@ -126,7 +126,13 @@ def _fmt(v, spec=".2f", none="n/a"):
 
 
 def summary_line(rep):
-    """What a conversion did, in two lines: the output, then measured against predicted.
+    """What a conversion did: the output, measured against predicted, and what is heard.
+
+    Three lines: the output and its method; SNR and error power, measured and
+    predicted; the hearing-threshold-weighted noise beside flat TPDF's at the
+    same word length (measured with ``--report``, else predicted), the figure
+    that shows what noise shaping gains while SNR and A-weighting show it
+    losing. A pass-through is one line.
 
     Parameters
     ----------
@@ -141,10 +147,24 @@ def summary_line(rep):
     if out.passthrough:
         return (f"wrote {out.path} ({out.bits}-bit {out.subtype} {out.format}): the "
                 f"input already lies on the {out.bits}-bit grid, copied unchanged")
-    return (f"wrote {out.path} ({out.bits}-bit {out.subtype} {out.format}; {method})\n"
-            f"  SNR {_fmt(m.snr_db)} dB measured, {_fmt(p.snr_db)} dB predicted; "
-            f"error {_fmt(m.error_power_lsb2, '.4f')} LSB² measured, "
-            f"{_fmt(p.error_power_lsb2, '.4f')} LSB² predicted")
+    lines = (f"wrote {out.path} ({out.bits}-bit {out.subtype} {out.format}; {method})\n"
+             f"  SNR {_fmt(m.snr_db)} dB measured, {_fmt(p.snr_db)} dB predicted; "
+             f"error {_fmt(m.error_power_lsb2, '.4f')} LSB² measured, "
+             f"{_fmt(p.error_power_lsb2, '.4f')} LSB² predicted")
+    heard = _heard_line(rep)
+    return lines if heard is None else f"{lines}\n  {heard}"
+
+
+def _heard_line(rep):
+    """The hearing-threshold-weighted noise against flat TPDF, or None (no rate, no samples)."""
+    from requant.report.advice import threshold_comparison, threshold_figures
+
+    th = threshold_figures(rep)
+    if th is None:
+        return None
+    method, flat, measured = th
+    return ("hearing-threshold-weighted noise "
+            + threshold_comparison(method, flat, bits=rep.settings.bits, predicted=not measured))
 
 
 class _ProgressPrinter:

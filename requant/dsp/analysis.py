@@ -52,6 +52,7 @@ __all__ = [
     "tonal_fraction",
     "noise_floor",
     "passage_correlation",
+    "passage_tonal_fraction",
     "correlated_summary",
     "MAX_SEGMENTS",
     "TONE_THRESHOLD_DB",
@@ -192,6 +193,33 @@ def passage_correlation(x, e):
         if den > 0.0:
             rho2 = max(rho2, float(np.sum(xc[:, c] * ec[:, c]) ** 2 / den))
     return rho2, tonal
+
+
+def passage_tonal_fraction(x):
+    """Share of a passage's own power standing in spectral lines: music, tones or hum rather
+    than noise (the test ``requant inspect`` applies to a file's quietest passage).
+
+    :func:`tonal_fraction` of the passage's spectrum, averaged over Hann segments of an
+    eighth of the passage (half overlapping) and summed over channels, each channel's mean
+    removed; the two lowest bins (DC and its leakage) are left out.
+
+    Parameters
+    ----------
+    x : ndarray (frames, channels)
+        The passage (at least 16 frames).
+
+    Returns
+    -------
+    float
+    """
+    x = np.asarray(x, dtype=np.float64)
+    n = x.shape[0]
+    L = max(2, n // 8)
+    starts = np.arange(0, n - L + 1, max(1, L // 2))
+    idx = starts[:, None] + np.arange(L)[None, :]
+    xc = x - x.mean(axis=0)
+    f = np.fft.rfft(xc[idx] * _hann(L)[None, :, None], axis=1)
+    return tonal_fraction(np.sum(np.abs(f) ** 2, axis=(0, 2))[2:])
 
 
 def error_pdf(lsb, *, quantizer, dither, coeffs=()):
@@ -579,6 +607,7 @@ class ErrorAnalyzer:
             "correlation_fraction": rho2,
             "tonal_fraction": tonal,
             "correlated_error_fraction": max(rho2, tonal),
+            "signal_tonal_fraction": passage_tonal_fraction(q["x"]),
         }
 
     def loudness(self):

@@ -52,6 +52,7 @@ from dataclasses import dataclass
 
 __all__ = [
     "REFERENCE_PLAYBACK_DB_SPL",
+    "NOISE_TONAL_MAX",
     "MAX_FLOOR_RISE_DB",
     "tpdf_noise_dbfs",
     "predicted_noise_dbfs",
@@ -66,6 +67,13 @@ __all__ = [
 #: practice (loud: cinema calibration puts pink noise at -20 dBFS RMS at 85 dB SPL, so a
 #: full-scale sine near 105 dB SPL). Quieter playback only makes the noise less audible.
 REFERENCE_PLAYBACK_DB_SPL = 105.0
+
+#: A passage counts as noise (then its level is a noise floor) when less than this share of
+#: its power stands in spectral lines, i.e. more than 6 dB above the running median of its
+#: averaged spectrum (:func:`requant.dsp.analysis.tonal_fraction`, the measure the convert
+#: report applies to its error). Our choice: white or shaped noise gives well under 1 %;
+#: music, tones and hum put most of their power in lines.
+NOISE_TONAL_MAX = 0.10
 
 #: Largest rise of the file's own noise floor that counts as buried, dB: half the about
 #: 1 dB smallest change of level most listeners notice (common practice). Flat TPDF stays

@@ -531,7 +531,10 @@ class Analysis:
         ``start_s``, ``duration_s`` (s), ``signal_rms_dbfs``,
         ``error_rms_dbfs`` (dBFS), ``error_power_lsb2``,
         ``predicted_error_power_lsb2`` (LSB²), ``error_power_deviation_db``
-        (dB) and the correlated shares; None when none was found.
+        (dB), the correlated shares and ``signal_tonal_fraction`` (the
+        passage's own share of power in spectral lines: under
+        :data:`requant.dsp.audibility.NOISE_TONAL_MAX` it is noise); None when
+        none was found.
     histogram : mapping
         ``edges_lsb`` (LSB), ``counts``, ``outside``.
     dc_offset : mapping

@@ -267,6 +267,7 @@ def _md_context(ctx):
         input_path=_Md(_md_code(ctx["input_path"])),
         output_path=_Md(_md_code(ctx["output_path"])),
         headline=_Md(_md_text(ctx["headline"], block=True)),
+        advice=None if ctx["advice"] is None else _Md(_md_text(ctx["advice"], block=True)),
         warnings=[_Md(_md_text(w, block=True)) for w in ctx["warnings"]],
         notes=[_Md(_md_text(n, block=True)) for n in ctx["notes"]],
         tables=tables,

@@ -122,7 +122,8 @@ def page_context(report, analyzer, *, bands_per_octave):
     -------
     dict
         ``title_name``, ``input_path``, ``output_path`` (:class:`Code`),
-        ``headline``, ``warnings``, ``notes``, ``tables`` (each a dict with
+        ``headline``, ``advice`` (the "which method for this file" paragraph, or
+        None), ``warnings``, ``notes``, ``tables`` (each a dict with
         ``id``, ``title``, ``head``, ``rows``, ``intro``, ``numeric``,
         ``fold``), ``version``, ``created``, ``per_bin_rule`` and
         ``no_pictures``: plain text, not yet escaped.
@@ -131,8 +132,10 @@ def page_context(report, analyzer, *, bands_per_octave):
     bits = report.settings.bits
     scale = 2.0 ** (bits - 1) if bits else 1.0
     have_spectrum = an is not None and an.spectrum is not None
+    from requant.report.advice import flat_tpdf_figures, report_advice
+
     tables = [
-        _main_table(m, p, have_spectrum=have_spectrum),
+        _main_table(m, p, have_spectrum=have_spectrum, flat=flat_tpdf_figures(report), bits=bits),
         _correlated_table(m, an),
         _peaks_table(m, an),
         _channel_noise_table(report, have_spectrum=have_spectrum),
@@ -149,6 +152,7 @@ def page_context(report, analyzer, *, bands_per_octave):
         "input_path": Code(report.input.path or ""),
         "output_path": Code(report.output.path or ""),
         "headline": _headline(report),
+        "advice": report_advice(report),
         "warnings": [str(w) for w in report.warnings],
         "notes": [str(n) for n in report.notes],
         "tables": tables,
@@ -164,12 +168,21 @@ def page_context(report, analyzer, *, bands_per_octave):
 
 
 def _headline(report):
+    from requant.report.advice import threshold_comparison, threshold_figures
+
     s = report.settings
     if report.output.passthrough:
         return (f"{s.bits}-bit output, written unchanged: the input already lay on "
                 f"the {s.bits}-bit grid, so no dither or noise shaping was applied.")
-    return (f"{s.bits}-bit output, quantizer {s.quantizer}, dither "
+    line = (f"{s.bits}-bit output, quantizer {s.quantizer}, dither "
             f"{s.dither_applied}, noise shaping {s.shaping or 'none'}.")
+    th = threshold_figures(report)
+    if th is not None:
+        method, flat, measured = th
+        line += (" Hearing-threshold-weighted noise (what the ear hears of it): "
+                 + threshold_comparison(method, flat, bits=s.bits, predicted=not measured)
+                 + ".")
+    return line
 
 
 def _predicted_weighted(p, value):
@@ -182,10 +195,18 @@ def _predicted_weighted(p, value):
     return _num(value, none=_NA)
 
 
-def _main_table(m, p, *, have_spectrum):
+def _main_table(m, p, *, have_spectrum, flat=None, bits=None):
     mp, pp = m.error_power_lsb2, p.error_power_lsb2
     w_none_m = _NA if not have_spectrum else fmt_zero_db(mp)
+
+    def weighted(label, key):
+        mv, pv = getattr(m, key), getattr(p, key)
+        return [label, _num(mv, none=w_none_m), _predicted_weighted(p, pv),
+                "" if pp == 0 else _diff_db(mv, pv)]
+
     rows = [
+        weighted("hearing-threshold-weighted noise (Terhardt 1979; what the hearing shaper "
+                 "lowers), dBFS", "threshold_weighted_noise_dbfs"),
         ["SNR (signal over error power), dB",
          _snr(m.snr_db, signal_db=m.signal_rms_dbfs, error_power=mp),
          _snr(p.snr_db, signal_db=m.signal_rms_dbfs, error_power=pp),
@@ -194,23 +215,29 @@ def _main_table(m, p, *, have_spectrum):
         ["error RMS, dBFS", _num(m.error_rms_dbfs, none=fmt_zero_db(mp)),
          _num(p.error_rms_dbfs, none=fmt_zero_db(pp)),
          _diff_db(m.error_rms_dbfs, p.error_rms_dbfs)],
-        ["A-weighted noise (IEC 61672-1), dBFS",
-         _num(m.a_weighted_noise_dbfs, none=w_none_m),
-         _predicted_weighted(p, p.a_weighted_noise_dbfs),
-         "" if pp == 0 else _diff_db(m.a_weighted_noise_dbfs, p.a_weighted_noise_dbfs)],
-        ["ITU-R BS.468-4 weighted noise, RMS detector (not the standard's quasi-peak), dBFS",
-         _num(m.itu468_noise_dbfs, none=w_none_m),
-         _predicted_weighted(p, p.itu468_noise_dbfs),
-         "" if pp == 0 else _diff_db(m.itu468_noise_dbfs, p.itu468_noise_dbfs)],
+        weighted("A-weighted noise (IEC 61672-1), dBFS", "a_weighted_noise_dbfs"),
+        weighted("ITU-R BS.468-4 weighted noise, RMS detector (not the standard's quasi-peak), "
+                 "dBFS", "itu468_noise_dbfs"),
         ["error mean, LSB", _num(m.error_mean_lsb, ".4f", signed=True), "", ""],
         ["error peak, dBFS", _num(m.error_peak_dbfs, none=fmt_zero_db(mp)), "", ""],
         ["signal RMS, dBFS", _num(m.signal_rms_dbfs, none=fmt_zero_db(mp)), "", ""],
     ]
-    return _table("figures", "Measured and predicted", ["figure", "measured", "predicted",
-                                                        "measured − predicted, dB"], rows,
-                  intro="All channels together. The prediction is the dither model times the "
-                        "noise-shaping filter's gain; weighted figures are normalised to 0 dB "
-                        "at 1 kHz.")
+    head = ["figure", "measured", "predicted", "measured − predicted, dB"]
+    intro = ("All channels together. The prediction is the dither model times the "
+             "noise-shaping filter's gain; weighted figures are normalised to 0 dB at 1 kHz.")
+    if flat is not None:
+        keys = ["threshold_weighted_noise_dbfs", "snr_db", "error_power_lsb2", "error_rms_dbfs",
+                "a_weighted_noise_dbfs", "itu468_noise_dbfs"]
+        for row, key in zip(rows, keys):
+            row.append(_num(flat[key], ".5g" if key == "error_power_lsb2" else ".2f"))
+        for row in rows[len(keys):]:
+            row.append("")
+        head.append(f"flat TPDF at {bits} bits, predicted")
+        intro += (" The last column is what plain TPDF dither at the same word length would "
+                  "give on the same samples. Noise shaping makes the SNR and the A-weighted "
+                  "figure worse (A-weighting is no hearing-threshold model) while it lowers "
+                  "the hearing-threshold-weighted one, the figure that says what is heard.")
+    return _table("figures", "Measured and predicted", head, rows, intro=intro)
 
 
 def _correlated_table(m, an):
