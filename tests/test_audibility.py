@@ -18,7 +18,7 @@ from requant.dsp.audibility import (
     tpdf_noise_dbfs,
 )
 from requant.dsp.shaping import design_hearing, gerzon_craven_bound_db
-from requant.report.advice import advice_paragraph, threshold_comparison
+from requant.dsp.audibility import advice_paragraph, threshold_comparison
 
 
 def terhardt(f_hz):

@@ -2,8 +2,8 @@
 
 The figures behind the "which method for this file" paragraph of ``requant
 inspect`` and of the convert report, and behind the hearing-threshold column
-of the console summary. Plain numbers here; the sentences are in
-:mod:`requant.report.advice`.
+of the console summary, and that paragraph's wording (:func:`advice_paragraph`,
+:func:`threshold_comparison`), so that both commands say the same thing.
 
 Figures
 -------
@@ -61,6 +61,8 @@ __all__ = [
     "floor_rise_db",
     "Advice",
     "advise",
+    "advice_paragraph",
+    "threshold_comparison",
 ]
 
 #: Playback level for the audibility figure: a full-scale sine at this many dB SPL. Common
@@ -315,3 +317,114 @@ def advise(bits, sample_rate, *, quiet_dbfs=None, quiet_is_noise=None, bits_in_u
         hearing_benefit_db=None if hear_thr is None else flat_thr - hear_thr,
         hearing_total_gain_db=hear_gain, floor_rise_tpdf_db=rise_flat,
         floor_rise_hearing_db=rise_hear, playback_db_spl=float(playback_db_spl))
+
+
+# ---------------------------------------------------------------------------
+# wording
+
+
+def _db(v):
+    return f"{v:.1f}"
+
+
+def _side(v, *, above="above", below="below"):
+    """``'3.2 dB above'`` / ``'3.2 dB below'`` for a signed difference."""
+    return f"{abs(v):.1f} dB {above if v > 0 else below}"
+
+
+def _level(a):
+    """The sentence about the quietest passage against flat TPDF's noise, or ''."""
+    if a.quiet_dbfs is None:
+        return ""
+    d = a.quiet_dbfs - a.tpdf_dbfs
+    where = (f"{_side(d)} flat TPDF's noise at {a.bits} bits ({_db(a.tpdf_dbfs)} dBFS)")
+    if a.quiet_is_noise:
+        return f"The file's own noise floor sits at {_db(a.quiet_dbfs)} dBFS, {where}. "
+    kind = " (music or tones, not noise)" if a.quiet_is_noise is False else ""
+    covered = ": the noise will cover it" if d < 0 else ""
+    return f"The quietest passage sits at {_db(a.quiet_dbfs)} dBFS{kind}, {where}{covered}. "
+
+
+def _loud(a):
+    return f"played loud (a full-scale sine at {a.playback_db_spl:g} dB SPL)"
+
+
+def advice_paragraph(a):
+    """One paragraph: which method suits the file at ``a.bits`` bits, and why in numbers.
+
+    Parameters
+    ----------
+    a : requant.dsp.audibility.Advice
+
+    Returns
+    -------
+    str
+        Plain text (ASCII digits and signs), no trailing newline.
+    """
+    head = f"At {a.bits} bits and {a.sample_rate:g} Hz: "
+    if a.reason == "lossless":
+        return (head + f"no method needed. Only {a.bits_in_use} bits are in use, so "
+                f"converting to {a.bits} bits is exact (no dither, no shaping).")
+    return head + _lower_first(_body(a))
+
+
+def _body(a):
+    """The paragraph after its head, for every reason but ``lossless``."""
+    text = _level(a)
+    weighted = (f"Weighted by the hearing threshold (Terhardt 1979), flat TPDF's noise is "
+                f"{_db(a.tpdf_threshold_dbfs)} dBFS")
+    shaped = ""
+    if a.hearing_benefit_db is not None:
+        shaped = (f"the hearing-threshold shaper designed for {a.sample_rate:g} Hz lowers it "
+                  f"by {_db(a.hearing_benefit_db)} dB")
+    if a.reason == "own-noise":
+        text += (f"Flat TPDF raises that floor by {a.floor_rise_tpdf_db:.2f} dB, too little to "
+                 "notice: the added noise hides under the file's own")
+        if a.floor_rise_hearing_db is not None:
+            text += (f"; shaping would lower its audible part by {_db(a.hearing_benefit_db)} dB "
+                     f"but add {_db(a.hearing_total_gain_db)} dB of total noise (a rise of "
+                     f"{a.floor_rise_hearing_db:.2f} dB), so it buys nothing here")
+        return text + ". Use plain TPDF (--dither tpdf)."
+    if a.reason == "below-threshold":
+        text += (f"{weighted}, {_side(a.tpdf_above_threshold_db)} the threshold of hearing "
+                 f"even when {_loud(a)}: plain TPDF (--dither tpdf) is inaudible here")
+        if shaped:
+            text += f"; {shaped}, to no audible benefit"
+        return text + "."
+    text += (f"{weighted}: {_loud(a)} it would lie {_side(a.tpdf_above_threshold_db)} the "
+             "threshold of hearing in quiet, in pauses and fades. ")
+    if a.reason == "no-design":
+        return text + (f"No hearing-threshold design exists at {a.sample_rate:g} Hz (it covers "
+                       "8000 to 384000 Hz): use plain TPDF (--dither tpdf), or more bits.")
+    text += (shaped[0].upper() + shaped[1:] + f", to {_side(a.hearing_above_threshold_db)} the "
+             "threshold: use --dither tpdf --shaping hearing.")
+    if a.shaped_still_audible:
+        text += (" Even shaped, the noise stays audible when played loud: more bits help more "
+                 "than any shaper.")
+    return text + (f" Shaping raises the total noise power by {_db(a.hearing_total_gain_db)} dB, "
+                   "so SNR and A-weighted figures get worse while the audible noise falls.")
+
+
+def _lower_first(text):
+    return text[:1].lower() + text[1:]
+
+
+def threshold_comparison(measured_dbfs, flat_dbfs, *, bits, predicted=False):
+    """``'-109.4 dBFS measured, 15.3 dB below flat TPDF at 16 bits (-94.1 dBFS predicted)'``.
+
+    Parameters
+    ----------
+    measured_dbfs : float
+        The method's threshold-weighted noise (measured, or predicted when
+        ``predicted``).
+    flat_dbfs : float
+        Flat TPDF's predicted threshold-weighted noise at ``bits``.
+    bits : int
+    predicted : bool
+        Whether ``measured_dbfs`` is a prediction.
+    """
+    d = measured_dbfs - flat_dbfs
+    how = "predicted" if predicted else "measured"
+    rel = "the same as" if abs(d) < 0.05 else _side(d)
+    return (f"{_db(measured_dbfs)} dBFS {how}, {rel} flat TPDF at {bits} bits "
+            f"({_db(flat_dbfs)} dBFS predicted)")

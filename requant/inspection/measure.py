@@ -61,7 +61,8 @@ silent_fraction
     on a signal far below 1 LSB gives 0 three times in four). So the
     ``mostly-silent`` finding counts only samples in runs of exact zeros
     (``silent_run_frames``) and ``scattered-zeros`` names the other case;
-    ``silent-gap`` names runs of at least :data:`GAP_MIN_S` inside the audio
+    ``silent-gap`` names runs of at least
+    :data:`~requant.inspection.findings.GAP_MIN_S` inside the audio
     (not at its start or end), in every channel or in one channel alone.
 silent_runs, silent_run_count, silent_run_frames
     The runs of exact zeros at least ``silence_min_ms`` long (default 20 ms,
@@ -89,7 +90,7 @@ quiet_level_dbfs, quiet_kind, quiet_tonal_fraction, noise_floor_dbfs
 method_advice
     Which method suits the file at ``for_bits`` (default 16) and why, in
     figures (:func:`requant.dsp.audibility.advise`) and one paragraph
-    (``text``, :func:`requant.report.advice.advice_paragraph`), from the bits
+    (``text``, :func:`requant.dsp.audibility.advice_paragraph`), from the bits
     in use, the rate and the quietest passage. None for a file with no sound.
 
 dB figures of zero (silence) are ``None``, as in :mod:`requant.dsp.figures`.
@@ -102,16 +103,16 @@ from __future__ import annotations
 
 import math
 import os
-import textwrap
 
 import numpy as np
 
 from requant.dsp.audibility import NOISE_TONAL_MAX
 from requant.errors import UsageError
+from requant.inspection.findings import GAP_MIN_S, findings_of, grid_limit, method_advice
 from requant.recipe import DEFAULT_SILENCE_MIN_MS, MAX_SILENCE_MIN_MS, silence_min_frames
 
-__all__ = ["inspect_file", "format_inspection", "DEFAULT_BLOCK_FRAMES", "DEFAULT_FOR_BITS",
-           "NOISE_TONAL_MAX", "GAP_MIN_S"]
+__all__ = ["inspect_file", "DEFAULT_BLOCK_FRAMES", "DEFAULT_FOR_BITS", "QUIET_EXAMPLES",
+           "MIN_JUDGED_BLOCKS"]
 
 #: Frames read per block by default: about 2 MiB of samples (262144 stereo frames), so the
 #: per-block work in Python is small beside the kernels' (1-2 % of the time).
@@ -128,8 +129,6 @@ _PCM_BITS = {"PCM_S8": 8, "PCM_U8": 8, "PCM_16": 16, "PCM_24": 24, "PCM_32": 32}
 #: length for the companding codecs). Others (lossy codecs) are unknown.
 _OTHER_BITS = {"FLOAT": 24, "DOUBLE": 53, "ULAW": 14, "ALAW": 13, "DPCM_8": 8, "DPCM_16": 16}
 
-#: Largest grid word length recognised in non-integer files.
-_GRID_LIMIT = {"FLOAT": 24, "DOUBLE": 32}
 
 # Noise-floor histogram: 0.01 dB bins from -400 dB to +50 dB (values outside
 # are counted in the end bins).
@@ -149,13 +148,6 @@ QUIET_EXAMPLES = 8
 #: single periodogram's power 6 dB above the running median by chance, 0.3 % of three
 #: summed (the chi-squared law of periodogram bins, 2 degrees of freedom each).
 MIN_JUDGED_BLOCKS = 3
-#: Interior runs of exact zeros at least this long (in every channel, or in one channel
-#: while another plays) are named as possible dropouts. Our choice: shorter runs are more
-#: often edits or pauses between sounds.
-GAP_MIN_S = 0.5
-#: A quiet file whose zeros are scattered is called dither-like when its peak stays within
-#: this many LSB of its word length in use (codes toggling round 0). Our choice.
-DITHER_PEAK_MAX_LSB = 8
 
 
 def _db20(value):
@@ -566,7 +558,7 @@ def inspect_file(path, *, block_frames=DEFAULT_BLOCK_FRAMES, clip_run=3,
         acc = _Accumulator(ch, sample_rate=rate, container_bits=container_bits,
                            clip_run=clip_run, floor_block_s=floor_block_s,
                            floor_percentile=floor_percentile,
-                           grid_cap=0 if pcm_bits else _grid_limit(subtype, container_bits) + 1,
+                           grid_cap=0 if pcm_bits else grid_limit(subtype, container_bits) + 1,
                            silence_min_frames=silence_min_frames(silence_min_ms, rate))
         # int32 / 2^31 equals libsndfile's own float64 reading of PCM, exactly; float32
         # files are read as they are stored (exact)
@@ -590,17 +582,12 @@ def inspect_file(path, *, block_frames=DEFAULT_BLOCK_FRAMES, clip_run=3,
     )
 
 
-def _grid_limit(subtype, container_bits):
-    """Largest grid word length recognised for a non-integer subtype."""
-    return _GRID_LIMIT.get(subtype, min(container_bits or 24, 24))
-
-
 def _bits_of_channel(acc, c, *, subtype, container_bits, pcm_bits):
     if pcm_bits:
         orv = int(acc.or_bits[c])
         return (0 if orv == 0 else 32 - _trailing_zeros32(orv)), "pcm"
     b = int(acc.field("grid_bits")[c])
-    if b <= _grid_limit(subtype, container_bits):
+    if b <= grid_limit(subtype, container_bits):
         return b, "grid"
     return container_bits, "float"
 
@@ -728,300 +715,10 @@ def _build_report(acc, *, path, container, subtype, rate, container_bits, pcm_bi
         "per_channel": per,
         "settings": settings,
     }
-    findings, sentences = _recommend(report)
+    findings, sentences = findings_of(report)
     for p in per:
         del p["_min"], p["_max"]
     report["findings"] = findings
     report["recommendations"] = sentences
-    report["method_advice"] = _method_advice(report)
+    report["method_advice"] = method_advice(report)
     return report
-
-
-def _fmt_db(value, unit):
-    return "n/a" if value is None else f"{value:+.2f} {unit}"
-
-
-def _count(n, noun):
-    return f"1 {noun}" if n == 1 else f"{n} {noun}s"
-
-
-def _recommend(r):
-    """Findings (short codes) and one plain sentence for each."""
-    out = []
-    s = r["settings"]
-    per = r["per_channel"]
-    if r["frames"] == 0:
-        return ["empty"], ["The file holds no samples."]
-    if r["nonfinite_samples"]:
-        out.append(("nonfinite",
-                    f"NaN or infinite samples: {r['nonfinite_samples']}. The file is damaged or "
-                    "was written by a faulty process; these figures take them as 0."))
-    if r["silent_fraction"] == 1.0:
-        out.append(("all-silent", "The file holds only digital silence (every sample is 0)."))
-        return [k for k, _ in out], [t for _, t in out]
-    b, cb, kind = r["bits_used"], r["container_bits"], r["bits_kind"]
-    out += _silence_findings(r)
-    if not b:
-        pass  # no nonzero finite sample: nothing to say about the word length
-    elif kind == "pcm" and b < cb:
-        out.append(("lossless-reduction",
-                    f"{b} bits in use out of {cb}: converting to {b} bits is lossless."))
-    elif kind == "pcm":
-        out.append(("full-word-length",
-                    f"All {cb} bits are in use: a shorter word length adds quantization "
-                    "error, so dither when converting."))
-    elif kind == "grid":
-        in_range = all(p["_min"] >= -1.0 and p["_max"] <= 1.0 - 2.0 ** -(b - 1) for p in per)
-        if in_range:
-            out.append(("lossless-reduction",
-                        f"{b} bits in use: every sample lies on the {b}-bit grid, so "
-                        f"converting to {b}-bit PCM is lossless."))
-        else:
-            out.append(("grid-over",
-                        f"Every sample lies on the {b}-bit grid, but some reach or exceed full "
-                        f"scale: lower the gain by 1 LSB or more before converting to {b} bits."))
-    else:
-        out.append(("float-content",
-                    "The samples use floating-point resolution (they lie on no grid of "
-                    f"{_grid_limit(r['subtype'], cb)} bits or fewer): converting to PCM adds "
-                    "quantization error, so dither when converting."))
-    if r["over_samples"]:
-        out.append(("float-overs",
-                    f"Samples above full scale: {r['over_samples']} (sample peak "
-                    f"{_fmt_db(r['peak_dbfs'], 'dBFS')}). Lower the gain before converting to "
-                    "PCM, or they will clip."))
-    if r["true_peak"] > 1.0:
-        out.append(("true-peak-over",
-                    f"True peak is {_fmt_db(r['true_peak_dbtp'], 'dBTP')}, above 0 dBTP: lower "
-                    "the gain before delivery, or the signal between samples will clip in "
-                    "converters and decoders."))
-    if r["clipped_samples"]:
-        out.append(("clipping",
-                    f"Clipping: {_count(r['clipped_samples'], 'sample')} in "
-                    f"{_count(r['clip_runs'], 'run')} of {s['clip_run']} or more at full "
-                    "scale. The audio has probably been clipped."))
-    limit = 10.0 ** (s["dc_threshold_dbfs"] / 20.0)
-    dc_ch = [p for p in per if p["dc_offset"] is not None and abs(p["dc_offset"]) >= limit]
-    if dc_ch:
-        where = ", ".join(
-            f"channel {p['channel']} {_fmt_db(p['dc_offset_dbfs'], 'dBFS')} "
-            f"(mean {p['dc_offset']:+.6f})" for p in dc_ch)
-        out.append(("dc-offset",
-                    f"DC offset at or above {s['dc_threshold_dbfs']:.0f} dBFS on {where}: "
-                    "remove it with a high-pass filter before requantizing."))
-    return [k for k, _ in out], [t for _, t in out]
-
-
-def _silence_findings(r):
-    """Digital silence (runs of exact zeros) told from a quiet signal whose codes are
-    mostly 0 (scattered zeros), and runs of zeros inside the audio (possible dropouts)."""
-    s, per = r["settings"], r["per_channel"]
-    ms = s["silence_min_ms"]
-    run_share = sum(p["silent_run_frames"] for p in per) / (r["frames"] * r["channels"])
-    out = []
-    if run_share >= s["silent_threshold"]:
-        out.append(("mostly-silent",
-                    f"{100 * run_share:.0f} % of the samples lie in runs of exact zeros of "
-                    f"{ms:g} ms or more (digital silence): check for missing audio or long "
-                    "padding."))
-    elif r["silent_fraction"] >= s["silent_threshold"]:
-        b = r["bits_used"]
-        codes = ""
-        if b and r["bits_kind"] in ("pcm", "grid"):
-            peak_lsb = r["peak"] * 2.0 ** (b - 1)
-            codes = (f"; the codes stay within {peak_lsb:.0f} LSB of 0 at {b} bits, as dither "
-                     "noise makes them" if peak_lsb <= DITHER_PEAK_MAX_LSB else
-                     f"; the peak is {peak_lsb:.0f} LSB at {b} bits")
-        out.append(("scattered-zeros",
-                    f"{100 * r['silent_fraction']:.0f} % of the samples are exactly 0 but "
-                    f"scattered ({100 * run_share:.1f} % in runs of {ms:g} ms or more){codes}: "
-                    "a quiet signal at a short word length, not missing audio."))
-    gaps = _gaps(r)
-    if gaps:
-        shown = "; ".join(f"{g['duration_s']:.3f} s at {g['start_s']:.3f} s ({g['where']})"
-                          for g in gaps[:3])
-        more = f"; and {len(gaps) - 3} more" if len(gaps) > 3 else ""
-        out.append(("silent-gap",
-                    f"Exact zeros inside the audio for {s['gap_min_s']:g} s or more: {shown}"
-                    f"{more}. Check for missing audio (a dropout) unless it is a pause."))
-    return out
-
-
-def _gaps(r):
-    """Runs of exact zeros of at least ``gap_min_s`` that neither start nor end the file:
-    in every channel, or in one channel while another holds sound."""
-    frames, rate = r["frames"], r["sample_rate"]
-    least = r["settings"]["gap_min_s"] * rate
-
-    def inside(run):
-        return (run["start_frame"] > 0 and run["start_frame"] + run["frames"] < frames
-                and run["frames"] >= least)
-
-    gaps = [dict(run, where="every channel") for run in r["silent_runs"] if inside(run)]
-    if r["channels"] > 1:
-        every = [(g["start_frame"], g["start_frame"] + g["frames"]) for g in gaps]
-        for p in r["per_channel"]:
-            for run in p["silent_runs"]:
-                a, e = run["start_frame"], run["start_frame"] + run["frames"]
-                if inside(run) and not any(lo <= a and e <= hi for lo, hi in every):
-                    gaps.append(dict(run, where=f"ch {p['channel']} only"))
-    return sorted(gaps, key=lambda g: g["start_frame"])
-
-
-def _method_advice(r):
-    """The "which method" figures and paragraph at ``settings.for_bits``; None for a file
-    with no sound."""
-    from requant.dsp.audibility import advise
-    from requant.report.advice import advice_paragraph
-
-    if r["frames"] == 0 or r["silent_fraction"] == 1.0 or not r["sample_rate"]:
-        return None
-    exact = {"lossless-reduction", "full-word-length"} & set(r["findings"])
-    a = advise(r["settings"]["for_bits"], r["sample_rate"], quiet_dbfs=r["quiet_level_dbfs"],
-               quiet_is_noise={"noise": True, "tonal": False}.get(r["quiet_kind"]),
-               bits_in_use=r["bits_used"] if exact else None)
-    return {**a.to_dict(), "text": advice_paragraph(a)}
-
-
-def _fmt_loudness(loud):
-    """The console's loudness line: integrated loudness and range, or why there is none."""
-    i, lra = loud["integrated_lufs"], loud["range_lu"]
-    if i is None:
-        why = ("the sample rate is too low for K-weighting" if loud["channel_layout"] is None
-               else "no 400 ms block above the gates")
-        return f"n/a ({why})"
-    rng = "n/a (shorter than 3 s)" if lra is None else f"{lra:.1f} LU"
-    return (f"{i:.1f} LUFS integrated (ITU-R BS.1770-4), range {rng} (EBU Tech 3342), "
-            f"{loud['channel_layout']}")
-
-
-def _format_runs(r, shown=8):
-    """Lines listing the digital-silence runs (every channel first, then one channel alone)."""
-    s = r["settings"]
-    head = f"Digital silence: runs of exact zeros of {s['silence_min_ms']:g} ms or more"
-    lists = [("every channel", r)]
-    if len(r["per_channel"]) > 1:
-        lists += [(f"ch {p['channel']}", p) for p in r["per_channel"]
-                  if p["silent_run_frames"] > r["silent_run_frames"]]
-    if not any(d["silent_run_count"] for _, d in lists):
-        return [f"{head}: none."]
-    out = [f"{head} (start, length):"]
-    for label, d in lists:
-        if not d["silent_run_count"]:
-            continue
-        runs = [f"{x['start_s']:.3f} s ({x['duration_s']:.3f} s)" for x in d["silent_runs"][:shown]]
-        more = d["silent_run_count"] - len(runs)
-        out.append(f"  {label}: " + ", ".join(runs) + (f", and {more} more" if more else ""))
-    return out
-
-
-def format_inspection(report):
-    """Render an :func:`inspect_file` report as plain text for the console.
-
-    Parameters
-    ----------
-    report : dict
-        As returned by :func:`inspect_file`.
-
-    Returns
-    -------
-    text : str
-        Several lines, no trailing newline.
-    """
-    r = report
-    per = r["per_channel"]
-    kind_words = {"pcm": "integer PCM", "grid": "float samples on an integer grid",
-                  "float": "floating point"}
-    cbits = r["container_bits"]
-    lines = [
-        f"File         {r['path']}",
-        f"Format       {r['container']}, {r['subtype']}, {r['sample_rate']} Hz, "
-        f"{r['channels']} channel{'s' if r['channels'] != 1 else ''}",
-        f"Length       {r['frames']} frames ({r['duration_s']:.3f} s)",
-        f"Bits in use  {'unknown' if r['bits_used'] is None else r['bits_used']}"
-        + (f" of {cbits}" if cbits is not None else "")
-        + f" ({kind_words.get(r['bits_kind'], r['bits_kind'])})",
-        f"Loudness     {_fmt_loudness(r['loudness'])}",
-        "",
-    ]
-
-    def num(v, fmt):
-        return "n/a" if v is None else format(v, fmt)
-
-    rows = [
-        ("Bits in use", "bits_used", "d"),
-        ("Sample peak (dBFS)", "peak_dbfs", "+.2f"),
-        ("True peak (dBTP)", "true_peak_dbtp", "+.2f"),
-        ("RMS (dBFS, AES17)", "rms_dbfs", "+.2f"),
-        ("DC offset (% of FS)", "dc_offset", "signed-pct"),
-        ("DC offset level (dBFS)", "dc_offset_dbfs", "+.1f"),
-        ("Clipped samples", "clipped_samples", "d"),
-        ("Samples over full scale", "over_samples", "d"),
-        ("Digital silence (%)", "silent_fraction", "pct"),
-        ("Quietest passage (dBFS)", "quiet_level_dbfs", "+.1f"),
-        ("  which is", "quiet_kind", "s"),
-    ]
-    heads = [f"ch {p['channel']}" for p in per] + (["all"] if len(per) > 1 else [])
-    label_w = max(len(label) for label, _, _ in rows) + 2
-    table = [" " * label_w + "".join(f"{h:>10}" for h in heads)]
-    for label, key, fmt in rows:
-        values = [p[key] for p in per] + ([r[key]] if len(per) > 1 else [])
-        if fmt == "pct":
-            cells = [num(None if v is None else 100.0 * v, ".1f") for v in values]
-        elif fmt == "signed-pct":  # the mean with its sign: the dB level below has none
-            cells = [num(None if v is None else 100.0 * v, "+.4f") for v in values]
-        else:
-            cells = [num(v, fmt) for v in values]
-        table.append(f"{label:<{label_w}}" + "".join(f"{c:>10}" for c in cells))
-    lines += table
-    s = r["settings"]
-    lines += [
-        "",
-        *_true_peak_note(r),
-        f"Clipping: runs of {s['clip_run']} or more samples at full scale.",
-        f"Quietest passage: {s['floor_percentile']:g}th percentile of "
-        f"{1000 * s['floor_block_s']:g} ms block RMS levels, digital silence excluded. It is "
-        f"'noise' (the noise floor) when under {100 * s['noise_tonal_max']:g} % of its power "
-        "stands in spectral lines, else 'tonal' (music, tones or hum).",
-        _noise_floor_line(r),
-        *_format_runs(r),
-        "",
-        "Recommendations" if r["recommendations"] else "Recommendations: none",
-    ]
-    lines += [f"  - {text}" for text in r["recommendations"]]
-    advice = r.get("method_advice")
-    if advice is not None:
-        lines += ["", f"Which method at {advice['bits']} bits (--for-bits)"]
-        lines += textwrap.wrap(advice["text"], width=96, initial_indent="  ",
-                               subsequent_indent="  ")
-    return "\n".join(lines)
-
-
-def _true_peak_note(r):
-    """What the true-peak row shows, and where the meter read below the sample peak."""
-    low = [p for p in r["per_channel"]
-           if p["true_peak_meter"] < p["peak"] and p["peak"] > 0.0]
-    note = ("True peak: the larger of the sample peak and the ITU-R BS.1770-4 (4x oversampled) "
-            "reading.")
-    if not low:
-        return [note]
-    where = ", ".join(f"ch {p['channel']} {_fmt_db(p['true_peak_meter_dbtp'], 'dBTP')} against "
-                      f"{_fmt_db(p['peak_dbfs'], 'dBFS')}" for p in low)
-    return [note, f"  The reading is below the sample peak here ({where}): the standard's "
-                  "interpolation filter does not pass samples through unchanged (its phase 0 "
-                  "centre tap is 0.972, -0.25 dB for a lone sample), so it reads a little low "
-                  "on sparse or few-bit material."]
-
-
-def _noise_floor_line(r):
-    kind, level = r["quiet_kind"], r["quiet_level_dbfs"]
-    if level is None:
-        return "Noise floor: n/a (no sound)."
-    if kind == "noise":
-        return (f"Noise floor: {level:+.1f} dBFS (the quietest passage is noise; "
-                f"{100 * r['quiet_tonal_fraction']:.1f} % of its power in spectral lines).")
-    if kind == "tonal":
-        return (f"Noise floor: not shown. The quietest passage ({level:+.1f} dBFS) holds "
-                f"music or tones ({100 * r['quiet_tonal_fraction']:.0f} % of its power in "
-                "spectral lines), so the noise lies below it.")
-    return "Noise floor: not judged (the file is shorter than one block)."
