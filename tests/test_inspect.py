@@ -649,7 +649,7 @@ def test_dithered_few_bit_output_is_not_missing_audio(tmp_path):
     # samples are 0 but no run of zeros reaches 20 ms (960 samples: 0.75^960 ~ 1e-120).
     r = inspect_file(_dithered_8_bit_of_quiet_sine(tmp_path))
     assert r["silent_fraction"] == pytest.approx(0.75, abs=0.03)
-    assert r["silent_run_count"] == 0
+    assert r["silent_run_count"] == 0 and r["silent_run_fraction"] == 0.0
     assert "mostly-silent" not in r["findings"] and "silent-gap" not in r["findings"]
     assert "scattered-zeros" in r["findings"]
     text = " ".join(r["recommendations"])
@@ -666,6 +666,7 @@ def test_a_dropout_of_exact_zeros_is_missing_audio(tmp_path, where):
     v[4 * RATE:6 * RATE, cols] = 0  # a 2 s dropout in the middle
     r = inspect_file(write(tmp_path, "d.wav", v.astype(np.int16), "PCM_16"))
     assert "silent-gap" in r["findings"] and "mostly-silent" not in r["findings"]
+    assert r["silent_run_fraction"] == pytest.approx(0.2 if where == "every" else 0.1)
     text = " ".join(r["recommendations"])
     assert "2.000 s at 4.000 s" in text and "Check for missing audio" in text
     assert ("(every channel)" if where == "every" else "(ch 2 only)") in text

@@ -102,9 +102,9 @@ def findings_of(r):
 def _silence_findings(r):
     """Digital silence (runs of exact zeros) told from a quiet signal whose codes are
     mostly 0 (scattered zeros), and runs of zeros inside the audio (possible dropouts)."""
-    s, per = r["settings"], r["per_channel"]
+    s = r["settings"]
     ms = s["silence_min_ms"]
-    run_share = sum(p["silent_run_frames"] for p in per) / (r["frames"] * r["channels"])
+    run_share = r["silent_run_fraction"]
     out = []
     if run_share >= s["silent_threshold"]:
         out.append(("mostly-silent",

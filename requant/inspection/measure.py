@@ -55,8 +55,9 @@ clipped_samples, clip_runs
 over_samples
     Samples with ``|x| > 1`` (only possible in float files); they clip when
     converted to PCM.
-silent_fraction
-    The share of samples exactly 0. Many zeros are not missing audio: a
+silent_fraction, silent_run_fraction
+    The share of samples exactly 0, and of samples in runs of exact zeros
+    (``silent_runs``: digital silence). Many zeros are not missing audio: a
     quiet signal dithered to a few bits holds mostly 0 codes, scattered (TPDF
     on a signal far below 1 LSB gives 0 three times in four). So the
     ``mostly-silent`` finding counts only samples in runs of exact zeros
@@ -515,7 +516,7 @@ def inspect_file(path, *, block_frames=DEFAULT_BLOCK_FRAMES, clip_run=3,
         ``true_peak_meter_dbtp``, ``rms_dbfs``, ``dc_offset``,
         ``dc_offset_dbfs``, ``dc_offset_polarity``, ``clipped_samples``,
         ``clip_runs``, ``over_samples``, ``nonfinite_samples``,
-        ``silent_fraction``, ``quiet_level_dbfs``, ``quiet_kind``,
+        ``silent_fraction``, ``silent_run_fraction``, ``quiet_level_dbfs``, ``quiet_kind``,
         ``quiet_tonal_fraction``, ``quiet_blocks_judged``,
         ``noise_floor_dbfs``, ``silent_runs``, ``silent_run_count``,
         ``silent_run_frames``; ``per_channel``: a list with one dict of the
@@ -662,6 +663,7 @@ def _channel_figures(acc, c, frames, **bits_args):
         "over_samples": int(g("overs")[c]),
         "nonfinite_samples": int(g("nonfinite")[c]),
         "silent_fraction": float(g("silent")[c] / frames) if frames else None,
+        "silent_run_fraction": float(acc.runs.frames[c] / frames) if frames else None,
         **_quiet(acc, acc.hist[c], [c]),
         **_runs(acc, c),
         "_min": float(g("vmin")[c]),
@@ -709,6 +711,8 @@ def _build_report(acc, *, path, container, subtype, rate, container_bits, pcm_bi
         "over_samples": int(g("overs").sum()),
         "nonfinite_samples": int(g("nonfinite").sum()),
         "silent_fraction": float(g("silent").sum() / total) if total else None,
+        "silent_run_fraction": (float(acc.runs.frames[:ch].sum() / total) if total
+                                else None),
         **_quiet(acc, acc.hist.sum(axis=0), list(range(ch))),
         **_runs(acc, ch),
         "loudness": _loudness(acc),

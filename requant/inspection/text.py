@@ -82,7 +82,8 @@ def format_inspection(report):
         ("DC offset level (dBFS)", "dc_offset_dbfs", "+.1f"),
         ("Clipped samples", "clipped_samples", "d"),
         ("Samples over full scale", "over_samples", "d"),
-        ("Digital silence (%)", "silent_fraction", "pct"),
+        ("Exact zeros (%)", "silent_fraction", "pct"),
+        ("  in silent runs (%)", "silent_run_fraction", "pct"),
         ("Quietest passage (dBFS)", "quiet_level_dbfs", "+.1f"),
         ("  which is", "quiet_kind", "s"),
     ]
