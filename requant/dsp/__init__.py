@@ -12,5 +12,7 @@ loudness (integrated loudness and the EBU Tech 3342 range, streaming);
 runs of digital silence, and :mod:`.overlap` runs a kernel
 on a second core; :mod:`.cap` the rules for signals raised for listening (the
 -6 dBFS cap); :mod:`.analysis` the report's streaming measurements;
-:mod:`.figures` turns running sums into SNR, LSB² and dBFS.
+:mod:`.figures` turns running sums into SNR, LSB² and dBFS; :mod:`.resample`
+converts the sample rate (an exact rational polyphase filter, its loop in
+:mod:`.ratekernel`).
 """
