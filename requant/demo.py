@@ -189,6 +189,9 @@ _JOBS = [
      Recipe(bits=16, dither="tpdf", shaping="hearing")),
     ("tidewater_master.flac", "tidewater_16bit_truncated.flac",
      Recipe(bits=16, dither="none", quantizer="truncate")),
+    # the same master delivered for CD in one pass: 48 kHz -> 44.1 kHz, true peak under -1 dBTP
+    ("tidewater_master.flac", "tidewater_cd_44k1_16bit_hearing.flac",
+     Recipe(bits=16, dither="tpdf", shaping="hearing", rate=44100, peak_ceiling_dbtp=-1.0)),
     ("coin.wav", "coin_8bit_tpdf.wav", Recipe(bits=8, dither="tpdf")),
     ("door_thud.wav", "door_thud_8bit_tpdf.wav", Recipe(bits=8, dither="tpdf")),
     ("chime.wav", "chime_8bit_tpdf.wav", Recipe(bits=8, dither="tpdf")),
@@ -200,7 +203,10 @@ def _method(recipe):
     parts = [recipe.quantizer, recipe.dither]
     if recipe.shaping.kind != "none":
         parts.append(recipe.shaping.kind)
-    return "+".join(parts)
+    method = "+".join(parts)
+    if recipe.rate is not None:
+        method += f"@{recipe.rate / 1000:g}k"
+    return method
 
 
 def _demo_outputs(out):
@@ -260,7 +266,7 @@ def run_demo(out, *, source=None, seed=2026, overwrite=False):
         rep = convert_file(src / name, out / out_name, recipe.with_seed(seed + i),
                            outputs=outputs)
         rows.append((out_name, recipe.bits, _method(recipe), rep))
-    head = (f"{'output':36} {'bits':>4} {'method':21} {'SNR dB':>6} {'pred':>6} "
+    head = (f"{'output':36} {'bits':>4} {'method':25} {'SNR dB':>6} {'pred':>6} "
             f"{'err LSB²':>8} {'pred':>6} {'A-wtd dBFS':>10} {'pred':>7}  follows signal")
     lines = [f"requant demo: results in {out}/", head, "-" * len(head)]
     for out_name, bits, method, rep in rows:
@@ -268,7 +274,7 @@ def run_demo(out, *, source=None, seed=2026, overwrite=False):
         f = lambda v, s: "n/a" if v is None else format(v, s)  # noqa: E731
         corr = "YES" if m.signal_correlated else "no"
         lines.append(
-            f"{out_name:36} {bits:>4} {method:21} {f(m.snr_db, '6.2f')} "
+            f"{out_name:36} {bits:>4} {method:25} {f(m.snr_db, '6.2f')} "
             f"{f(p.snr_db, '6.2f')} {f(m.error_power_lsb2, '8.4f')} "
             f"{f(p.error_power_lsb2, '6.4f')} {f(m.a_weighted_noise_dbfs, '10.2f')} "
             f"{f(p.a_weighted_noise_dbfs, '7.2f')}  {corr}"
@@ -276,7 +282,8 @@ def run_demo(out, *, source=None, seed=2026, overwrite=False):
     silent = [(out_name, rep) for out_name, _, _, rep in rows if rep.measured.silent_frames]
     for out_name, rep in silent:
         per = sorted({ch.measured.silent_frames for ch in rep.channels})
-        secs = " / ".join(f"{n / rep.input.sample_rate:.2f} s" for n in per)
+        rate = rep.preparation["rate_out"] if rep.preparation else rep.input.sample_rate
+        secs = " / ".join(f"{n / rate:.2f} s" for n in per)
         lines.append(f"{out_name}: {secs} of digital silence kept silent (exact zeros, no "
                      "dither hiss out of nothing)")
     lines.append("SNR in dB; error power per sample in LSB² of the target word length; A-wtd: "

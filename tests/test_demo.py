@@ -24,7 +24,7 @@ def test_demo_runs_and_tells_dithered_from_undithered(tmp_path):
     table = run_demo(tmp_path / "out", seed=5)
     lines = table.splitlines()
     rows = {ln.split()[0]: ln for ln in lines if ln.endswith(("YES", "no"))}
-    assert len(rows) == 7
+    assert len(rows) == 8
     # truncating the 16-bit fade and rounding the 8-bit chime without dither: flagged
     assert rows["tidewater_16bit_truncated.flac"].endswith("YES")
     assert rows["chime_8bit_round.wav"].endswith("YES")
@@ -40,3 +40,10 @@ def test_demo_runs_and_tells_dithered_from_undithered(tmp_path):
     assert rep["predicted"]["error_power_lsb2"] == pytest.approx(0.25 * share)
     assert abs(rep["measured"]["error_power_lsb2"] / (0.25 * share) - 1) < 0.01
     assert (tmp_path / "out" / "tidewater_16bit_tpdf_hearing_report.html").stat().st_size > 10000
+    # the CD delivery in one pass: 44.1 kHz, true peak at most -1 dBTP before dither, the 0.9 s of
+    # digital silence still exact zeros at the new rate (a zero input resamples to exact zeros)
+    cd = json.loads((tmp_path / "out" / "tidewater_cd_44k1_16bit_hearing_report.json").read_text())
+    assert cd["preparation"]["rate_out"] == 44100
+    assert sf.info(tmp_path / "out" / "tidewater_cd_44k1_16bit_hearing.flac").samplerate == 44100
+    assert cd["preparation"]["true_peak_after_dbtp"] <= -1.0 + 1e-9
+    assert cd["predicted"]["error_power_lsb2"] > 0.25  # shaped: Δ²/4 times the NTF's power gain
