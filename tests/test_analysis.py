@@ -8,6 +8,8 @@ Sources:
 [IEC]   IEC 61672-1:2013 (A-weighting); [468] ITU-R BS.468-4 (weighting curve).
 [W67]   Welch, "The use of FFT for the estimation of power spectra", IEEE Trans. Audio
         Electroacoust. 15(2), 1967 (from memory for the citation details).
+[R9]    ../shared/REFERENCES.md §9 (and §2): high-passed TPDF r[n] − r[n−1] has the total error
+        spectrum Δ²/12 + (Δ²/12)·|1 − e^−jω|², from the dither's definition.
 """
 
 import json
@@ -256,8 +258,249 @@ def test_running_median_equals_scipy_median_filter(n, half):
     # reference library: scipy.ndimage.median_filter with mode="nearest"
     from scipy.ndimage import median_filter
 
-    from requant.dsp.analysis import _running_median
+    from requant.dsp.tones import _running_median
 
     v = np.random.default_rng(n).exponential(1.0, n)
     assert np.array_equal(_running_median(v, half),
                           median_filter(v, size=2 * half + 1, mode="nearest"))
+
+
+# ------------------------------------------------------------------------------------------
+# issue 20, item 2: high-passed TPDF is predicted from its own spectrum, not as flat noise
+
+
+def _iec_a_power(f):
+    # IEC 61672-1:2013 Annex E, equations (E.1)-(E.6): poles 20.598997, 107.65265, 737.86223
+    # and 12194.217 Hz, A(1 kHz) normalised by +2.000 dB (REFERENCES §4); power weight W².
+    f = np.asarray(f, dtype=np.float64)
+    f1, f2, f3, f4 = 20.598997, 107.65265, 737.86223, 12194.217
+    ra = (f4**2 * f**4) / ((f**2 + f1**2) * np.sqrt((f**2 + f2**2) * (f**2 + f3**2))
+                           * (f**2 + f4**2))
+    return (ra * 10 ** (2.0 / 20)) ** 2
+
+
+def _power_weight(name):
+    from requant.dsp.weighting import weighting_power
+
+    if name == "a":
+        return _iec_a_power
+    # ITU-R BS.468-4 (the analytic fit, checked against Table 1 in test_weighting) and the
+    # inverse of Terhardt's (1979) threshold, 1 at 1 kHz
+    return lambda f: weighting_power(name, np.asarray(f, dtype=np.float64))
+
+
+def _hp_tpdf_spectrum_lsb2(f, fs):
+    # [R9], [LWV92]: the requantization error of the dithered signal is white, Δ²/12, and
+    # uncorrelated with the dither ν[n] = r[n] − r[n−1] (r uniform over one LSB, variance
+    # Δ²/12), whose spectrum is (Δ²/12)·|1 − e^−jω|² = (Δ²/12)·2(1 − cos ω). In LSB².
+    w = 2 * np.pi * np.asarray(f, dtype=np.float64) / fs
+    return 1 / 12 + (1 / 12) * 2 * (1 - np.cos(w))
+
+
+def _closed_form_dbfs(spectrum_lsb2, weight, fs, bits):
+    # mean over 0..fs/2 of S(f)·W²(f), in full scale², as AES17 dBFS (10·log10(2·P))
+    from scipy.integrate import quad
+
+    knots = [20.0, 100.0, 1000.0, 5000.0, 15000.0, min(17800.0, fs / 2 - 1)]
+    val, _ = quad(lambda f: spectrum_lsb2(f) * float(weight(f)), 0.0, fs / 2, limit=400,
+                  points=[k for k in knots if k < fs / 2])
+    return 10 * np.log10(2 * val / (fs / 2) * 2.0 ** (-2 * (bits - 1)))
+
+
+def _music_like(fs, seconds, seed):
+    # invented material: noise under a soft spectral tilt and a slow envelope, with a few
+    # partials, about -20 dBFS RMS: busy, and far above 1 LSB at 16 bits
+    from scipy.signal import butter, lfilter
+
+    rng = np.random.default_rng(seed)
+    n = int(fs * seconds)
+    t = np.arange(n) / fs
+    b, a = butter(2, 2500.0, fs=fs)
+    x = lfilter(b, a, rng.standard_normal(n))
+    x = x / np.std(x) + 0.3 * np.sin(2 * np.pi * 220.0 * t) + 0.2 * np.sin(2 * np.pi * 1375.0 * t)
+    env = 0.6 + 0.35 * np.sin(2 * np.pi * 0.11 * t + 0.4)
+    return (0.07 * env * x).reshape(-1, 1)
+
+
+def test_hp_tpdf_weighted_and_spectrum_match_their_closed_form(tmp_path):
+    # Predicted A / 468 / threshold-weighted noise equal the closed form computed here from
+    # the dither's definition [R9] (within 0.01 dB); measured within 0.1 dB of predicted on
+    # 60 s of music-like material; the flat-TPDF model would miss by more than 1 dB.
+    fs, bits = 48000, 16
+    x = _music_like(fs, 60.0, seed=20)
+    src = tmp_path / "music.wav"
+    sf.write(src, x.astype(np.float32), fs, subtype="FLOAT")
+    rep = convert_file(src, tmp_path / "o.wav", Recipe(bits=bits, dither="tpdf-hp", seed=7),
+                       outputs=Outputs(report=tmp_path / "r.json"))
+    d = json.loads((tmp_path / "r.json").read_text())
+    keys = {"a": "a_weighted_noise_dbfs", "itu468": "itu468_noise_dbfs",
+            "threshold": "threshold_weighted_noise_dbfs"}
+    for name, key in keys.items():
+        closed = _closed_form_dbfs(lambda f: _hp_tpdf_spectrum_lsb2(f, fs), _power_weight(name),
+                                   fs, bits)
+        flat = _closed_form_dbfs(lambda f: 0.25, _power_weight(name), fs, bits)  # TPDF, LWV92
+        pred, meas = d["predicted"][key], d["measured"][key]
+        assert pred == pytest.approx(closed, abs=0.01), (name, pred, closed)
+        assert abs(meas - pred) < 0.1, (name, meas, pred)
+        assert abs(meas - flat) > 1.0, (name, meas, flat)  # the flat model was the bug
+    # plain power: Δ²/4 in all [LWV92]
+    assert rep.predicted.error_power_lsb2 == pytest.approx(0.25)
+    assert rep.measured.error_power_lsb2 == pytest.approx(0.25, rel=0.01)
+    # the spectrum: per-bin levels in four wide bands (hundreds of bins each, so the scatter
+    # of the averaged estimate stays near 0.03 dB), measured against predicted (0.1 dB), and
+    # predicted against the closed form at every 1/6-octave band's centre (0.05 dB)
+    sp = d["analysis"]["spectrum"]
+    fc = np.array(sp["band_centers_hz"])
+    meas = 10 ** (np.array(sp["measured_dbfs_per_bin"])[:, 0] / 10)
+    pred = 10 ** (np.array(sp["predicted_dbfs_per_bin"]) / 10)
+    df = fs / d["analysis"]["method"]["segment_frames"]
+    closed = 10 * np.log10(2 * _hp_tpdf_spectrum_lsb2(fc, fs) * 2.0 ** -30 * 2 * df / fs)
+    assert np.max(np.abs(10 * np.log10(pred) - closed)) < 0.05
+    for lo, hi in ((100.0, 1000.0), (1000.0, 4000.0), (4000.0, 12000.0), (12000.0, 24000.0)):
+        sel = (fc >= lo) & (fc < hi)
+        diff = 10 * np.log10(np.mean(meas[sel]) / np.mean(pred[sel]))
+        assert abs(diff) < 0.1, (lo, diff)
+    # and it is far from flat: Δ²/12 at DC against 5Δ²/12 at Nyquist, 7 dB [R9]
+    assert 10 * np.log10(pred[-1] / pred[0]) > 6.0
+
+
+def test_predicted_power_and_spectrum_of_every_dither_model():
+    # The power is the mean of the spectrum over 0..fs/2 for every dither and shaper: the
+    # white models' Δ²/12, Δ²/6, Δ²/4 times Σn² [LWV92], [Z]; high-passed TPDF Δ²/4 unshaped
+    # [R9] and Σ c_j ρ_j shaped (the mean of cos(jω)|N|² is the taps' autocorrelation ρ_j).
+    from requant.dsp.quantizer import error_spectrum_lsb2, predicted_error_power_lsb2
+
+    fs = 48000
+    f = np.linspace(0, fs / 2, 200001)
+    for dither, white in (("none", 1 / 12), ("rpdf", 1 / 6), ("tpdf", 1 / 4), ("tpdf-hp", None)):
+        for h in ((), (1.0,), (1.2, -0.5, 0.1)):
+            s = error_spectrum_lsb2(dither, f, fs, h)
+            mean = np.trapezoid(s, f) / (fs / 2)
+            p = predicted_error_power_lsb2("round", dither, h)
+            assert p == pytest.approx(mean, rel=1e-6)
+            n = np.concatenate(([1.0], -np.asarray(h)))
+            if white is not None:
+                assert p == pytest.approx(white * np.sum(n * n))
+    assert predicted_error_power_lsb2("round", "tpdf-hp") == pytest.approx(0.25)
+    assert error_spectrum_lsb2("tpdf-hp", [0.0, fs / 2], fs) == pytest.approx([1 / 12, 5 / 12])
+
+
+def test_shaped_hp_tpdf_is_refused():
+    # The recipe refuses high-passed TPDF inside a shaping loop (LWV 2004: the loop's model
+    # needs dither independent from sample to sample), so its shaped prediction is never used.
+    from requant.errors import RequantError
+
+    with pytest.raises(RequantError, match="noise-shaping loop"):
+        Recipe(bits=16, dither="tpdf-hp", shaping="hearing")
+
+
+# ------------------------------------------------------------------------------------------
+# issue 20, item 10a: the weighted noise is a uniform average over every sample
+
+
+def _fir_weighting(name, fs, taps=32769):
+    # A linear-phase FIR with the weighting's magnitude (scipy.signal.firwin2, frequency
+    # sampling with a Blackman window): A per IEC 61672-1 Annex E, 468 per ITU-R BS.468-4,
+    # threshold the inverse of Terhardt (1979).
+    from scipy.signal import firwin2
+
+    f = np.linspace(0.0, fs / 2, 8193)
+    g = np.sqrt(_power_weight(name)(f))
+    return firwin2(taps, f, g, fs=fs, window="blackman")
+
+
+@pytest.mark.parametrize("fs, frames", [(44100, 12345), (48000, 48001), (48000, 100003),
+                                        (44100, 300007)])
+def test_undithered_weighted_noise_equals_a_whole_file_filter(tmp_path, fs, frames):
+    # Undithered error of quiet music-like material follows the signal, so any sample
+    # weighted unevenly or left out shows. The report's figures must equal the weighting
+    # filter run over the whole error file in one go (scipy.signal.fftconvolve, the full
+    # convolution's energy over the clip's length) within 0.02 dB.
+    from scipy.signal import fftconvolve
+
+    rng = np.random.default_rng(frames)
+    t = np.arange(frames) / fs
+    x = (2.5 * np.sin(2 * np.pi * 331 * t) * (1 + 0.5 * np.sin(2 * np.pi * 1.3 * t))
+         + 1.5 * np.sin(2 * np.pi * 2791 * t)
+         + np.convolve(rng.standard_normal(frames), np.ones(4) / 4, "same")) / 32768
+    src = tmp_path / "clip.wav"
+    sf.write(src, x.astype(np.float32), fs, subtype="FLOAT")
+    rep = convert_file(src, tmp_path / "o.wav", Recipe(bits=16, dither="none", seed=1),
+                       outputs=Outputs(report=tmp_path / "r.json", error=tmp_path / "e.wav"))
+    e, _ = sf.read(tmp_path / "e.wav", dtype="float64")
+    assert e.shape[0] == frames
+    for name, key in (("a", "a_weighted_noise_dbfs"), ("itu468", "itu468_noise_dbfs"),
+                      ("threshold", "threshold_weighted_noise_dbfs")):
+        y = fftconvolve(e, _fir_weighting(name, fs))
+        ref = 10 * np.log10(2 * np.sum(y * y) / frames)
+        assert getattr(rep.measured, key) == pytest.approx(ref, abs=0.02), name
+
+
+@pytest.mark.parametrize("blocks", [[1, 7, 4096, 65536], [13, 8191, 8193], [100000]])
+def test_noise_meter_blocks_equal_whole(blocks):
+    # Like scipy.signal.max_len_seq's state test: feeding in blocks of any size gives the
+    # figures of one call on the whole (the tiles do not depend on the blocks).
+    from requant.dsp.noisemeter import WeightedNoiseMeter
+
+    fs, n = 48000, 150001
+    rng = np.random.default_rng(3)
+    e = rng.standard_normal((n, 2)).astype(np.float32)
+    sil = np.zeros((n, 2), bool)
+    sil[20000:30000, 1] = True
+    e[sil] = 0.0
+    whole = WeightedNoiseMeter(2, fs, total_frames=n)
+    whole.process(e, silent=sil)
+    ref = whole.finish()
+    m = WeightedNoiseMeter(2, fs, total_frames=n)
+    i, k = 0, 0
+    while i < n:
+        step = blocks[k % len(blocks)]
+        m.process(e[i:i + step], silent=sil[i:i + step])
+        i += step
+        k += 1
+    got = m.finish()
+    for name in ("flat", "a", "itu468", "threshold"):
+        assert got["all"][name] == pytest.approx(ref["all"][name], rel=1e-9)
+        assert got["covered"][name] == pytest.approx(ref["covered"][name], rel=1e-9)
+    assert list(got["covered_samples"]) == [n, n - 10000]
+    # Parseval: the unweighted figure is the plain mean square
+    assert got["all"]["flat"] == pytest.approx(np.mean(e.astype(np.float64) ** 2, axis=0),
+                                               rel=1e-9)
+
+
+def test_noise_meter_sampled_tiles_of_a_stationary_error():
+    # A stationary error (white TPDF-like noise through 1 − 0.5 z^−1) measured on evenly
+    # spread tiles agrees with every tile within 0.03 dB; silent and excluded samples are
+    # counted exactly either way, and a clipped sample's tile is always measured.
+    from requant.dsp.noisemeter import MAX_SAMPLED_TILES, WeightedNoiseMeter
+
+    fs = 48000
+    rng = np.random.default_rng(5)
+    n = fs * 200
+    w = rng.random(n) - rng.random(n)
+    e = np.stack([w - 0.5 * np.concatenate(([0.0], w[:-1]))] * 2, axis=1)
+    sil = np.zeros((n, 2), bool)
+    for _ in range(40):
+        a = int(rng.integers(0, n - 50000))
+        sil[a:a + int(rng.integers(1000, 50000))] = True
+    e[sil] = 0.0
+    exc = np.zeros((n, 2), bool)
+    idx = rng.integers(0, n, 30)
+    exc[idx, 0] = True
+    e[idx, 0] = 300.0
+    out = {}
+    for sample in (False, True):
+        m = WeightedNoiseMeter(2, fs, total_frames=n, sample=sample)
+        for i in range(0, n, 65536):
+            m.process(e[i:i + 65536].astype(np.float32), silent=sil[i:i + 65536],
+                      exclude=exc[i:i + 65536])
+        out[sample] = m.finish()
+        assert m.sampled is sample
+        assert m.tiles_measured <= (MAX_SAMPLED_TILES + 40 if sample else m.tiles_total)
+    expect = 2 * n - np.sum(sil) - np.sum(exc)
+    for r in out.values():
+        assert int(np.sum(r["covered_samples"])) == expect
+    for name in ("flat", "a", "itu468", "threshold"):
+        for kind in ("all", "covered"):
+            diff = 10 * np.log10(out[True][kind][name] / out[False][kind][name])
+            assert np.max(np.abs(diff)) < 0.03, (name, kind, diff)

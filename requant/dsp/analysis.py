@@ -6,11 +6,23 @@ block by block and keeps only fixed-size state:
 * **Error spectrum** -- Welch's method (Welch 1967): Hann window (periodic),
   segments of :func:`segment_frames` samples (about 1/8 s), 50 % overlap.
   At most :data:`MAX_SEGMENTS` segments per channel are analysed, spread
-  evenly over the file, so long files cost no more than short ones. The
-  weighted noise figures integrate this PSD against the A-weighting (IEC
-  61672-1), the ITU-R BS.468-4 curve (used here with an RMS detector,
-  not the standard's quasi-peak one) and the inverse of Terhardt's hearing
-  threshold (the weighting the ``hearing`` shaper minimises).
+  evenly over the file, so long files cost no more than short ones. It gives
+  the pictures, the band table and the tone measure.
+* **Weighted noise** -- A-weighting (IEC 61672-1), the ITU-R BS.468-4 curve
+  (used here with an RMS detector, not the standard's quasi-peak one) and the
+  inverse of Terhardt's hearing threshold (the weighting the ``hearing``
+  shaper minimises), by :class:`requant.dsp.noisemeter.WeightedNoiseMeter`:
+  every sample counted once, the tail included (a long file with TPDF dither,
+  whose error is stationary, on evenly spread tiles); over every sample, and
+  over the samples the prediction covers (not kept silent, not at the ends of
+  the output's range).
+* **Prediction** -- the dither's spectrum (:func:`requant.dsp.quantizer.error_spectrum_lsb2`:
+  white for none, RPDF and TPDF; rising from Δ²/12 at DC to 5Δ²/12 at Nyquist
+  for high-passed TPDF) through the noise-shaping filter, weighted.
+* **Peaks and the range's ends** -- sample peaks of input and output (the
+  report shows the larger of sample and true peak); output samples at the
+  ends of the range (every clipped sample is one) with their error's energy;
+  without dither, the samples passed unchanged (already on the output grid).
 * **Signal-correlated error** -- two figures, the larger of which is
   reported as ``correlated_error_fraction``:
 
@@ -41,7 +53,22 @@ import math
 import numpy as np
 
 # the dither powers (LWV 1992) and the prediction live in one place: requant.dsp.quantizer
-from requant.dsp.quantizer import DITHER_MODELS, DITHER_POWER_LSB2, predicted_error_power_lsb2
+from requant.dsp.quantizer import (
+    DITHER_POWER_LSB2,
+    error_pdf,
+    error_spectrum_lsb2,
+    predicted_error_power_lsb2,
+)
+
+# the tone measures are shared with the audit and inspect: requant.dsp.tones
+from requant.dsp.tones import (
+    TONE_THRESHOLD_DB,
+    _hann,
+    noise_floor,
+    passage_correlation,
+    passage_tonal_fraction,
+    tonal_fraction,
+)
 
 __all__ = [
     "ErrorAnalyzer",
@@ -57,6 +84,8 @@ __all__ = [
     "MAX_SEGMENTS",
     "TONE_THRESHOLD_DB",
     "CORRELATED_WARNING_FRACTION",
+    "QUIET_UNDITHERED_LSB_RMS",
+    "STATIONARY_DITHERS",
     "DITHER_POWER_LSB2",
 ]
 
@@ -72,14 +101,18 @@ MAX_SEGMENTS = 512
 #: 0.1 % quieter than the one kept; a wider slack made stationary programme
 #: copy nearly every window.
 _RANK_SLACK = 1.001
-#: A PSD bin this far above the running median counts as a tone.
-TONE_THRESHOLD_DB = 6.0
-#: Half-width (bins) of the running median that tracks the noise floor.
-MEDIAN_HALF_WIDTH = 24
 #: Warn when this share of the error power follows the signal.
 CORRELATED_WARNING_FRACTION = 0.02
 #: Warn when the quietest passage's error power is this far (dB) from the model.
 MODULATION_WARNING_DB = 3.0
+#: Without dither, a passage (or a whole file) whose signal RMS is at or below this many LSB
+#: of the output is requantized into an error that is a function of the signal, whatever
+#: the correlation measures show (our rule: within about 6 dB of 1 LSB RMS, where the
+#: output has only a few levels to follow the signal with).
+QUIET_UNDITHERED_LSB_RMS = 2.0
+#: Dithers whose total error does not depend on the signal (Wannamaker, Lipshitz, Vanderkooy
+#: & Wright 2000): a long file's weighted noise may be measured on evenly spread tiles.
+STATIONARY_DITHERS = ("tpdf", "tpdf-hp")
 
 
 
@@ -112,146 +145,6 @@ def _tail(kept, v, keep):
 def quiet_window_frames(sample_rate, total_frames=None):
     """Length of the windows searched for the quietest passage (4 segments)."""
     return 4 * segment_frames(sample_rate, total_frames)
-
-
-def _hann(n):
-    return 0.5 - 0.5 * np.cos(2.0 * np.pi * np.arange(n) / n)
-
-
-def _running_median(values, half):
-    """Running median over ±half bins, the ends extended with the end values.
-
-    The same as ``scipy.ndimage.median_filter(values, size=2*half+1,
-    mode="nearest")`` (the tests check it), without importing scipy.ndimage
-    on the report path.
-    """
-    values = np.asarray(values, dtype=np.float64)
-    padded = np.pad(values, half, mode="edge")
-    windows = np.lib.stride_tricks.sliding_window_view(padded, 2 * half + 1)
-    return np.median(windows, axis=-1)
-
-
-def noise_floor(psd):
-    """The smooth part of a spectrum: its running median over ±:data:`MEDIAN_HALF_WIDTH` bins.
-
-    Tones (lines a few bins wide) do not move it; :func:`tonal_fraction`
-    measures what stands above it, and the audit (:mod:`requant.audit`) reads
-    the shape of the noise from it.
-    """
-    return _running_median(psd, MEDIAN_HALF_WIDTH)
-
-
-def tonal_fraction(psd):
-    """Share of the power of ``psd`` standing above its running median.
-
-    Bins more than :data:`TONE_THRESHOLD_DB` above the median of their
-    neighbourhood count with their excess over that median.
-    """
-    psd = np.asarray(psd, dtype=np.float64)
-    total = psd.sum()
-    if total <= 0.0 or psd.size < 8:
-        return 0.0
-    floor = noise_floor(psd)
-    tone = psd > floor * 10.0 ** (TONE_THRESHOLD_DB / 10.0)
-    return float(np.sum((psd - floor)[tone]) / total)
-
-
-def passage_correlation(x, e):
-    """How much of a passage's error follows its signal: (squared correlation, tonal share).
-
-    The convert report's measure of its quietest passage, for any passage:
-    the largest over channels of the squared correlation coefficient of
-    signal and error, and of the tonal share (:func:`tonal_fraction`) of the
-    error's spectrum averaged over Hann segments of an eighth of the passage
-    (half overlapping). The mean of the error (a truncation bias) is no tone.
-
-    Parameters
-    ----------
-    x, e : ndarray (frames, channels)
-        Signal and error of the passage (any units; at least 16 frames).
-
-    Returns
-    -------
-    (float, float)
-    """
-    x = np.asarray(x, dtype=np.float64)
-    e = np.asarray(e, dtype=np.float64)
-    n = x.shape[0]
-    L = max(2, n // 8)
-    hop = max(1, L // 2)
-    win = _hann(L)
-    starts = np.arange(0, n - L + 1, hop)
-    idx = starts[:, None] + np.arange(L)[None, :]
-    xc = x - x.mean(axis=0)
-    ec = e - e.mean(axis=0)  # the truncation bias is no tone of the signal
-    fe = np.fft.rfft(ec[idx] * win[None, :, None], axis=1)
-    psd = np.sum(np.abs(fe) ** 2, axis=0).T  # (channels, bins), unnormalised
-    tonal = max(tonal_fraction(p[2:]) for p in psd)
-    rho2 = 0.0
-    for c in range(x.shape[1]):
-        den = float(np.sum(xc[:, c] ** 2) * np.sum(ec[:, c] ** 2))
-        if den > 0.0:
-            rho2 = max(rho2, float(np.sum(xc[:, c] * ec[:, c]) ** 2 / den))
-    return rho2, tonal
-
-
-def passage_tonal_fraction(x):
-    """Share of a passage's own power standing in spectral lines: music, tones or hum rather
-    than noise (the test ``requant inspect`` applies to a file's quietest passage).
-
-    :func:`tonal_fraction` of the passage's spectrum, averaged over Hann segments of an
-    eighth of the passage (half overlapping) and summed over channels, each channel's mean
-    removed; the two lowest bins (DC and its leakage) are left out.
-
-    Parameters
-    ----------
-    x : ndarray (frames, channels)
-        The passage (at least 16 frames).
-
-    Returns
-    -------
-    float
-    """
-    x = np.asarray(x, dtype=np.float64)
-    n = x.shape[0]
-    L = max(2, n // 8)
-    starts = np.arange(0, n - L + 1, max(1, L // 2))
-    idx = starts[:, None] + np.arange(L)[None, :]
-    xc = x - x.mean(axis=0)
-    f = np.fft.rfft(xc[idx] * _hann(L)[None, :, None], axis=1)
-    return tonal_fraction(np.sum(np.abs(f) ** 2, axis=(0, 2))[2:])
-
-
-def error_pdf(lsb, *, quantizer, dither, coeffs=()):
-    """Theoretical pdf of the total error, in LSB, at the points ``lsb``.
-
-    Unshaped: the rounding error (uniform over one LSB) convolved with the
-    dither's pdf, shifted by −1/2 for truncation (nonsubtractive dither with
-    a busy input; Lipshitz, Wannamaker & Vanderkooy 1992). Shaped: the sum of
-    many weighted terms, drawn as a Gaussian with the predicted mean and
-    variance.
-    """
-    x = np.asarray(lsb, dtype=np.float64)
-    n = np.concatenate(([1.0], -np.asarray(coeffs, dtype=np.float64)))
-    bias = -0.5 if quantizer == "truncate" else 0.0
-    if n.size > 1:
-        var = DITHER_POWER_LSB2[dither] * float(np.sum(n * n))
-        mean = bias * float(np.sum(n))
-        return np.exp(-0.5 * (x - mean) ** 2 / var) / math.sqrt(2 * math.pi * var)
-    step = 1e-3
-    grid = np.arange(-4.0, 4.0 + step / 2, step)
-    uni = ((grid >= -0.5) & (grid < 0.5)).astype(float)
-    kind = DITHER_MODELS[dither].pdf
-    if kind == "none":
-        pdf = uni
-    else:
-        if kind == "uniform":
-            dpdf = uni
-        else:  # triangular over (-1, 1): tpdf, and tpdf-hp's marginal
-            dpdf = np.clip(1.0 - np.abs(grid), 0.0, None)
-        pdf = np.convolve(uni, dpdf, mode="same") * step
-    pdf = pdf / (pdf.sum() * step)
-    return np.interp(x - bias, grid, pdf, left=0.0, right=0.0)
 
 
 def _db(power, *, floor=None):
@@ -345,6 +238,16 @@ class ErrorAnalyzer:
         self._loud = self._side = None
         if loudness:
             self._start_loudness(output_gain)
+        # weighted noise over every sample (or evenly spread tiles of a stationary error)
+        from requant.dsp.noisemeter import WeightedNoiseMeter
+
+        self._meter = WeightedNoiseMeter(self.channels, self.rate, total_frames=total_frames,
+                                         sample=dither in STATIONARY_DITHERS)
+        # sample peaks, clipping beyond the model, samples passed unchanged (undithered)
+        from requant.dsp.levels import LevelMeter
+
+        self._levels = LevelMeter(self.channels, bits=bits, quantizer=quantizer, dither=dither,
+                                  coeffs=self.coeffs)
 
     def _start_loudness(self, gain):
         import weakref
@@ -399,6 +302,8 @@ class ErrorAnalyzer:
         try:
             if self._tp is not None:
                 self._tp.process(x, e32)
+            clipped, zeros = self._levels.process(x, e32, silent)
+            self._meter.process(e32, silent=silent if zeros is None else zeros, exclude=clipped)
             self._feed_segments(e32, silent)
             self._feed_quiet(x32, e32, silent)
         finally:
@@ -551,16 +456,14 @@ class ErrorAnalyzer:
     def predicted_psd(self, freqs):
         """Predicted one-sided error PSD (full scale²/Hz), dither noise only.
 
-        ``(2 σ² / fs)·|NTF(f)|²`` with σ² the dither's rounding power; the
-        truncation bias sits at 0 Hz and is left out.
+        ``(2 / fs)·S(f)·|NTF(f)|² / scale²`` with ``S`` the dither's spectrum
+        (:func:`requant.dsp.quantizer.error_spectrum_lsb2`: flat for none, RPDF and
+        TPDF, ``Δ²/4 − (Δ²/6)·cos ω`` for high-passed TPDF); the truncation bias sits
+        at 0 Hz and is left out.
         """
-        sigma2 = DITHER_POWER_LSB2[self.dither] / self.scale ** 2
-        ntf2 = np.ones_like(freqs)
-        if self.coeffs.size:
-            from requant.dsp.shaping import ntf_response
-
-            ntf2 = np.abs(ntf_response(self.coeffs, freqs, self.rate)) ** 2
-        return 2.0 * sigma2 / self.rate * ntf2
+        f = np.asarray(freqs, dtype=np.float64)
+        s = error_spectrum_lsb2(self.dither, f, self.rate, self.coeffs)
+        return 2.0 * s / (self.scale ** 2 * self.rate)
 
     def predicted_weighted(self):
         """Predicted weighted noise powers (full scale²) for 'a', 'itu468' and 'threshold'."""
@@ -643,22 +546,23 @@ class ErrorAnalyzer:
         }
         pw = self.predicted_weighted()
         have_psd = self._nseg > 0
+        wn = self._meter.finish()
+        out["method"].update(self._meter_method())
         meas_w = {}
+        if self._meter.frames:
+            for k in self._meter.weightings:
+                meas_w[k] = _db(float(np.mean(wn["all"][k])))
         per_channel = []
         if have_psd:
             psd_e = self._psd(self._see)
-            w = self._weights(freqs)
-            df = self.rate / self.L
             for c in range(self.channels):
-                row = {k: _db(float(np.sum(psd_e[c] * v) * df)) for k, v in w.items()}
+                row = {k: _db(float(wn["all"][k][c])) for k in self._meter.weightings}
                 # bins 0 and 1 hold the DC (truncation bias) and its Hann leakage;
                 # too few averaged segments make noise look tonal: no verdict then
                 row["tonal_fraction"] = (tonal_fraction(psd_e[c][2:])
                                          if self._nseg >= MIN_SEGMENTS // 2 else 0.0)
                 row["correlation_fraction"] = self._correlation2(c)
                 per_channel.append(row)
-            for k, v in w.items():
-                meas_w[k] = _db(float(np.mean(np.sum(psd_e * v[None, :], axis=1) * df)))
         tonal = max((r["tonal_fraction"] for r in per_channel), default=0.0)
         rho2 = self._correlation2()
         quiet = self._quiet_figures()
@@ -670,20 +574,36 @@ class ErrorAnalyzer:
             "tonal_fraction": tonal,
             "correlation_fraction": rho2,
             "correlated_error_fraction": corr,
+            "signal_rms_lsb": math.sqrt(max(float(np.sum(self._sx2)), 0.0)
+                                        / max(self._n * self.channels, 1)) * self.scale,
         }
+        out["model"] = {"quantizer": self.quantizer, "dither": self.dither, "bits": self.bits,
+                        "shaped": bool(self.coeffs.size)}
+        out["coverage"] = self._coverage(wn)
         out["predicted"] = {
             "a_weighted_noise_dbfs": _db(pw["a"]),
             "itu468_noise_dbfs": _db(pw["itu468"]),
             "threshold_weighted_noise_dbfs": _db(pw["threshold"]),
         }
         out["channels"] = per_channel
+        with np.errstate(divide="ignore"):
+            sin = 20.0 * np.log10(self._levels.peak_in)
+            sout = 20.0 * np.log10(self._levels.peak_out)
         if self._tp is not None:
+            # the interpolator (BS.1770-4 Annex 2) does not pass the samples through exactly:
+            # its ripple can read a little below the sample peak, so the larger one is shown
             tin, tout = self._tp.true_peak_dbtp
+            shown_in, shown_out = np.maximum(tin, sin), np.maximum(tout, sout)
             out["true_peak"] = {
-                "input_dbtp": _finite(np.max(tin)),
-                "output_dbtp": _finite(np.max(tout)),
-                "input_dbtp_per_channel": [_finite(v) for v in tin],
-                "output_dbtp_per_channel": [_finite(v) for v in tout],
+                "input_dbtp": _finite(np.max(shown_in)),
+                "output_dbtp": _finite(np.max(shown_out)),
+                "input_dbtp_per_channel": [_finite(v) for v in shown_in],
+                "output_dbtp_per_channel": [_finite(v) for v in shown_out],
+                "input_meter_dbtp": _finite(np.max(tin)),
+                "output_meter_dbtp": _finite(np.max(tout)),
+                "input_sample_peak_dbfs": _finite(np.max(sin)),
+                "output_sample_peak_dbfs": _finite(np.max(sout)),
+                "shown": "the larger of the sample peak and the BS.1770-4 interpolator's reading",
             }
         loud = self.loudness()
         if loud is not None:
@@ -705,6 +625,42 @@ class ErrorAnalyzer:
         self.psd_error = self._psd(self._see) if have_psd else None
         self.quiet_samples = None if self._quiet is None else (self._quiet["x"], self._quiet["e"])
         return out
+
+    def _meter_method(self):
+        """The ``method`` entries of the weighted noise measurement."""
+        m = self._meter
+        how = ("every sample once: rectangular tiles (Parseval) with their seams joined "
+               "exactly, the last one zero-padded, as one weighting filter over the whole "
+               "error" if not m.sampled else
+               f"{m.tiles_measured} of {m.tiles_total} tiles spread evenly (the error of "
+               f"{self.dither} dither is stationary) and every tile with a clipped sample; "
+               "silent and clipped samples counted over the whole file")
+        return {"weighted": how, "weighted_tile_frames": m.L,
+                "weighted_tiles_measured": m.tiles_measured}
+
+    def _coverage(self, wn):
+        """What the prediction covers, per channel, with the measured figures over it.
+
+        ``silent_samples`` (kept silent), ``clipped_samples`` (clipped beyond what dither
+        explains: at an end of the range with a larger error than the model makes, left
+        out), their error's ``clipped_error_energy`` (full scale², summed),
+        ``unchanged_samples`` (without dither: samples already on the output grid, passed
+        with no error; None with dither), ``covered_samples``, and ``covered_mean_square``:
+        'flat' and each weighting, the error's mean square per covered sample (full
+        scale²; None where none is covered).
+        """
+        lv = self._levels
+        unchanged = lv.unchanged
+        cov = {k: [None if not np.isfinite(v) else float(v) for v in wn["covered"][k]]
+               for k in wn["covered"]}
+        return {
+            "silent_samples": [int(v) for v in lv.silent],
+            "clipped_samples": [int(v) for v in lv.clipped],
+            "clipped_error_energy": [float(v) for v in lv.clipped_energy],
+            "unchanged_samples": None if unchanged is None else [int(v) for v in unchanged],
+            "covered_samples": [int(v) for v in wn["covered_samples"]],
+            "covered_mean_square": cov,
+        }
 
     def _band_spectrum(self, freqs):
         """1/6-octave band averages of the per-bin error power, measured and predicted."""

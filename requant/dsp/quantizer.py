@@ -20,6 +20,7 @@ run from ``-2**(bits-1)`` to ``2**(bits-1) - 1``.
 """
 
 import functools
+import math
 import secrets
 from typing import NamedTuple
 
@@ -42,6 +43,8 @@ __all__ = [
     "Requantizer",
     "requantize",
     "predicted_error_power_lsb2",
+    "error_spectrum_lsb2",
+    "error_pdf",
     "new_seed",
     "lsb",
 ]
@@ -59,26 +62,46 @@ class DitherModel(NamedTuple):
     pdf : {'none', 'uniform', 'triangular'}
         The dither's own amplitude distribution (the total error's is this
         convolved with the uniform rounding error).
+    spectrum_lsb2 : tuple of float, LSB²
+        The total error's power spectrum, unshaped, as a cosine series:
+        ``S(ω) = Σ_j c_j·cos(j·ω)`` (ω = 2π·f/fs), scaled so that its mean over
+        0..π is the power: ``c_0 == power_lsb2``. One term for a white error.
+
+    Notes
+    -----
+    High-passed TPDF, ``ν[n] = r[n] − r[n−1]`` with ``r`` uniform over one
+    LSB: the total error is the requantization error of the dithered signal
+    (white, Δ²/12) plus the dither itself, whose spectrum is
+    ``(Δ²/12)·|1 − e^{−jω}|² = (Δ²/12)·2(1 − cos ω)``; the two are
+    uncorrelated at every lag, because each is conditioned on one uniform
+    draw that smooths the other (the RPDF first-moment property of
+    nonsubtractive dither, Lipshitz, Wannamaker & Vanderkooy 1992). So
+    ``S(ω) = 1/4 − (1/6)·cos ω`` LSB²: Δ²/12 at DC, 5Δ²/12 at Nyquist, Δ²/4
+    in all (REFERENCES.md §2, §9).
     """
 
     mode: int
     power_lsb2: float
     pdf: str
+    spectrum_lsb2: tuple = ()
 
 
 #: Every dither of :data:`requant.recipe.DITHERS`: its kernel mode and its model.
 #: Lipshitz, Wannamaker & Vanderkooy (1992), JAES 40(5): none 1/12 (busy signal),
-#: RPDF 1/6 (averaged over input), TPDF 1/4 (for every input); high-passed TPDF
-#: r[n] - r[n-1] has the marginal of TPDF and the same total power, 1/4.
+#: RPDF 1/6 (averaged over input), TPDF 1/4 (for every input), each white; high-passed
+#: TPDF r[n] - r[n-1] has the marginal of TPDF and the same total power, 1/4, but its
+#: spectrum rises from Δ²/12 at DC to 5Δ²/12 at Nyquist (see DitherModel).
 DITHER_MODELS = {
-    "none": DitherModel(_kernel.DITHER_NONE, 1.0 / 12.0, "none"),
-    "rpdf": DitherModel(_kernel.DITHER_RPDF, 1.0 / 6.0, "uniform"),
-    "tpdf": DitherModel(_kernel.DITHER_TPDF, 0.25, "triangular"),
-    "tpdf-hp": DitherModel(_kernel.DITHER_TPDF_HP, 0.25, "triangular"),
+    "none": DitherModel(_kernel.DITHER_NONE, 1.0 / 12.0, "none", (1.0 / 12.0,)),
+    "rpdf": DitherModel(_kernel.DITHER_RPDF, 1.0 / 6.0, "uniform", (1.0 / 6.0,)),
+    "tpdf": DitherModel(_kernel.DITHER_TPDF, 0.25, "triangular", (0.25,)),
+    "tpdf-hp": DitherModel(_kernel.DITHER_TPDF_HP, 0.25, "triangular", (0.25, -1.0 / 6.0)),
 }
 if tuple(DITHER_MODELS) != DITHERS:  # a dither named in one place only is a bug, not a default
     raise ImportError(f"requant.recipe.DITHERS {DITHERS} and DITHER_MODELS "
                       f"{tuple(DITHER_MODELS)} disagree; give every dither a model")
+if any(m.spectrum_lsb2[0] != m.power_lsb2 for m in DITHER_MODELS.values()):
+    raise ImportError("a DitherModel's spectrum must average to its power (c_0 == power_lsb2)")
 
 #: Mean-square error of each dither with an ideal rounding quantizer, in LSB².
 DITHER_POWER_LSB2 = {name: m.power_lsb2 for name, m in DITHER_MODELS.items()}
@@ -109,6 +132,11 @@ def new_seed():
     return secrets.randbits(63)
 
 
+def _ntf(coeffs):
+    """The noise transfer function's taps n = [1, −h_1, …, −h_K]."""
+    return np.concatenate(([1.0], -np.asarray(coeffs, dtype=np.float64).reshape(-1)))
+
+
 def predicted_error_power_lsb2(quantizer, dither, coeffs=()):
     """Predicted mean-square error per sample, in LSB².
 
@@ -123,22 +151,96 @@ def predicted_error_power_lsb2(quantizer, dither, coeffs=()):
     Returns
     -------
     float
-        ``P_d * sum(n_k**2) + (bias * sum(n_k))**2`` where ``P_d`` is the
-        dither's rounding power (1/12, 1/6, 1/4) and ``bias`` is -1/2 for
-        truncation, 0 for rounding.
+        ``Σ_j c_j·ρ_j + (bias * sum(n_k))**2``, where ``c_j`` is the dither's
+        spectrum as a cosine series (:attr:`DitherModel.spectrum_lsb2`),
+        ``ρ_j = Σ_k n_k·n_{k+j}`` the autocorrelation of the NTF's taps and
+        ``bias`` −1/2 for truncation, 0 for rounding. For a white dither this
+        is ``P_d * sum(n_k**2)`` with ``P_d`` its rounding power (1/12, 1/6,
+        1/4).
 
     Notes
     -----
+    The mean over 0..π of ``cos(jω)·|N(e^{jω})|²`` is ``ρ_j``, so the power of
+    the spectrum :func:`error_spectrum_lsb2` is exactly this sum.
     Truncation is rounding of ``x - delta/2``, so it adds a constant -1/2 LSB
     to the rounding error: unshaped, Δ²/12 + Δ²/4 = Δ²/3 undithered (Bennett
     1948; Widrow & Kollár 2008). The constant passes the NTF at DC, hence
     ``sum(n_k)``. The "none" figure holds only for busy signals.
     """
-    n = np.concatenate(([1.0], -np.asarray(coeffs, dtype=np.float64)))
-    power = DITHER_POWER_LSB2[dither] * float(np.sum(n * n))
+    n = _ntf(coeffs)
+    spec = DITHER_MODELS[dither].spectrum_lsb2
+    power = 0.0
+    for j, c in enumerate(spec[:n.size]):  # ρ_j = 0 beyond the NTF's length
+        power += c * float(np.dot(n[:n.size - j], n[j:]))
     if quantizer == "truncate":
         power += (0.5 * float(np.sum(n))) ** 2
     return power
+
+
+def error_spectrum_lsb2(dither, freqs, sample_rate, coeffs=()):
+    """The predicted spectrum of the error's noise, LSB², at ``freqs``.
+
+    Parameters
+    ----------
+    dither : {'none', 'rpdf', 'tpdf', 'tpdf-hp'}
+    freqs : array_like of float, Hz
+    sample_rate : float, Hz
+    coeffs : sequence of float
+        Error-feedback coefficients (none: unshaped).
+
+    Returns
+    -------
+    ndarray
+        ``S(ω)·|N(e^{jω})|²`` with ``S`` the dither's spectrum
+        (:attr:`DitherModel.spectrum_lsb2`) and ``N`` the noise transfer
+        function: LSB² per unit of normalized bandwidth, so that its mean over
+        0..fs/2 is the noise power (:func:`predicted_error_power_lsb2` less the
+        truncation bias, which sits at 0 Hz). The one-sided PSD in full scale²
+        per Hz is ``2·S/(fs·scale²)``.
+    """
+    w = 2.0 * np.pi * np.asarray(freqs, dtype=np.float64) / float(sample_rate)
+    spec = DITHER_MODELS[dither].spectrum_lsb2
+    out = np.full(w.shape, float(spec[0]))
+    for j, c in enumerate(spec[1:], start=1):
+        out += c * np.cos(j * w)
+    n = _ntf(coeffs)
+    if n.size > 1:
+        k = np.arange(n.size)
+        resp = np.exp(-1j * np.multiply.outer(w, k)) @ n
+        out *= resp.real ** 2 + resp.imag ** 2
+    return out
+
+
+def error_pdf(lsb, *, quantizer, dither, coeffs=()):
+    """Theoretical pdf of the total error, in LSB, at the points ``lsb``.
+
+    Unshaped: the rounding error (uniform over one LSB) convolved with the
+    dither's pdf, shifted by −1/2 for truncation (nonsubtractive dither with
+    a busy input; Lipshitz, Wannamaker & Vanderkooy 1992). Shaped: the sum of
+    many weighted terms, drawn as a Gaussian with the predicted mean and
+    variance.
+    """
+    x = np.asarray(lsb, dtype=np.float64)
+    n = np.concatenate(([1.0], -np.asarray(coeffs, dtype=np.float64)))
+    bias = -0.5 if quantizer == "truncate" else 0.0
+    if n.size > 1:
+        var = predicted_error_power_lsb2("round", dither, coeffs)  # the noise, no bias
+        mean = bias * float(np.sum(n))
+        return np.exp(-0.5 * (x - mean) ** 2 / var) / math.sqrt(2 * math.pi * var)
+    step = 1e-3
+    grid = np.arange(-4.0, 4.0 + step / 2, step)
+    uni = ((grid >= -0.5) & (grid < 0.5)).astype(float)
+    kind = DITHER_MODELS[dither].pdf
+    if kind == "none":
+        pdf = uni
+    else:
+        if kind == "uniform":
+            dpdf = uni
+        else:  # triangular over (-1, 1): tpdf, and tpdf-hp's marginal
+            dpdf = np.clip(1.0 - np.abs(grid), 0.0, None)
+        pdf = np.convolve(uni, dpdf, mode="same") * step
+    pdf = pdf / (pdf.sum() * step)
+    return np.interp(x - bias, grid, pdf, left=0.0, right=0.0)
 
 
 class Requantizer:
