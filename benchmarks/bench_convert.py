@@ -93,7 +93,7 @@ def make_program(path, minutes):
 
 def timed(cmd):
     t = time.perf_counter()
-    subprocess.run(cmd, check=True, stdout=subprocess.DEVNULL)
+    subprocess.run(cmd, check=True, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
     return time.perf_counter() - t
 
 
@@ -197,9 +197,13 @@ def main():
                        "rate": requant_cmd(*hbase, "--rate", 44100)}, a.repeats)
         print(f"{'96k 24-bit -> 44.1k 16-bit + error, vs no --rate':48} {m['rate']:9.2f} "
               f"{m['plain']:8.2f} {m['rate'] / m['plain']:6.2f} {'<=5.00':>7}")
-        rss = peak_rss_mb(requant_cmd(*hbase, "--rate", 44100))
-        print(f"{'peak RSS, --rate 44100, ' + f'{a.minutes:g} min (MB)':48} {rss:9.1f} "
-              f"{'':>8} {'':>6} {'flat':>7}")
+        short = work / "stereo96k_1min_24.wav"
+        make_input(short, 1, "PCM_24", "WAV", fs=96000)
+        for s, label in ((short, "1 min"), (hsrc, f"{a.minutes:g} min")):
+            rss = peak_rss_mb(requant_cmd("convert", s, out, "--overwrite", "--error", err,
+                                          "--quiet", "--rate", 44100))
+            print(f"{'peak RSS, --rate 44100, ' + label + ' (MB)':48} {rss:9.1f} {'':>8} "
+                  f"{'':>6} {'flat':>7}")
     if "rss" in rows:
         short = work / "stereo48k_1min_float.wav"
         make_input(short, 1, "FLOAT", "WAV")

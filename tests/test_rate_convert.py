@@ -122,3 +122,17 @@ def test_rate_of_the_same_rate_does_nothing(tmp_path):
     convert_file(tmp_path / "m.wav", tmp_path / "b.wav", Recipe(seed=1))
     assert a.preparation is None
     assert (tmp_path / "a.wav").read_bytes() == (tmp_path / "b.wav").read_bytes()
+
+
+def test_the_report_page_states_the_filter_and_the_gain(tmp_path):
+    master(tmp_path / "m.wav", seconds=0.5)
+    rep = convert_file(tmp_path / "m.wav", tmp_path / "o.wav",
+                       Recipe(rate=44100, channels=1, peak_ceiling_dbtp=-6.0, seed=1,
+                              shaping="hearing"),
+                       outputs=Outputs(report=tmp_path / "r.md"))
+    text = (tmp_path / "r.md").read_text()
+    assert re.search(r"\| output rate and channels \| 44\W?100 Hz, 1 channel\(s\) \|", text)
+    assert "exact ratio 147/320" in text  # 44100/96000 in lowest terms
+    assert re.search(r"rejection 14\d\.\d dB", text)
+    assert "true-peak ceiling -6 dBTP" in text
+    assert rep.sample_rate == 44100

@@ -631,6 +631,13 @@ class Report:
     preparation: Mapping[str, Any] | None = None
 
     @property
+    def sample_rate(self) -> int:
+        """The delivered sample rate, Hz: the input's, unless the rate was converted."""
+        if self.preparation is not None and self.preparation.get("rate_out"):
+            return int(self.preparation["rate_out"])
+        return self.input.sample_rate
+
+    @property
     def analysed(self) -> bool:
         """Whether the streaming analysis ran (weighted noise, correlation, true peak)."""
         return self.analysis is not None

@@ -404,6 +404,11 @@ def _files_table(report):
         ["output format", f"{out.format} {out.subtype}, {out.bits}-bit "
                           f"words, {out.container_bits}-bit container"],
     ]
+    prep = report.preparation
+    if prep is not None:
+        rows.append(["output rate and channels", f"{fmt_int(prep['rate_out'])} Hz, "
+                                                 f"{prep['channels_out']} channel(s)"])
+        rows += _preparation_rows(prep)
     if out.passthrough:
         rows.append(["pass-through", "yes: written unchanged"])
     if err is not None:
@@ -425,9 +430,36 @@ def _files_table(report):
     return _table("files", "Files", ["file", "value"], rows, numeric=[False, False])
 
 
+def _preparation_rows(prep):
+    """The stages before the quantizer: channels, rate (with the filter's figures), gain."""
+    rows = []
+    if prep["channels_out"] != prep["channels_in"]:
+        rows.append(["channels", f"{prep['channels_in']} -> {prep['channels_out']}"
+                     + (f" ({prep['downmix']} downmix)" if prep["downmix"] else " (copied)")])
+    rf = prep.get("rate_filter")
+    if rf:
+        rows.append(["rate conversion", f"{fmt_int(prep['rate_in'])} -> "
+                     f"{fmt_int(prep['rate_out'])} Hz, exact ratio {rf['up']}/{rf['down']}"])
+        rows.append(["rate filter", (
+            f"linear-phase Kaiser-windowed sinc, {fmt_int(rf['total_taps'])} taps "
+            f"(beta {rf['kaiser_beta']:.3f}); passband to {rf['passband_edge_hz']:.0f} Hz, "
+            f"ripple ±{rf['passband_ripple_db']:.1e} dB; stopband from "
+            f"{rf['stopband_edge_hz']:.0f} Hz, rejection {rf['stopband_rejection_db']:.1f} dB; "
+            "delay compensated")])
+    if prep["gain_db"] or prep["ceiling_dbtp"] is not None:
+        text = f"{prep['gain_db']:+.2f} dB in float64 before dither"
+        if prep["ceiling_dbtp"] is not None:
+            tp = prep["true_peak_before_dbtp"]
+            text += (f"; true-peak ceiling {prep['ceiling_dbtp']:g} dBTP, true peak "
+                     f"{'of silence' if tp is None or tp == float('-inf') else f'{tp:+.2f} dBTP'}"
+                     f" before the gain")
+        rows.append(["gain", text])
+    return rows
+
+
 def _shaping_table(report, *, passthrough):
     coeffs = report.settings.shaping_coeffs
-    rate = report.input.sample_rate
+    rate = report.sample_rate
     if not coeffs or not rate:
         return None
     from requant.dsp.shaping import describe
@@ -463,7 +495,7 @@ def _method_table(report, analyzer, bands_per_octave):
     meth = report.analysis.method if report.analysis is not None else None
     if not meth:
         return None
-    rate = report.input.sample_rate or 0
+    rate = report.sample_rate or 0
     L = meth.get("segment_frames")
     stride = meth.get("segment_stride") or 1
     rows = [
