@@ -24,7 +24,9 @@ from helpers import chunk, fmt_pcm, pcm24, riff_wave
 RATE = 48000
 
 TOP = ["requant_version", "created", "settings", "input", "output", "error_signal", "lsb",
-       "measured", "predicted", "channels", "warnings", "notes"]
+       "measured", "predicted", "prediction_coverage", "channels", "warnings", "notes"]
+COVERAGE = ["samples", "covered_samples", "silent_samples", "clipped_samples",
+            "unchanged_samples", "clipped_beyond_model_samples", "measured", "predicted"]
 RECIPE = ["bits", "quantizer", "dither", "shaping", "shaping_order", "shaping_limit_db",
           "shaping_coeffs", "shaping_source", "shaping_rate", "seed", "force_dither", "silence",
           "silence_min_ms", "channels", "downmix", "rate", "gain_db", "peak_ceiling_dbtp"]
@@ -38,7 +40,7 @@ MEASURED_ANALYSED = MEASURED + ["a_weighted_noise_dbfs", "itu468_noise_dbfs",
                                 "threshold_weighted_noise_dbfs", "tonal_fraction",
                                 "correlation_fraction", "correlated_error_fraction",
                                 "input_true_peak_dbtp", "output_true_peak_dbtp",
-                                "signal_correlated"]
+                                "signal_correlated", "signal_correlated_reason"]
 PREDICTED = ["snr_db", "error_power_lsb2", "error_rms_dbfs"]
 WEIGHTED = ["a_weighted_noise_dbfs", "itu468_noise_dbfs", "threshold_weighted_noise_dbfs"]
 CHANNEL = FIGURES + ["silent_frames"]
@@ -138,6 +140,9 @@ def test_json_structure_is_pinned(written):
                                                                     "gain"]
     assert list(d["measured"]) == (MEASURED_ANALYSED if analysed else MEASURED)
     assert list(d["predicted"]) == PREDICTED + (WEIGHTED if analysed else [])
+    assert list(d["prediction_coverage"]) == COVERAGE
+    assert list(d["prediction_coverage"]["predicted"]) == ["error_power_lsb2", "error_rms_dbfs"] \
+        + WEIGHTED
     # a channel's analysis figures appear when the analysis measured spectra; a pass-through
     # states its predicted weighted noise (null) even then
     per_channel = analysed and case not in ("short pass-through", "shorter than a segment",

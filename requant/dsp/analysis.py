@@ -52,6 +52,13 @@ import math
 
 import numpy as np
 
+# the verdict on the figures (shared with the audit): requant.dsp.correlated
+from requant.dsp.correlated import (
+    CORRELATED_WARNING_FRACTION,
+    QUIET_UNDITHERED_LSB_RMS,
+    correlated_summary,
+)
+
 # the dither powers (LWV 1992) and the prediction live in one place: requant.dsp.quantizer
 from requant.dsp.quantizer import (
     DITHER_POWER_LSB2,
@@ -101,15 +108,6 @@ MAX_SEGMENTS = 512
 #: 0.1 % quieter than the one kept; a wider slack made stationary programme
 #: copy nearly every window.
 _RANK_SLACK = 1.001
-#: Warn when this share of the error power follows the signal.
-CORRELATED_WARNING_FRACTION = 0.02
-#: Warn when the quietest passage's error power is this far (dB) from the model.
-MODULATION_WARNING_DB = 3.0
-#: Without dither, a passage (or a whole file) whose signal RMS is at or below this many LSB
-#: of the output is requantized into an error that is a function of the signal, whatever
-#: the correlation measures show (our rule: within about 6 dB of 1 LSB RMS, where the
-#: output has only a few levels to follow the signal with).
-QUIET_UNDITHERED_LSB_RMS = 2.0
 #: Dithers whose total error does not depend on the signal (Wannamaker, Lipshitz, Vanderkooy
 #: & Wright 2000): a long file's weighted noise may be measured on evenly spread tiles.
 STATIONARY_DITHERS = ("tpdf", "tpdf-hp")
@@ -302,7 +300,10 @@ class ErrorAnalyzer:
         try:
             if self._tp is not None:
                 self._tp.process(x, e32)
-            clipped, zeros = self._levels.process(x, e32, silent)
+            tp = self._tp
+            clipped, zeros = self._levels.process(
+                x, e32, silent, bounds=None if tp is None else tp.block_bounds,
+                true_peaks=None if tp is None else tp.peak_out)
             self._meter.process(e32, silent=silent if zeros is None else zeros, exclude=clipped)
             self._feed_segments(e32, silent)
             self._feed_quiet(x32, e32, silent)
@@ -413,17 +414,19 @@ class ErrorAnalyzer:
 
     def _close_quiet_window(self):
         x = self._qx
-        nonzero = np.count_nonzero(x)
-        if nonzero < 0.5 * x.size:
-            return  # (mostly) digital silence: not a passage
         ms_fast = self._qsum / x.size  # float32 sums: to rank windows
         if ms_fast <= 0.0 or (self._quiet is not None
                               and ms_fast > _RANK_SLACK * self._quiet["ms"]):
             return
-        ms = float(np.mean(x.astype(np.float64) ** 2))  # exact, for the candidates
-        if self._quiet is None or ms < self._quiet["ms"]:
-            self._quiet = {"ms": ms, "start": self._qstart, "x": x.copy(), "e": self._qe.copy(),
-                           "s": None if self._qs is None else self._qs.copy()}
+        flat = x.reshape(-1).astype(np.float64)
+        # exact, for the candidates (einsum: BLAS would start threads that spin for a while)
+        ms = float(np.einsum("i,i->", flat, flat)) / x.size
+        if self._quiet is not None and ms >= self._quiet["ms"]:
+            return
+        if np.count_nonzero(x) < 0.5 * x.size:
+            return  # (mostly) digital silence: not a passage
+        self._quiet = {"ms": ms, "start": self._qstart, "x": x.copy(), "e": self._qe.copy(),
+                       "s": None if self._qs is None else self._qs.copy()}
 
     # -- results -------------------------------------------------------------------------------
 
@@ -727,42 +730,3 @@ def analyze_arrays(x, err, sample_rate, *, bits, quantizer, dither, coeffs=(), t
     }
     out.update(correlated_summary(res))
     return out
-
-
-def correlated_summary(res):
-    """Whether the error follows the signal, and the warning sentence if so.
-
-    Looks at the whole signal and at its quietest passage; returns
-    ``correlated_error_fraction`` (the larger), ``signal_correlated`` and
-    ``warnings``.
-    """
-    whole = res["measured"]["correlated_error_fraction"]
-    q = res.get("quietest_passage")
-    quiet = q["correlated_error_fraction"] if q else 0.0
-    frac = max(whole, quiet)
-    warnings = []
-    flagged = frac > CORRELATED_WARNING_FRACTION
-    if flagged:
-        if q is not None and quiet >= whole:
-            where = (f"in the quietest passage (at {q['start_s']:.2f} s, "
-                     f"{_fmt_db(q['signal_rms_dbfs'])} dBFS RMS)")
-        else:
-            where = "over the whole signal"
-        warnings.append(
-            f"signal-correlated error: {100 * frac:.0f}% of the error power {where} follows "
-            "the signal, so the requantization is heard as distortion rather than steady "
-            "noise; use TPDF dither (and keep clipping away)."
-        )
-    dev = q.get("error_power_deviation_db") if q else None
-    if q is not None and (dev is None or abs(dev) > MODULATION_WARNING_DB):
-        level = "no error at all" if dev is None else f"{dev:+.1f} dB from the prediction"
-        warnings.append(
-            f"noise modulation: in the quietest passage (at {q['start_s']:.2f} s) the error "
-            f"power is {level}, so the noise level follows the signal; TPDF dither keeps it "
-            "constant."
-        )
-    return {"correlated_error_fraction": frac, "signal_correlated": flagged, "warnings": warnings}
-
-
-def _fmt_db(v):
-    return "-inf" if v is None else f"{v:.1f}"

@@ -66,7 +66,7 @@ WEIGHTINGS = ("a", "itu468", "threshold")
 #: At most this many evenly spread tiles (and those with an exclusion) are measured on a
 #: long stationary signal (sample=True): 87 s of audio at 48 kHz, 4.2 million samples per
 #: channel, which leaves about 0.01 dB of scatter on the weighted figures.
-MAX_SAMPLED_TILES = 1024
+MAX_SAMPLED_TILES = 512
 #: Lags corrected exactly at the tiles' seams (a shaped noise's correlation lies within
 #: its NTF's length: 10 taps for the hearing design).
 SEAM_LAGS = 64
@@ -177,9 +177,13 @@ class WeightedNoiseMeter:
         i = 0
         L = self.L
         while i < n:
-            if self._fill == 0 and self.stride == 1 and n - i >= 2 * L and exclude is None:
-                i += self._whole_tiles(e, i, (n - i) // L, silent)
-                continue
+            if self._fill == 0 and n - i >= L and exclude is None:
+                if self.stride == 1 and n - i >= 2 * L:
+                    i += self._whole_tiles(e, i, (n - i) // L, silent)
+                    continue
+                if self._due > 0:  # sampling: whole tiles to skip, counted at once
+                    i += self._skip_tiles(min(self._due, (n - i) // L), i, silent)
+                    continue
             if self._fill == 0:
                 self._copying = self.stride == 1 or self._due == 0
             take = min(L - self._fill, n - i)
@@ -244,6 +248,20 @@ class WeightedNoiseMeter:
                 self._seam[j] += _across(tail, heads[0] - head)
         self._edges = ((tails[-1], heads[-1]),) * 2
         self._count_tiles(k, silent, i)
+        return k * L
+
+    def _skip_tiles(self, k, i, silent):
+        """Sampling: ``k`` whole tiles from frame ``i`` skipped, their samples counted."""
+        L = self.L
+        counted = np.full(self.channels, k * L, dtype=np.float64)
+        if silent is not None:
+            s = silent[i:i + k * L]
+            if s.any():
+                for c in range(self.channels):
+                    counted[c] -= np.count_nonzero(s[:, c])
+        self._c[3] += counted
+        self._due -= k
+        self.frames += k * L
         return k * L
 
     def _count_tiles(self, k, silent, i):

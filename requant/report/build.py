@@ -14,7 +14,7 @@ from typing import Any
 
 from requant import __version__
 from requant.audio_io.formats import LOSSY_SUBTYPES, container_bits_of
-from requant.dsp.figures import measured_figures, predicted_figures
+from requant.dsp.figures import measured_figures, power_to_dbfs, predicted_figures
 from requant.dsp.quantizer import predicted_error_power_lsb2
 from requant.recipe import Recipe
 from requant.report.model import (
@@ -28,6 +28,7 @@ from requant.report.model import (
     MetadataRecord,
     OutputFacts,
     PredictedFigures,
+    PredictionCoverage,
     Report,
     ReportSettings,
 )
@@ -80,6 +81,7 @@ def _fold_analysis(res, total, pred_total, channels, *, passthrough):
         summary = correlated_summary(res)
     total["correlated_error_fraction"] = summary["correlated_error_fraction"]
     total["signal_correlated"] = summary["signal_correlated"]
+    total["signal_correlated_reason"] = summary.get("signal_correlated_reason")
     warnings = list(summary["warnings"])
     tp_db = total.get("output_true_peak_dbtp")
     if tp_db is not None and tp_db > 0.0:
@@ -117,13 +119,124 @@ def _difference_notes(m, p, *, dither_applied, section):
     return notes
 
 
-def _figures(rq, frames, passthrough):
+def _coverage(rq, conv, analysis, model_weighted):
+    """The :class:`PredictionCoverage`: the counts from the requantizer (and, analysed, the
+    analysis), the model per covered sample, and the measured figures over the covered
+    samples (analysed only)."""
+    t = rq.totals()
+    samples = conv.frames * rq.channels
+    silent, clipped = int(t["silent"].sum()), int(t["clipped"].sum())
+    cov = None if analysis is None or conv.passthrough else analysis.get("coverage")
+    unchanged = beyond = None
+    if cov is not None:
+        beyond = int(sum(cov["clipped_samples"]))
+        if cov.get("unchanged_samples") is not None:
+            unchanged = int(sum(cov["unchanged_samples"]))
+    passthrough = conv.passthrough
+    covered = 0 if passthrough else max(samples - silent - clipped - (unchanged or 0), 0)
+    model = 0.0 if passthrough else predicted_error_power_lsb2(rq.quantizer, rq.dither, rq.coeffs)
+    scale2 = rq.scale * rq.scale
+    predicted = {"error_power_lsb2": model, "error_rms_dbfs": power_to_dbfs(model / scale2)}
+    predicted.update({k: None if passthrough else model_weighted.get(k) for k in _WEIGHTED_KEYS})
+    measured = None
+    if cov is not None:
+        counts = cov["covered_samples"]
+        n = sum(counts)
+        e2 = max(float(t["sum_e2"].sum()) - sum(cov["clipped_error_energy"]) * scale2, 0.0)
+        power = e2 / n if n else None
+        measured = {"error_power_lsb2": power,
+                    "error_rms_dbfs": None if not power else power_to_dbfs(power / scale2)}
+        for key, name in zip(_WEIGHTED_KEYS, ("a", "itu468", "threshold")):
+            pairs = [(v, c) for v, c in zip(cov["covered_mean_square"][name], counts)
+                     if v is not None and c]
+            weight = sum(c for _, c in pairs)
+            measured[key] = (power_to_dbfs(sum(v * c for v, c in pairs) / weight)
+                             if weight else None)
+    return PredictionCoverage(samples=samples, covered_samples=covered, silent_samples=silent,
+                              clipped_samples=clipped, unchanged_samples=unchanged,
+                              clipped_beyond_model_samples=beyond, measured=measured,
+                              predicted=predicted)
+
+
+def _db_from(m, p):
+    """The difference of two levels (dB), rounded to 0.01 dB; None when undefined."""
+    return None if m is None or p is None else _r2(m - p)
+
+
+def _r2(v):
+    """``v`` rounded to 0.01 with no negative zero (for ``+.2f``)."""
+    return round(v, 2) + 0.0
+
+
+def _coverage_note(cov, total, *, bits, passthrough):
+    """Which samples the prediction covers and why the whole file's figures differ from it:
+    one sentence, or None when it covers every sample."""
+    if passthrough or not cov.samples or cov.covered_samples >= cov.samples:
+        return None
+    parts = []
+    if cov.silent_samples:
+        parts.append(f"{cov.silent_samples:,} kept digitally silent (exact zeros, no error)")
+    if cov.clipped_samples:
+        parts.append(f"{cov.clipped_samples:,} clipped at the ends of the {bits}-bit range "
+                     "(their error is clipping, not requantization noise)")
+    if cov.unchanged_samples:
+        parts.append(f"{cov.unchanged_samples:,} already on the {bits}-bit grid, which rounding "
+                     "without dither passes unchanged (no error)")
+    text = (f"The prediction covers {cov.covered_samples:,} of {cov.samples:,} samples: "
+            + "; ".join(parts) + ".")
+    m, p = cov.measured, cov.predicted
+    model = p["error_power_lsb2"]
+    if m is not None and m["error_power_lsb2"] and model:
+        d = _r2(10.0 * math.log10(m["error_power_lsb2"] / model))
+        names = (("a_weighted_noise_dbfs", "A-weighted"), ("itu468_noise_dbfs", "ITU-R 468"),
+                 ("threshold_weighted_noise_dbfs", "hearing-threshold-weighted"))
+        more = [f"{label} {v:+.2f}" for key, label in names
+                if (v := _db_from(m.get(key), p.get(key))) is not None]
+        text += (f" Over the covered samples the measured error power is {d:+.2f} dB from the "
+                 "model" + (f" ({', '.join(more)} dB)" if more else "") + ".")
+    whole = total.get("error_power_lsb2")
+    if whole is not None and model:
+        if whole <= 0.0:
+            text += " Over the whole file there is no error at all."
+        else:
+            d = 10.0 * math.log10(whole / model)
+            why = []
+            if cov.silent_samples or cov.unchanged_samples:
+                why.append("the samples with no error lower it")
+            if cov.clipped_samples:
+                why.append("the clipped samples raise it")
+            text += (f" Over the whole file the measured error power is {abs(d):.2f} dB "
+                     f"{'below' if d < 0 else 'above'} the model's for every sample ("
+                     + " and ".join(why) + "); the report's predicted figures for the whole "
+                     "file are the model's times the share covered.")
+    return text
+
+
+def _peak_notes(tp):
+    """A sentence for each signal whose true-peak reading fell below its sample peak."""
+    if not tp:
+        return []
+    notes = []
+    for what in ("input", "output"):
+        meter, sample = tp.get(f"{what}_meter_dbtp"), tp.get(f"{what}_sample_peak_dbfs")
+        if meter is None or sample is None or meter >= sample - 0.005:
+            continue
+        notes.append(
+            f"The {what}'s true peak shown is its sample peak, {sample:+.2f} dBFS: the ITU-R "
+            f"BS.1770-4 Annex 2 interpolator read {sample - meter:.2f} dB lower (its filter's "
+            "ripple: it does not pass the samples through exactly), and a true peak is never "
+            "below the sample peak.")
+    return notes
+
+
+def _figures(rq, frames, passthrough, excluded):
     """(measured total, predicted total, per-channel (measured, predicted)) from the running
     sums, as dicts of the figures' fields.
 
-    Samples kept digitally silent carry no error, so the predicted error power
-    is the model's power times the share of samples that were requantized
-    (each channel's own share, and all channels' together for the total).
+    The prediction covers the requantized samples only (:func:`_excluded`): the
+    predicted error power is the model's power times the share of samples it
+    covers (each channel's own share, and all channels' together for the
+    total).
     """
     t = rq.totals()
     nch = rq.channels
@@ -135,7 +248,7 @@ def _figures(rq, frames, passthrough):
                                 frames=frames, scale=rq.scale, clipped=t["clipped"][c],
                                 max_abs_e=t["max_abs_e"][c])
         meas["silent_frames"] = silent[c]
-        pred = predicted_figures(power_lsb2=power * _share(frames - silent[c], frames),
+        pred = predicted_figures(power_lsb2=power * _share(frames - excluded[c], frames),
                                  sum_x2=t["sum_x2"][c], frames=frames, scale=rq.scale)
         channels.append((meas, pred))
     total = measured_figures(sum_x2=float(t["sum_x2"].sum()), sum_e=float(t["sum_e"].sum()),
@@ -146,19 +259,31 @@ def _figures(rq, frames, passthrough):
     total["shaping_overloads"] = int(t["overloads"].sum())
     total["silent_frames"] = sum(silent)
     pred_total = predicted_figures(
-        power_lsb2=power * _share(frames * nch - sum(silent), frames * nch),
+        power_lsb2=power * _share(frames * nch - sum(excluded), frames * nch),
         sum_x2=float(t["sum_x2"].sum()), frames=frames * nch, scale=rq.scale)
     return total, pred_total, channels
 
 
-def _weighted_for_silence(total, pred_total, channels, frames):
-    """Scale the analysis' weighted predictions to the samples not kept silent."""
-    if not total.get("silent_frames"):
+def _excluded(rq, analysis, passthrough):
+    """Per channel, the samples the prediction does not cover: kept silent, clipped at the
+    ends of the range and, without dither, passed unchanged (from the analysis)."""
+    t = rq.totals()
+    out = [int(a) + int(b) for a, b in zip(t["silent"], t["clipped"])]
+    cov = (analysis or {}).get("coverage")
+    if cov is not None and cov.get("unchanged_samples") is not None and not passthrough:
+        out = [a + int(u) for a, u in zip(out, cov["unchanged_samples"])]
+    return out
+
+
+def _weighted_for_coverage(pred_total, channels, frames, excluded):
+    """Scale the analysis' weighted predictions (the model's, for every sample) to the share
+    of the samples the prediction covers."""
+    if not any(excluded):
         return
-    for meas, pred in channels:
-        _scale_weighted(pred, _share(frames - meas["silent_frames"], frames))
+    for (_, pred), ex in zip(channels, excluded):
+        _scale_weighted(pred, _share(frames - ex, frames))
     nall = frames * len(channels)
-    _scale_weighted(pred_total, _share(nall - total["silent_frames"], nall))
+    _scale_weighted(pred_total, _share(nall - sum(excluded), nall))
 
 
 def _share(part, whole):
@@ -340,7 +465,8 @@ def build_report(rq, conv, *, analysis=None, metadata=None):
     -------
     requant.report.model.Report
     """
-    total, pred_total, channels = _figures(rq, conv.frames, conv.passthrough)
+    excluded = _excluded(rq, analysis, conv.passthrough)
+    total, pred_total, channels = _figures(rq, conv.frames, conv.passthrough, excluded)
     warnings, notes = _sentences(total, bits=rq.bits, dither=conv.recipe.dither,
                                  passthrough=conv.passthrough, subtype=conv.source.subtype,
                                  error_written=conv.targets.error is not None)
@@ -349,13 +475,20 @@ def build_report(rq, conv, *, analysis=None, metadata=None):
                         f"header declares {conv.source.declared_frames} (the file was cut "
                         "short); the frames that are there were converted.")
     section = None
+    model_weighted = {}
     if analysis is not None:
         more, section = _fold_analysis(analysis, total, pred_total, channels,
                                        passthrough=conv.passthrough)
         warnings.extend(more)
-        _weighted_for_silence(total, pred_total, channels, conv.frames)
+        model_weighted = {k: pred_total.get(k) for k in _WEIGHTED_KEYS}
+        _weighted_for_coverage(pred_total, channels, conv.frames, excluded)
         notes.extend(_difference_notes(total, pred_total, dither_applied=rq.dither,
                                        section=section))
+        notes.extend(_peak_notes(analysis.get("true_peak")))
+    coverage = _coverage(rq, conv, analysis, model_weighted)
+    line = _coverage_note(coverage, total, bits=rq.bits, passthrough=conv.passthrough)
+    if line:
+        notes.append(line)
     if conv.prepared is not None:
         notes.insert(0, f"before requantizing: {conv.prepared.sentence()}")
     if metadata is not None:
@@ -386,6 +519,7 @@ def build_report(rq, conv, *, analysis=None, metadata=None):
         analysis=section,
         preparation=(None if conv.prepared is None
                      else {**conv.prepared.to_dict(), "frames_out": conv.frames}),
+        coverage=coverage,
     )
 
 

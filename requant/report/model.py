@@ -35,7 +35,7 @@ from typing import Any
 
 __all__ = ["Report", "ReportSettings", "InputFacts", "OutputFacts", "MetadataRecord",
            "ErrorSignalFacts", "ErrorGain", "ErrorFigures", "MeasuredFigures", "ChannelMeasured",
-           "PredictedFigures", "ChannelRow", "Analysis"]
+           "PredictedFigures", "PredictionCoverage", "ChannelRow", "Analysis"]
 
 
 def _plain(value):
@@ -360,7 +360,14 @@ class MeasuredFigures(ErrorFigures):
     input_true_peak_dbtp, output_true_peak_dbtp : float or None, dBTP
         ITU-R BS.1770-4 Annex 2.
     signal_correlated : bool or None
-        Whether ``correlated_error_fraction`` passes the warning threshold.
+        Whether the error follows the signal: ``correlated_error_fraction``
+        passes the warning threshold, or the requantization was undithered and
+        a passage (or the whole file) was quiet enough for its error to be a
+        function of the signal whatever the shares say.
+    signal_correlated_reason : str or None
+        Why the flag is set: ``'measured'`` (the share passes the threshold)
+        or ``'quiet-undithered'`` (no dither, a passage within about 6 dB of
+        1 LSB RMS); None when it is not set.
 
     Notes
     -----
@@ -380,6 +387,7 @@ class MeasuredFigures(ErrorFigures):
     input_true_peak_dbtp: float | None = None
     output_true_peak_dbtp: float | None = None
     signal_correlated: bool | None = None
+    signal_correlated_reason: str | None = None
 
     def to_dict(self, *, analysed: bool, true_peak: bool) -> dict[str, Any]:
         """The JSON form.
@@ -399,7 +407,7 @@ class MeasuredFigures(ErrorFigures):
         if true_peak:
             names += _TRUE_PEAK_KEYS
         if analysed:
-            names += ("signal_correlated",)
+            names += ("signal_correlated", "signal_correlated_reason")
         return _pick(self, names)
 
 
@@ -477,6 +485,60 @@ class PredictedFigures:
             names += ("a_weighted_noise_dbfs", "itu468_noise_dbfs",
                       "threshold_weighted_noise_dbfs")
         return _pick(self, names)
+
+
+@dataclass(frozen=True, repr=False, eq=False)
+class PredictionCoverage:
+    """Which samples the prediction covers, and measured against predicted over them.
+
+    The dither model predicts the error of samples that were requantized; some
+    samples have an error that is known for another reason, and the figures of
+    the whole file differ from the model by them. All channels together.
+
+    Parameters
+    ----------
+    samples : int
+        Samples in the file (frames × channels).
+    covered_samples : int
+        Samples the prediction covers: the others less those below (0 for a
+        pass-through, which requantizes nothing).
+    silent_samples : int
+        Kept digitally silent: exact zeros, no error.
+    clipped_samples : int
+        Clipped at the ends of the output's range: their error is not
+        requantization noise.
+    unchanged_samples : int or None
+        Without dither: samples already on the output grid, which rounding
+        passes unchanged (no error). None when dithered or not analysed.
+    clipped_beyond_model_samples : int or None
+        Of the clipped samples, those whose error exceeds what dither can make
+        (left out of the measured figures here; a clipped sample within that
+        bound cannot be told apart and weighs little). None when not analysed.
+    measured : mapping or None
+        Over the covered samples: ``error_power_lsb2`` (LSB²),
+        ``error_rms_dbfs``, ``a_weighted_noise_dbfs``, ``itu468_noise_dbfs``,
+        ``threshold_weighted_noise_dbfs`` (dBFS); None when not analysed.
+    predicted : mapping
+        The model per covered sample, the same keys (the weighted ones None
+        when not analysed).
+    """
+
+    samples: int
+    covered_samples: int
+    silent_samples: int = 0
+    clipped_samples: int = 0
+    unchanged_samples: int | None = None
+    clipped_beyond_model_samples: int | None = None
+    measured: Mapping[str, Any] | None = None
+    predicted: Mapping[str, Any] | None = None
+
+    def to_dict(self) -> dict[str, Any]:
+        """The JSON form."""
+        out = _pick(self, ("samples", "covered_samples", "silent_samples", "clipped_samples",
+                           "unchanged_samples", "clipped_beyond_model_samples"))
+        out["measured"] = None if self.measured is None else _plain(self.measured)
+        out["predicted"] = None if self.predicted is None else _plain(self.predicted)
+        return out
 
 
 @dataclass(frozen=True, repr=False, eq=False)
@@ -605,6 +667,9 @@ class Report:
         ceiling; :class:`requant.dsp.prepare.PreparedFacts` plus
         ``frames_out``); None, and no ``preparation`` key in JSON, when nothing
         did.
+    coverage : PredictionCoverage or None
+        Which samples the prediction covers (``prediction_coverage`` in JSON,
+        after ``predicted``); None only for reports built without it.
 
     Notes
     -----
@@ -629,6 +694,7 @@ class Report:
     notes: tuple[str, ...] = ()
     analysis: Analysis | None = None
     preparation: Mapping[str, Any] | None = None
+    coverage: PredictionCoverage | None = None
 
     @property
     def sample_rate(self) -> int:
@@ -658,6 +724,8 @@ class Report:
             "lsb": self.lsb,
             "measured": self.measured.to_dict(analysed=analysed, true_peak=true_peak),
             "predicted": self.predicted.to_dict(analysed=analysed),
+            **({} if self.coverage is None
+               else {"prediction_coverage": self.coverage.to_dict()}),
             "channels": [ch.to_dict(analysed=per_channel, true_peak=per_channel and true_peak,
                                     weighted=weighted) for ch in self.channels],
             "warnings": list(self.warnings),

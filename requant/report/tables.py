@@ -136,6 +136,7 @@ def page_context(report, analyzer, *, bands_per_octave):
 
     tables = [
         _main_table(m, p, have_spectrum=have_spectrum, flat=flat_tpdf_figures(report), bits=bits),
+        *([] if report.coverage is None else [_coverage_table(report.coverage, bits=bits)]),
         _correlated_table(m, an),
         _peaks_table(m, an),
         _channel_noise_table(report, have_spectrum=have_spectrum),
@@ -240,14 +241,49 @@ def _main_table(m, p, *, have_spectrum, flat=None, bits=None):
     return _table("figures", "Measured and predicted", head, rows, intro=intro)
 
 
+def _coverage_table(cov, *, bits):
+    """Which samples the prediction covers, and measured against predicted over them."""
+    rows = [["samples in the file, all channels", fmt_int(cov.samples), "", ""],
+            ["kept digitally silent (exact zeros, no error)", fmt_int(cov.silent_samples), "",
+             ""],
+            [f"clipped at the ends of the {bits}-bit range", fmt_int(cov.clipped_samples)
+             + ("" if not cov.clipped_beyond_model_samples else
+                f" ({fmt_int(cov.clipped_beyond_model_samples)} with an error dither cannot "
+                "make, left out below)"), "", ""]]
+    if cov.unchanged_samples is not None:
+        rows.append([f"already on the {bits}-bit grid, passed unchanged (no dither, no error)",
+                     fmt_int(cov.unchanged_samples), "", ""])
+    share = f" ({100.0 * cov.covered_samples / cov.samples:.2f} %)" if cov.samples else ""
+    rows.append(["covered by the prediction", fmt_int(cov.covered_samples) + share, "", ""])
+    m, p = cov.measured or {}, cov.predicted or {}
+    if cov.covered_samples:
+        mp, pp = m.get("error_power_lsb2"), p.get("error_power_lsb2")
+        rows.append(["over them: error power, LSB²", _num(mp, ".5g"), _num(pp, ".5g"),
+                     _ratio_db(mp, pp)])
+        for key, label in (("a_weighted_noise_dbfs", "A-weighted noise"),
+                           ("itu468_noise_dbfs", "ITU-R 468-weighted noise (RMS)"),
+                           ("threshold_weighted_noise_dbfs", "hearing-threshold-weighted noise")):
+            rows.append([f"over them: {label}, dBFS", _num(m.get(key)), _num(p.get(key)),
+                         _diff_db(m.get(key), p.get(key))])
+    return _table("coverage", "What the prediction covers",
+                  ["samples and figures", "measured", "predicted", "measured − predicted, dB"],
+                  rows,
+                  intro="The dither model predicts the error of the samples that were "
+                        "requantized. Silent and unchanged samples have no error, clipped ones "
+                        "the clipping's: the figures over the covered samples compare like "
+                        "with like, and a note says how far the whole file's are off.")
+
+
 def _correlated_table(m, an):
     from requant.dsp.analysis import CORRELATED_WARNING_FRACTION
 
     q = an.quietest_passage if an is not None else None
     flagged = m.signal_correlated
     verdict = _NA if flagged is None else (
-        "yes: the error follows the signal (distortion)" if flagged else
-        "no: the error behaves as steady noise")
+        "no: the error behaves as steady noise" if not flagged else
+        "yes: no dither, and a passage within about 6 dB of 1 LSB RMS: its error is a "
+        "function of the signal" if m.signal_correlated_reason == "quiet-undithered" else
+        "yes: the error follows the signal (distortion)")
     rows = [
         ["signal-correlated error", verdict],
         ["share of the error power that follows the signal (larger of whole and quietest)",
@@ -310,8 +346,10 @@ def _peaks_table(m, an):
     tp = an.true_peak if an is not None else None
     none = _MINUS_INF if tp is not None else _NA
     rows = [
-        ["input true peak (ITU-R BS.1770-4), dBTP", _num(m.input_true_peak_dbtp, none=none)],
-        ["output true peak (ITU-R BS.1770-4), dBTP", _num(m.output_true_peak_dbtp, none=none)],
+        ["input true peak (ITU-R BS.1770-4; the sample peak where that is higher), dBTP",
+         _num(m.input_true_peak_dbtp, none=none)],
+        ["output true peak (ITU-R BS.1770-4; the sample peak where that is higher), dBTP",
+         _num(m.output_true_peak_dbtp, none=none)],
         *loudness_rows(an.loudness if an is not None else None,
                        {"input": "input", "output": "output"}),
         ["input samples beyond full scale", fmt_int(m.over_full_scale_samples)],
@@ -509,7 +547,9 @@ def _method_table(report, analyzer, bands_per_octave):
         ["ITU-R BS.468-4 detector", str(meth.get("itu468_detector"))],
         ["levels per bin", "10·log10(2·PSD·fs/L) dBFS: the noise power in one bin of width "
                            "fs/L (AES17: a full-scale sine reads 0 dBFS)"],
-        ["weightings", "A: IEC 61672-1; 468: ITU-R BS.468-4; both 0 dB at 1 kHz"],
+        ["weightings", "A: IEC 61672-1; 468: ITU-R BS.468-4; hearing threshold: inverse of "
+                       "Terhardt (1979); all 0 dB at 1 kHz"],
+        ["weighted figures", str(meth.get("weighted", "from the Welch spectrum"))],
         ["error histogram", "from the analysed segments (each sample counted once per "
                             "segment it falls in)"],
     ]
