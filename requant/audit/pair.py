@@ -236,19 +236,15 @@ def _assemble(m, d, sc, al, meas, bits):
 
 
 def _predicted_power(ident, pred):
-    """The identified method's error spectrum (LSB² per normalized bandwidth), or None."""
-    from requant.dsp.quantizer import DITHER_POWER_LSB2
-    from requant.dsp.shaping import ntf_response
+    """The identified method's error spectrum (LSB² per normalized bandwidth), or None: the
+    dither model's own spectrum through the NTF
+    (:func:`requant.dsp.quantizer.error_spectrum_lsb2`)."""
+    from requant.dsp.quantizer import error_spectrum_lsb2
 
     f = ident.get("freqs")
     if f is None or pred["error_power_lsb2"] is None:
         return None
-    p = np.full(f.shape, DITHER_POWER_LSB2[ident["dither"]])
-    if ident["dither"] == "tpdf-hp":
-        p = (3.0 - 2.0 * np.cos(2.0 * np.pi * f / f[-1] / 2.0)) / 12.0
-    if len(ident["coeffs"]):
-        p = p * np.abs(ntf_response(ident["coeffs"], f, 2.0 * f[-1])) ** 2
-    return p
+    return error_spectrum_lsb2(ident["dither"], f, 2.0 * f[-1], ident["coeffs"])
 
 
 def _plain(v):

@@ -228,8 +228,9 @@ def _plot_error_spectrum(report, an):
         "caption": (f"Noise power per bin of width {df:.2f} Hz, 10·log10(2·PSD·fs/L) dBFS, "
                     f"averaged in 1/{PLOT_BANDS_PER_OCTAVE}-octave bands above the bin "
                     "spacing. Solid: measured from the error signal (Welch); dashed: the "
-                    "dither model through the noise-shaping filter. In the weighted panel the "
-                    "area under each curve gives the weighted total quoted in the legend."),
+                    "dither model's spectrum through the noise-shaping filter. In the weighted "
+                    "panel the area under each curve is the weighted total; the legend quotes "
+                    "the measured one over every sample (see the method table)."),
         "png": _png(fig),
     }
 
@@ -254,7 +255,7 @@ def _weighted_lines(ax, freqs, power, df, weights, figures, what, **style):
 
 
 def _plot_noise_transfer(report, an):
-    from requant.dsp.analysis import DITHER_POWER_LSB2
+    from requant.dsp.quantizer import error_spectrum_lsb2
     from requant.dsp.shaping import noise_gain_db, ntf_response
     from requant.dsp.weighting import weighting_db
 
@@ -266,12 +267,13 @@ def _plot_noise_transfer(report, an):
     fig, (ax,) = _figure(8.0, 4.2)
     shown = [ntf_db]
     if an.psd_error is not None:
-        flat = 2.0 * DITHER_POWER_LSB2[an.dither] / an.scale ** 2 / rate
-        fc, pm = _log_bands(an.freqs, an.psd_error.mean(axis=0) / flat)
+        # the dither's own spectrum, unshaped (flat but for high-passed TPDF)
+        unshaped = 2.0 * error_spectrum_lsb2(an.dither, an.freqs, rate) / an.scale ** 2 / rate
+        fc, pm = _log_bands(an.freqs, an.psd_error.mean(axis=0) / unshaped)
         y = _per_bin_db(pm, 0.5)  # 10·log10(ratio)
         sel = fc >= lo
         ax.plot(fc[sel], y[sel], color="#9aa7b4", lw=1.0,
-                label="measured: error spectrum ÷ flat dither level")
+                label="measured: error spectrum ÷ unshaped dither spectrum")
         shown.append(y[sel])
     ax.plot(f, ntf_db, color=_PRED, lw=1.8, label="|NTF|², the designed shaping")
     ax.plot(f, weighting_db("a", f), color="#1f5fa8", lw=1.0, ls="--",
@@ -294,14 +296,14 @@ def _plot_noise_transfer(report, an):
                "A and ITU-R 468 weighting curves and the measured ratio.",
         "caption": ("|NTF(f)|² of the error-feedback filter (0 dB = plain dither), with the "
                     "weighting curves it is judged by (0 dB at 1 kHz). The grey line is the "
-                    "measured error spectrum divided by the unshaped dither level: it should "
-                    "follow the black one."),
+                    "measured error spectrum divided by the unshaped dither's own spectrum: it "
+                    "should follow the black one."),
         "png": _png(fig),
     }
 
 
 def _plot_histogram(report, an):
-    from requant.dsp.analysis import DITHER_POWER_LSB2, error_pdf
+    from requant.dsp.quantizer import error_pdf, predicted_error_power_lsb2
 
     hist = (report.analysis.histogram if report.analysis is not None else None) or {}
     edges = np.asarray(hist.get("edges_lsb") or an.hist_edges, dtype=np.float64)
@@ -311,7 +313,7 @@ def _plot_histogram(report, an):
     passthrough = bool(report.output.passthrough)
     fig, (ax,) = _figure(8.0, 3.8)
     n = np.concatenate(([1.0], -np.asarray(an.coeffs, dtype=np.float64)))
-    sigma = math.sqrt(DITHER_POWER_LSB2[an.dither] * float(np.sum(n * n)))
+    sigma = math.sqrt(predicted_error_power_lsb2("round", an.dither, an.coeffs))  # no bias
     half = max(4.0 * sigma, 1.5)
     if total > 0:
         width = np.diff(edges)
