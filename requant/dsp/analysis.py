@@ -362,20 +362,22 @@ class ErrorAnalyzer:
         # scipy.fft, costs nothing to import (scipy.fft took 0.14 s of every report run)
         w = self.win[None, None, :]
         fe = np.fft.rfft(se * w, axis=-1)
-        self._see += np.sum(fe.real ** 2 + fe.imag ** 2, axis=0)
+        p = fe.real * fe.real
+        p += fe.imag * fe.imag
+        self._see += np.sum(p, axis=0)
         self._nseg += se.shape[0]
-        # histogram in LSB: bin index floor((e*scale - lo) * nb / (hi - lo)), out of range
+        # histogram in LSB: bin index floor((e*scale - lo) * nb / (hi - lo)) + 1, out of range
         # counted apart (float32 arithmetic: a bin edge may move by a float32 rounding)
         lo, hi = self.hist_edges[0], self.hist_edges[-1]
         nb = self.hist_edges.size - 1
         f = nb / (hi - lo)
         flat = se.reshape(-1)
-        if ss is not None:  # samples kept silent are no requantization error
+        if ss is not None and ss.any():  # samples kept silent are no requantization error
             flat = flat[~ss.reshape(-1)]
         y = flat * np.float32(self.scale * f)
-        y -= np.float32(lo * f)
-        np.clip(y, -1.0, float(nb), out=y)
-        k = np.floor(y).astype(np.intp) + 1  # 0: below, nb + 1: above
+        y -= np.float32(lo * f - 1.0)
+        np.clip(y, 0.0, float(nb + 1), out=y)
+        k = y.astype(np.intp)  # truncation is floor here (y >= 0); 0: below, nb + 1: above
         counts = np.bincount(k, minlength=nb + 2)
         self._hist += counts[1:nb + 1]
         self._hist_out += int(counts[0] + counts[nb + 1])

@@ -184,6 +184,9 @@ class WeightedNoiseMeter:
                 if self._due > 0:  # sampling: whole tiles to skip, counted at once
                     i += self._skip_tiles(min(self._due, (n - i) // L), i, silent)
                     continue
+                if self.stride > 1:  # sampling: a whole tile to measure, straight from e
+                    i += self._sample_tile(e, i, silent)
+                    continue
             if self._fill == 0:
                 self._copying = self.stride == 1 or self._due == 0
             take = min(L - self._fill, n - i)
@@ -264,6 +267,27 @@ class WeightedNoiseMeter:
         self.frames += k * L
         return k * L
 
+    def _sample_tile(self, e, i, silent):
+        """Sampling: the whole tile from frame ``i`` measured alone (no exclusion in it)."""
+        L = self.L
+        x = np.fft.rfft(np.asarray(e[i:i + L].T, dtype=np.float64), axis=-1)
+        power = x.real * x.real
+        power += x.imag * x.imag
+        self._p[2, 0] += power
+        self._p[2, 1] += power
+        covered = np.full(self.channels, L, dtype=np.float64)
+        if silent is not None:
+            s = silent[i:i + L]
+            if s.any():
+                for c in range(self.channels):
+                    covered[c] -= np.count_nonzero(s[:, c])
+        self._c[2] += covered
+        # a tile that is mostly silence says little: take the next one too
+        self._due = self.stride - 1 if covered.min() >= L // 2 else 0
+        self.frames += L
+        self.tiles_measured += 1
+        return L
+
     def _count_tiles(self, k, silent, i):
         """Count ``k`` whole tiles from frame ``i`` as measured, every-sample mode."""
         L = self.L
@@ -292,7 +316,7 @@ class WeightedNoiseMeter:
                 tiles = (self._buf, self._buf)
                 x = np.fft.rfft(self._buf, axis=-1)
                 power = x.real * x.real + x.imag * x.imag
-                power = np.stack((power, power))
+                power = (power, power)
             else:
                 tiles = (self._buf.copy(), self._buf)
                 self._buf[self._xbuf] = 0.0
@@ -308,7 +332,8 @@ class WeightedNoiseMeter:
                 # a tile that is mostly silence says little: take the next one too
                 if np.min(covered) >= n // 2:
                     self._due = self.stride - 1
-            self._p[stratum] += power
+            self._p[stratum, 0] += power[0]
+            self._p[stratum, 1] += power[1]
             self._c[stratum] += covered
             self.tiles_measured += 1
         self.frames += n

@@ -551,8 +551,10 @@ class DualTruePeakMeter:
             HISTORY_FRAMES + n, self.channels, _PHASES_FLAT, _SKIP_GAIN, SUB_FRAMES, RUN_FRAMES,
             self.peak_in, self.peak_out, self._v, self._acc, bx, be, ub, pk, _PHASES32,
             self._v32, self._acc32)
-        bx, be = bx.reshape(nsb, self.channels), be.reshape(nsb, self.channels)
-        self.block_bounds = (bx.max(axis=0), (bx + be).max(axis=0))
+        ch = self.channels
+        be += bx  # per channel a strided max: an axis-0 max of a (sub-blocks, 2) array is 4x slower
+        self.block_bounds = (np.array([bx[c::ch].max() for c in range(ch)]),
+                             np.array([be[c::ch].max() for c in range(ch)]))
         self._hx = _next_history(self._hx, x)
         self._he = _next_history(self._he, e)
 
