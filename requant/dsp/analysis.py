@@ -295,8 +295,8 @@ class ErrorAnalyzer:
             self._sx2 += np.einsum("ij,ij->j", x64, x64)
             self._se2 += np.einsum("ij,ij->j", e64, e64)
         self._n += n
-        if self._side is not None:  # the loudness on its own thread, beside the rest
-            self._side.start(self._loud.process, x, e32)
+        if self._side is not None:  # the loudness and the spectrum on a thread of their own
+            self._side.start(self._side_work, x, e32, silent)
         try:
             if self._tp is not None:
                 self._tp.process(x, e32)
@@ -305,11 +305,20 @@ class ErrorAnalyzer:
                 x, e32, silent, bounds=None if tp is None else tp.block_bounds,
                 true_peaks=None if tp is None else tp.peak_out)
             self._meter.process(e32, silent=silent if zeros is None else zeros, exclude=clipped)
-            self._feed_segments(e32, silent)
+            if self._side is None:
+                self._feed_segments(e32, silent)
             self._feed_quiet(x32, e32, silent)
         finally:
             if self._side is not None:
                 self._side.join()  # the caller may reuse the block's buffers after this
+
+    def _side_work(self, x, e, silent):
+        """The second thread's share of a block: the loudness, then the Welch spectrum (their
+        state is touched by this thread only until :meth:`finish`). Both threads then carry
+        about the same load: the true peak, levels, weighted noise and the quietest passage
+        stay on the caller's."""
+        self._loud.process(x, e)
+        self._feed_segments(e, silent)
 
     def use_sums(self, *, sum_x, sum_e, sum_xe, sum_x2, sum_e2):
         """Take the time-domain sums (full scale) from elsewhere (the kernel keeps them).
@@ -383,13 +392,25 @@ class ErrorAnalyzer:
         self._hist_out += int(counts[0] + counts[nb + 1])
 
     def _feed_quiet(self, x, e, silent=None):
-        # Windows are ranked by their float32 sum of squares, accumulated block by block;
-        # a window is copied only while it can still be the quietest (most windows are
+        # Windows are ranked by their float32 sum of squares. A window inside the block is
+        # judged in place and copied only if it wins; one across blocks is accumulated block
+        # by block and copied only while it can still be the quietest (most windows are
         # ruled out within their first block, so most audio is never copied).
         i = 0
         n = x.shape[0]
+        W = self.QW
         while i < n:
-            take = min(self.QW - self._qfill, n - i)
+            if self._qfill == 0 and n - i >= W:
+                px = x[i:i + W]
+                flat = px.reshape(-1)
+                self._qsum = float(np.dot(flat, flat))
+                self._close_quiet_window(px, e[i:i + W], None if silent is None
+                                         else silent[i:i + W])
+                self._qstart += W
+                self._qsum = 0.0
+                i += W
+                continue
+            take = min(W - self._qfill, n - i)
             if self._qcand:
                 px = x[i:i + take]
                 flat = px.reshape(-1)
@@ -406,16 +427,17 @@ class ErrorAnalyzer:
                         self._qs[self._qfill:self._qfill + take] = silent[i:i + take]
             self._qfill += take
             i += take
-            if self._qfill == self.QW:
+            if self._qfill == W:
                 if self._qcand:
-                    self._close_quiet_window()
-                self._qstart += self.QW
+                    self._close_quiet_window(self._qx, self._qe, self._qs)
+                self._qstart += W
                 self._qfill = 0
                 self._qsum = 0.0
                 self._qcand = True
 
-    def _close_quiet_window(self):
-        x = self._qx
+    def _close_quiet_window(self, x, e, s):
+        """Judge a whole window (input ``x``, error ``e``, silent mask ``s`` or None), its
+        float32 sum of squares in ``_qsum``; keep a copy if it is the quietest so far."""
         ms_fast = self._qsum / x.size  # float32 sums: to rank windows
         if ms_fast <= 0.0 or (self._quiet is not None
                               and ms_fast > _RANK_SLACK * self._quiet["ms"]):
@@ -427,8 +449,9 @@ class ErrorAnalyzer:
             return
         if np.count_nonzero(x) < 0.5 * x.size:
             return  # (mostly) digital silence: not a passage
-        self._quiet = {"ms": ms, "start": self._qstart, "x": x.copy(), "e": self._qe.copy(),
-                       "s": None if self._qs is None else self._qs.copy()}
+        self._quiet = {"ms": ms, "start": self._qstart, "x": np.array(x, dtype=np.float32),
+                       "e": np.array(e, dtype=np.float32),
+                       "s": None if s is None else np.array(s, dtype=bool)}
 
     # -- results -------------------------------------------------------------------------------
 
