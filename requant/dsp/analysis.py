@@ -114,6 +114,10 @@ STATIONARY_DITHERS = ("tpdf", "tpdf-hp")
 
 
 
+#: About this many of the analysed segments make the error histogram (every k-th of them):
+#: two million samples at 48 kHz stereo, a smooth picture.
+HISTOGRAM_SEGMENTS = 128
+
 #: Fewest Welch segments a file should give (shorter files get shorter segments).
 MIN_SEGMENTS = 16
 
@@ -196,7 +200,9 @@ class ErrorAnalyzer:
             n_seg = max(0, (int(total_frames) - self.L) // self.hop + 1)
             self.stride = max(1, -(-n_seg // MAX_SEGMENTS))
         else:
-            self.stride = 1
+            n_seg, self.stride = 0, 1
+        # the histogram needs far fewer samples than the spectrum: about HISTOGRAM_SEGMENTS
+        self.hist_every = max(1, (n_seg // self.stride) // HISTOGRAM_SEGMENTS)
         nb = self.L // 2 + 1
         self._see = np.zeros((self.channels, nb))
         self._nseg = 0
@@ -301,10 +307,11 @@ class ErrorAnalyzer:
             if self._tp is not None:
                 self._tp.process(x, e32)
             tp = self._tp
+            some = None if silent is None or not silent.any() else silent  # checked once
             clipped, zeros = self._levels.process(
-                x, e32, silent, bounds=None if tp is None else tp.block_bounds,
+                x, e32, some, bounds=None if tp is None else tp.block_bounds,
                 true_peaks=None if tp is None else tp.peak_out)
-            self._meter.process(e32, silent=silent if zeros is None else zeros, exclude=clipped)
+            self._meter.process(e32, silent=some if zeros is None else zeros, exclude=clipped)
             if self._side is None:
                 self._feed_segments(e32, silent)
             self._feed_quiet(x32, e32, silent)
@@ -376,7 +383,13 @@ class ErrorAnalyzer:
         self._see += np.sum(p, axis=0)
         self._nseg += se.shape[0]
         # histogram in LSB: bin index floor((e*scale - lo) * nb / (hi - lo)) + 1, out of range
-        # counted apart (float32 arithmetic: a bin edge may move by a float32 rounding)
+        # counted apart (float32 arithmetic: a bin edge may move by a float32 rounding); from
+        # every hist_every-th analysed segment
+        first = (-(self._nseg - se.shape[0])) % self.hist_every
+        if first >= se.shape[0]:
+            return
+        se = se[first::self.hist_every]
+        ss = None if ss is None else ss[first::self.hist_every]
         lo, hi = self.hist_edges[0], self.hist_edges[-1]
         nb = self.hist_edges.size - 1
         f = nb / (hi - lo)
@@ -570,6 +583,7 @@ class ErrorAnalyzer:
                 "per_bin": "noise power in each bin of width fs/segment_frames, dBFS",
                 "tone_measure": ("on" if self._nseg >= MIN_SEGMENTS // 2 else
                                  "off: too short for averaged spectra"),
+                "histogram_segment_stride": self.hist_every,
             },
         }
         pw = self.predicted_weighted()

@@ -92,7 +92,7 @@ class LevelMeter:
         x, e : ndarray (frames, channels)
         silent : ndarray of bool, optional
             Samples kept silent.
-        bounds : (ndarray, ndarray), optional
+        bounds : (sequence of float, sequence of float), optional
             Per channel, the block's largest input magnitude and a bound on its
             largest output magnitude, from the true-peak meter
             (:attr:`requant.dsp.truepeak.DualTruePeakMeter.block_bounds`): the
@@ -120,13 +120,18 @@ class LevelMeter:
             np.maximum(self.peak_in, _channel_peaks(x), out=self.peak_in)
             np.maximum(self.peak_out, block_out, out=self.peak_out)
             top = float(block_out.max())
-        else:
+        else:  # a few floats per channel: plain Python is quicker than numpy calls here
             b_in, b_out = bounds
-            np.maximum(self.peak_in, b_in, out=self.peak_in)
-            ref = self.peak_out if true_peaks is None else np.maximum(self.peak_out, true_peaks)
-            if np.any(b_out > ref):
-                np.maximum(self.peak_out, _channel_peaks(x + e), out=self.peak_out)
-            top = float(np.max(b_out))
+            pin, pout = self.peak_in, self.peak_out
+            exact = False
+            for c in range(self.channels):
+                if b_in[c] > pin[c]:
+                    pin[c] = b_in[c]
+                ref = pout[c] if true_peaks is None else max(pout[c], true_peaks[c])
+                exact = exact or b_out[c] > ref
+            if exact:
+                np.maximum(pout, _channel_peaks(x + e), out=pout)
+            top = max(b_out)
         if silent is not None and silent.any():
             for c in range(self.channels):
                 self.silent[c] += np.count_nonzero(silent[:, c])

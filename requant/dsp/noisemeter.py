@@ -64,9 +64,10 @@ __all__ = ["WeightedNoiseMeter", "tile_frames", "MAX_SAMPLED_TILES", "SEAM_LAGS"
 #: The weightings measured, besides the unweighted ('flat') power.
 WEIGHTINGS = ("a", "itu468", "threshold")
 #: At most this many evenly spread tiles (and those with an exclusion) are measured on a
-#: long stationary signal (sample=True): 87 s of audio at 48 kHz, 4.2 million samples per
-#: channel, which leaves about 0.01 dB of scatter on the weighted figures.
-MAX_SAMPLED_TILES = 512
+#: long stationary signal (sample=True): 22 s of audio at 48 kHz, a million samples per
+#: channel, which leaves about 0.01 dB of scatter on the A-weighted figure of a stereo file
+#: and 0.02 dB on the threshold-weighted one.
+MAX_SAMPLED_TILES = 256
 #: Lags corrected exactly at the tiles' seams (a shaped noise's correlation lies within
 #: its NTF's length: 10 taps for the hearing design).
 SEAM_LAGS = 64
@@ -256,13 +257,12 @@ class WeightedNoiseMeter:
     def _skip_tiles(self, k, i, silent):
         """Sampling: ``k`` whole tiles from frame ``i`` skipped, their samples counted."""
         L = self.L
-        counted = np.full(self.channels, k * L, dtype=np.float64)
+        self._c[3] += k * L
         if silent is not None:
             s = silent[i:i + k * L]
             if s.any():
                 for c in range(self.channels):
-                    counted[c] -= np.count_nonzero(s[:, c])
-        self._c[3] += counted
+                    self._c[3, c] -= np.count_nonzero(s[:, c])
         self._due -= k
         self.frames += k * L
         return k * L

@@ -553,8 +553,8 @@ class DualTruePeakMeter:
             self._v32, self._acc32)
         ch = self.channels
         be += bx  # per channel a strided max: an axis-0 max of a (sub-blocks, 2) array is 4x slower
-        self.block_bounds = (np.array([bx[c::ch].max() for c in range(ch)]),
-                             np.array([be[c::ch].max() for c in range(ch)]))
+        self.block_bounds = ([float(bx[c::ch].max()) for c in range(ch)],
+                             [float(be[c::ch].max()) for c in range(ch)])
         self._hx = _next_history(self._hx, x)
         self._he = _next_history(self._he, e)
 

@@ -550,8 +550,10 @@ def _method_table(report, analyzer, bands_per_octave):
         ["weightings", "A: IEC 61672-1; 468: ITU-R BS.468-4; hearing threshold: inverse of "
                        "Terhardt (1979); all 0 dB at 1 kHz"],
         ["weighted figures", str(meth.get("weighted", "from the Welch spectrum"))],
-        ["error histogram", "from the analysed segments (each sample counted once per "
-                            "segment it falls in)"],
+        ["error histogram", "from the analysed segments"
+                            + ("" if (meth.get("histogram_segment_stride") or 1) == 1 else
+                               f" (every {meth.get('histogram_segment_stride')}th of them)")
+                            + ", each sample counted once per segment it falls in"],
     ]
     if analyzer is not None:
         rows.append(["pictures", f"spectra averaged in 1/{bands_per_octave}-octave bands "
