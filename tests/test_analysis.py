@@ -679,3 +679,38 @@ def test_true_peak_shown_is_at_least_the_sample_peak(tmp_path):
     assert rep.channels[0].measured.output_true_peak_dbtp == pytest.approx(sample_db, abs=1e-6)
     assert any(n.startswith("The output's true peak shown is its sample peak") for n in rep.notes)
     assert "the sample peak where that is higher" in (tmp_path / "r.md").read_text()
+
+
+def test_long_tpdf_error_sampled_from_the_welch_segments_agrees_with_every_sample():
+    # A long file with TPDF dither (stationary error [LWV92]) has its weighted noise from the
+    # Welch segments spread over it; the same error measured over every sample (as for an
+    # undithered file) agrees within 0.03 dB, with digital silence and clipping in it.
+    from requant.dsp.analysis import ErrorAnalyzer
+    from requant.dsp.shaping import first_order
+
+    fs, n = 48000, 48000 * 150
+    rng = np.random.default_rng(40)
+    x = rng.uniform(-0.6, 0.6, (n, 1)).astype(np.float32)
+    x[10 * fs:14 * fs] = 0.0
+    x[30 * fs:30 * fs + 500] = 1.3  # clipped
+    y = requantize(x, bits=16, dither="tpdf", coeffs=first_order(), seed=9)
+    e = (y - x).astype(np.float32)
+    silent = (x == 0)
+    e[silent] = 0.0
+    got = {}
+    for label in ("tpdf", "rpdf"):  # rpdf: not stationary, so every sample is measured
+        an = ErrorAnalyzer(1, fs, bits=16, quantizer="round", dither=label,
+                           coeffs=first_order(), total_frames=n, true_peak=False, loudness=False)
+        for i in range(0, n, 65536):
+            an.feed(x[i:i + 65536], e[i:i + 65536], silent=silent[i:i + 65536])
+        got[label] = an.finish()
+        assert ("Welch" in got[label]["method"]["weighted"]) is (label == "tpdf")
+    for key in ("a_weighted_noise_dbfs", "itu468_noise_dbfs", "threshold_weighted_noise_dbfs"):
+        assert got["tpdf"]["measured"][key] == pytest.approx(got["rpdf"]["measured"][key],
+                                                             abs=0.03), key
+    cov = {k: got[k]["coverage"] for k in got}
+    assert cov["tpdf"]["covered_samples"] == cov["rpdf"]["covered_samples"]
+    for name in ("a", "itu468", "threshold"):
+        a = cov["tpdf"]["covered_mean_square"][name][0]
+        b = cov["rpdf"]["covered_mean_square"][name][0]
+        assert 10 * np.log10(a / b) == pytest.approx(0.0, abs=0.03), name

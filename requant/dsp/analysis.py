@@ -246,7 +246,15 @@ class ErrorAnalyzer:
         from requant.dsp.noisemeter import WeightedNoiseMeter
 
         self._meter = WeightedNoiseMeter(self.channels, self.rate, total_frames=total_frames,
-                                         sample=dither in STATIONARY_DITHERS)
+                                         sample=dither in STATIONARY_DITHERS,
+                                         sampled_elsewhere=True)
+        self._stationary = None
+        if self._meter.sampled:  # its stationary part from the Welch segments (finish)
+            from requant.dsp.levels import error_bound_lsb
+            from requant.dsp.noisemeter import WelchPart
+
+            self._stationary = WelchPart(self.channels, self.rate, self.win, error_bound_lsb(
+                quantizer, dither, self.coeffs) / self.scale)
         # sample peaks, clipping beyond the model, samples passed unchanged (undithered)
         from requant.dsp.levels import LevelMeter
 
@@ -382,6 +390,8 @@ class ErrorAnalyzer:
         p += fe.imag * fe.imag
         self._see += np.sum(p, axis=0)
         self._nseg += se.shape[0]
+        if self._stationary is not None:
+            self._stationary.add(se, p, ss)
         # histogram in LSB: bin index floor((e*scale - lo) * nb / (hi - lo)) + 1, out of range
         # counted apart (float32 arithmetic: a bin edge may move by a float32 rounding); from
         # every hist_every-th analysed segment
@@ -588,7 +598,8 @@ class ErrorAnalyzer:
         }
         pw = self.predicted_weighted()
         have_psd = self._nseg > 0
-        wn = self._meter.finish()
+        wn = self._meter.finish(stationary=None if self._stationary is None
+                                else self._stationary.mean_squares(self._meter.weightings))
         out["method"].update(self._meter_method())
         meas_w = {}
         if self._meter.frames:
@@ -674,9 +685,10 @@ class ErrorAnalyzer:
         how = ("every sample once: rectangular tiles (Parseval) with their seams joined "
                "exactly, the last one zero-padded, as one weighting filter over the whole "
                "error" if not m.sampled else
-               f"{m.tiles_measured} of {m.tiles_total} tiles spread evenly (the error of "
-               f"{self.dither} dither is stationary) and every tile with a clipped sample; "
-               "silent and clipped samples counted over the whole file")
+               "the analysed Welch segments without a clipped sample (the error of "
+               f"{self.dither} dither is stationary), and every tile with a clipped sample "
+               f"({m.tiles_measured}) measured whole; silent and clipped samples counted "
+               "over the whole file")
         return {"weighted": how, "weighted_tile_frames": m.L,
                 "weighted_tiles_measured": m.tiles_measured}
 

@@ -39,12 +39,14 @@ error of TPDF dither, whose moments do not depend on the signal: Wannamaker,
 Lipshitz, Vanderkooy & Wright 2000). A long signal is then measured on at most
 :data:`MAX_SAMPLED_TILES` tiles spread evenly over it, plus every tile that
 holds a sample excluded from the prediction (clipping, which is not
-stationary). A tile measured alone has ``L − m`` of its pairs at lag ``m``;
-for the lags up to ``SEAM_LAGS`` the sum is scaled by ``L/(L − m)``, which is
-unbiased for a stationary signal whose correlation stays within those lags
-(a shaped noise's NTF length). The result is a stratified estimate: the tiles
-with exclusions as measured, the rest as the sampled tiles' weighted energy
-per counted sample times the number of counted samples there. Samples kept
+stationary). A sampled tile measured alone has ``L − m`` of its pairs at lag
+``m``; for the lags up to ``SEAM_LAGS`` the sum is scaled by ``L/(L − m)``,
+which is unbiased for a stationary signal whose correlation stays within
+those lags (a shaped noise's NTF length). The result is a stratified
+estimate: the tiles with exclusions as measured (their burst is no stationary
+noise), the rest as the sampled tiles' weighted energy per counted sample
+times the number of counted samples there (or, with ``sampled_elsewhere``,
+the caller's figure for them: :class:`WelchPart`). Samples kept
 silent (zero, known exactly) are counted out.
 
 Two figures per weighting and channel come back: the mean square over every
@@ -59,7 +61,8 @@ import math
 
 import numpy as np
 
-__all__ = ["WeightedNoiseMeter", "tile_frames", "MAX_SAMPLED_TILES", "SEAM_LAGS", "WEIGHTINGS"]
+__all__ = ["WeightedNoiseMeter", "WelchPart", "tile_frames", "tile_weights",
+           "MAX_SAMPLED_TILES", "SEAM_LAGS", "WEIGHTINGS"]
 
 #: The weightings measured, besides the unweighted ('flat') power.
 WEIGHTINGS = ("a", "itu468", "threshold")
@@ -77,6 +80,12 @@ def tile_frames(sample_rate):
     """Tile length L: the power of two at or above fs/12, at least 1024 frames (4096 at
     44.1 and 48 kHz)."""
     return max(1024, 1 << max(0, int(math.ceil(math.log2(max(float(sample_rate), 1.0) / 12.0)))))
+
+
+def tile_weights(sample_rate, n, weightings=WEIGHTINGS):
+    """(bins, 1 + w): the Parseval factors ``c_k/n·W²(f_k)`` of an ``n``-point real DFT (column
+    0 unweighted): ``|rfft(x)|² @ tile_weights(...)`` is the weighted energy of ``x``."""
+    return _weights(float(sample_rate), int(n), tuple(weightings))[0]
 
 
 @functools.lru_cache(maxsize=16)
@@ -122,10 +131,15 @@ class WeightedNoiseMeter:
     sample : bool, default False
         The signal is stationary: a long one may be measured on evenly spread
         tiles (see the module notes).
+    sampled_elsewhere : bool, default False
+        With ``sample``: measure no sampled tiles here; the caller gives the
+        stationary part's mean squares per covered sample to :meth:`finish`
+        (the convert report takes them from its Welch segments, already
+        spread over the file). Tiles with an exclusion are still measured.
     """
 
     def __init__(self, channels, sample_rate, *, weightings=WEIGHTINGS, total_frames=None,
-                 sample=False):
+                 sample=False, sampled_elsewhere=False):
         self.channels = ch = int(channels)
         self.rate = float(sample_rate)
         self.weightings = tuple(weightings)
@@ -139,7 +153,8 @@ class WeightedNoiseMeter:
         self._xbuf = None  # excluded samples of the tile in progress, when any
         self._fill = 0
         self._copying = True
-        self._due = 0  # tiles until the next sampled one
+        # tiles until the next sampled one (never, when the caller samples)
+        self._due = (1 << 62) if sampled_elsewhere and self.stride > 1 else 0
         # every-sample mode: the last tile's edges, (tail, head) for all and covered
         self._edges = None
         self._sil = np.zeros(ch, dtype=np.int64)  # the tile's silent samples
@@ -351,8 +366,14 @@ class WeightedNoiseMeter:
                 self._seam[j] += _across(tail, tiles[j][:, :M] - head)
         self._edges = tuple((tiles[j][:, L - M:].copy(), tiles[j][:, :M].copy()) for j in (0, 1))
 
-    def finish(self):
+    def finish(self, stationary=None):
         """Measure the last, partial tile (idempotent) and return the figures.
+
+        Parameters
+        ----------
+        stationary : dict, optional
+            With ``sampled_elsewhere``: ``'flat'`` and each weighting mapped to
+            the stationary part's mean square per covered sample, (channels,).
 
         Returns
         -------
@@ -381,9 +402,18 @@ class WeightedNoiseMeter:
             return p @ bins + r @ lone
 
         c = self._c
-        if self._p[1].any():
-            e += alone(self._p[1])
-        if np.any(c[2] > 0):
+        # a tile measured for its clipped samples is no stationary noise: as measured (the
+        # L/(L − m) scaling would blow up a burst's short-lag terms)
+        e += self._p[1] @ bins
+        if stationary is not None:
+            names = ("flat",) + self.weightings
+            ms = np.stack([np.asarray(stationary[n], dtype=np.float64) for n in names], axis=-1)
+            if np.isnan(ms).any():  # no clean segment: the measured tiles' own figure
+                with np.errstate(invalid="ignore", divide="ignore"):
+                    own = e[1] / c[1][:, None]
+                ms = np.where(np.isnan(ms), np.nan_to_num(own, nan=0.0, posinf=0.0), ms)
+            e += (ms * c[3][:, None])[None]
+        elif np.any(c[2] > 0):
             with np.errstate(invalid="ignore", divide="ignore"):
                 k = np.where(c[2] > 0, (c[2] + c[3]) / c[2], 0.0)
             e += alone(self._p[2]) * k[None, :, None]
@@ -399,3 +429,51 @@ class WeightedNoiseMeter:
                                          np.nan)
         return {"all": out_all, "covered": out_cov, "covered_samples": covered.astype(np.int64),
                 "frames": self.frames}
+
+
+class WelchPart:
+    """A stationary error's weighted mean squares from Welch segments already spread over a
+    file (a :class:`WeightedNoiseMeter` made with ``sampled_elsewhere`` takes them).
+
+    Only segments holding no sample beyond ``bound`` (an error the dither cannot make:
+    clipping) count; each adds its spectrum and its Hann²-weighted number of covered samples
+    (silent ones left out). The window keeps the estimate unbiased for a shaped noise: the
+    pairs of samples m apart keep a weight 1 − O((m/L)²), where rectangular tiles lose m/L.
+
+    Parameters
+    ----------
+    channels : int
+    sample_rate : float, Hz
+    window : ndarray (L,)
+        The segments' window.
+    bound : float
+        The largest error the requantizer makes unclipped (signal units).
+    """
+
+    def __init__(self, channels, sample_rate, window, bound):
+        self.rate = float(sample_rate)
+        self.L = int(window.size)
+        self._w2 = np.asarray(window, dtype=np.float64) ** 2
+        self._w2sum = float(self._w2.sum())
+        self._bound = np.float32(bound)
+        self._p = np.zeros((int(channels), self.L // 2 + 1))
+        self._weight = np.zeros(int(channels))
+
+    def add(self, segments, power, silent=None):
+        """Segments (count, channels, L) before the window, their windowed |rfft|² (count,
+        channels, bins) and their silent masks (same shape as ``segments``) or None."""
+        good = np.abs(segments).max(axis=(1, 2)) <= self._bound
+        if not good.any():
+            return
+        self._p += power[good].sum(axis=0)
+        self._weight += float(np.count_nonzero(good)) * self._w2sum
+        if silent is not None and silent[good].any():
+            self._weight -= np.einsum("scl,l->c", silent[good], self._w2)
+
+    def mean_squares(self, weightings=WEIGHTINGS):
+        """``'flat'`` and each weighting: (channels,) mean squares per covered sample (NaN
+        for a channel without a clean segment)."""
+        e = self._p @ tile_weights(self.rate, self.L, weightings)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            ms = np.where(self._weight[:, None] > 0, e / self._weight[:, None], np.nan)
+        return {n: ms[:, j] for j, n in enumerate(("flat",) + tuple(weightings))}
