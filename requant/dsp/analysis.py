@@ -196,6 +196,7 @@ class ErrorAnalyzer:
         self.L = segment_frames(sample_rate, total_frames)
         self.hop = self.L // 2
         self.win = _hann(self.L).astype(np.float32)
+        self._win64 = self.win.astype(np.float64)
         if total_frames:
             n_seg = max(0, (int(total_frames) - self.L) // self.hop + 1)
             self.stride = max(1, -(-n_seg // MAX_SEGMENTS))
@@ -384,14 +385,15 @@ class ErrorAnalyzer:
     def _add_segments(self, se, ss=None):
         # se: (segments, channels, L), float32; numpy's FFT keeps float32 and, unlike
         # scipy.fft, costs nothing to import (scipy.fft took 0.14 s of every report run)
-        w = self.win[None, None, :]
-        fe = np.fft.rfft(se * w, axis=-1)
+        # in float64: numpy's float64 FFT is about 10 % quicker here than its float32 one
+        fe = np.fft.rfft(se * self._win64, axis=-1)
         p = fe.real * fe.real
         p += fe.imag * fe.imag
-        self._see += np.sum(p, axis=0)
+        psum = np.sum(p, axis=0)
+        self._see += psum
         self._nseg += se.shape[0]
         if self._stationary is not None:
-            self._stationary.add(se, p, ss)
+            self._stationary.add(se, p, ss, total=psum)
         # histogram in LSB: bin index floor((e*scale - lo) * nb / (hi - lo)) + 1, out of range
         # counted apart (float32 arithmetic: a bin edge may move by a float32 rounding); from
         # every hist_every-th analysed segment

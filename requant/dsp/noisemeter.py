@@ -459,13 +459,14 @@ class WelchPart:
         self._p = np.zeros((int(channels), self.L // 2 + 1))
         self._weight = np.zeros(int(channels))
 
-    def add(self, segments, power, silent=None):
+    def add(self, segments, power, silent=None, *, total=None):
         """Segments (count, channels, L) before the window, their windowed |rfft|² (count,
-        channels, bins) and their silent masks (same shape as ``segments``) or None."""
-        good = np.abs(segments).max(axis=(1, 2)) <= self._bound
+        channels, bins), their silent masks (same shape as ``segments``) or None, and
+        optionally ``power`` summed over the segments (when the caller has it)."""
+        good = np.maximum(segments.max(axis=(1, 2)), -segments.min(axis=(1, 2))) <= self._bound
         if not good.any():
             return
-        self._p += power[good].sum(axis=0)
+        self._p += total if total is not None and good.all() else power[good].sum(axis=0)
         self._weight += float(np.count_nonzero(good)) * self._w2sum
         if silent is not None and silent[good].any():
             self._weight -= np.einsum("scl,l->c", silent[good], self._w2)
