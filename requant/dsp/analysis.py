@@ -641,25 +641,8 @@ class ErrorAnalyzer:
             "threshold_weighted_noise_dbfs": _db(pw["threshold"]),
         }
         out["channels"] = per_channel
-        with np.errstate(divide="ignore"):
-            sin = 20.0 * np.log10(self._levels.peak_in)
-            sout = 20.0 * np.log10(self._levels.peak_out)
         if self._tp is not None:
-            # the interpolator (BS.1770-4 Annex 2) does not pass the samples through exactly:
-            # its ripple can read a little below the sample peak, so the larger one is shown
-            tin, tout = self._tp.true_peak_dbtp
-            shown_in, shown_out = np.maximum(tin, sin), np.maximum(tout, sout)
-            out["true_peak"] = {
-                "input_dbtp": _finite(np.max(shown_in)),
-                "output_dbtp": _finite(np.max(shown_out)),
-                "input_dbtp_per_channel": [_finite(v) for v in shown_in],
-                "output_dbtp_per_channel": [_finite(v) for v in shown_out],
-                "input_meter_dbtp": _finite(np.max(tin)),
-                "output_meter_dbtp": _finite(np.max(tout)),
-                "input_sample_peak_dbfs": _finite(np.max(sin)),
-                "output_sample_peak_dbfs": _finite(np.max(sout)),
-                "shown": "the larger of the sample peak and the BS.1770-4 interpolator's reading",
-            }
+            out["true_peak"] = self._true_peak_section()
         loud = self.loudness()
         if loud is not None:
             out["loudness"] = loud
@@ -680,6 +663,29 @@ class ErrorAnalyzer:
         self.psd_error = self._psd(self._see) if have_psd else None
         self.quiet_samples = None if self._quiet is None else (self._quiet["x"], self._quiet["e"])
         return out
+
+    def _true_peak_section(self):
+        """The ``true_peak`` section: the larger of the BS.1770-4 reading and the sample peak
+        (the interpolator does not pass the samples through exactly: its ripple can read a
+        little below the sample peak), with the interpolator's own readings."""
+        with np.errstate(divide="ignore"):
+            sin = 20.0 * np.log10(self._levels.peak_in)
+            sout = 20.0 * np.log10(self._levels.peak_out)
+        tin, tout = self._tp.true_peak_dbtp
+        shown_in, shown_out = np.maximum(tin, sin), np.maximum(tout, sout)
+        return {
+            "input_dbtp": _finite(np.max(shown_in)),
+            "output_dbtp": _finite(np.max(shown_out)),
+            "input_dbtp_per_channel": [_finite(v) for v in shown_in],
+            "output_dbtp_per_channel": [_finite(v) for v in shown_out],
+            "input_meter_dbtp": _finite(np.max(tin)),
+            "output_meter_dbtp": _finite(np.max(tout)),
+            "input_sample_peak_dbfs": _finite(np.max(sin)),
+            # tracked exactly only where it passes the reading (LevelMeter): else null
+            "output_sample_peak_dbfs": (_finite(np.max(sout)) if np.max(sout) >= np.max(tout)
+                                        else None),
+            "shown": "the larger of the sample peak and the BS.1770-4 interpolator's reading",
+        }
 
     def _meter_method(self):
         """The ``method`` entries of the weighted noise measurement."""

@@ -603,7 +603,11 @@ class Analysis:
         ``input`` and ``output``: per channel, fractions of full scale.
     true_peak : mapping, optional
         ``input_dbtp``, ``output_dbtp`` and their ``_per_channel`` lists
-        (dBTP); absent from the JSON form when None (not metered).
+        (dBTP): the larger of the ITU-R BS.1770-4 reading and the sample
+        peak; ``input_meter_dbtp``, ``output_meter_dbtp`` (the interpolator's
+        own readings), ``input_sample_peak_dbfs``, ``output_sample_peak_dbfs``
+        (null when below the output's reading), ``shown``; absent from the
+        JSON form when None (not metered).
     loudness : mapping, optional
         ITU-R BS.1770-4 integrated loudness (LUFS) and EBU Tech 3342 loudness
         range (LU) of the input and the output: ``input_integrated_lufs``,
