@@ -11,7 +11,10 @@ loudness (integrated loudness and the EBU Tech 3342 range, streaming);
 :mod:`.scan` is inspect's per-sample kernel, :mod:`.runs` finds its
 runs of digital silence, and :mod:`.overlap` runs a kernel
 on a second core; :mod:`.cap` the rules for signals raised for listening (the
--6 dBFS cap); :mod:`.analysis` the report's streaming measurements;
+-6 dBFS cap); :mod:`.analysis` the report's streaming measurements
+(with :mod:`.noisemeter`, weighted noise over every sample; :mod:`.levels`, sample
+peaks and clipping; :mod:`.tones`, tone measures; :mod:`.correlated`, whether the
+error follows the signal);
 :mod:`.figures` turns running sums into SNR, LSB² and dBFS; :mod:`.resample`
 converts the sample rate (an exact rational polyphase filter, its loop in
 :mod:`.ratekernel`).
