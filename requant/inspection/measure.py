@@ -83,7 +83,7 @@ quiet_level_dbfs, quiet_kind, quiet_tonal_fraction, noise_floor_dbfs
     music, not noise, so it is judged: the spectra of up to
     :data:`QUIET_EXAMPLES` blocks at that level (per channel and 1 dB bin,
     the first met) are summed and the share of their power standing in
-    spectral lines is measured (:func:`requant.dsp.analysis.tonal_fraction`).
+    spectral lines is measured (:func:`requant.dsp.tones.tonal_fraction`).
     Under :data:`NOISE_TONAL_MAX` it is ``"noise"`` and its level is also
     the ``noise_floor_dbfs``; otherwise ``"tonal"`` (music, tones, hum) and
     the noise floor is None (it lies somewhere below). With fewer than
@@ -262,7 +262,7 @@ class _QuietExamples:
                 break
         if pooled < MIN_JUDGED_BLOCKS:
             return None, pooled
-        from requant.dsp.analysis import tonal_fraction
+        from requant.dsp.tones import tonal_fraction  # not dsp.analysis: 10 ms to import
 
         total = self.psd[keys[0]].copy()
         for key in keys[1:]:
