@@ -432,6 +432,24 @@ def test_tiny_blocks_give_the_same_report(tmp_path, subtype, block_frames):
     assert got == ref  # exact equality, floats included
 
 
+def test_nonfinite_samples_across_blocks_give_the_same_report(tmp_path):
+    # Blocks go through three threads (scan, true peak of the block before, loudness): the
+    # true-peak meter must get each block as the scan cleared it of NaN and infinity, in
+    # order, whatever the block size (split equals whole, the scipy.signal.max_len_seq test
+    # pattern).
+    path = _busy_file(tmp_path, "FLOAT")
+    x = sf.read(path, dtype="float32")[0]
+    x[[5, 401, 4399, 8999], [0, 1, 2, 0]] = [np.nan, np.inf, -np.inf, np.nan]
+    path = write(tmp_path, "nonfinite.wav", x, "FLOAT", rate=8000)
+    ref = inspect_file(path)
+    assert ref["nonfinite_samples"] == 4
+    for block_frames in (400, 1000, 4096):
+        got = inspect_file(path, block_frames=block_frames)
+        got["settings"].pop("block_frames")
+        assert got == {**ref, "settings": {k: v for k, v in ref["settings"].items()
+                                           if k != "block_frames"}}
+
+
 # --------------------------------------------------------------------------
 # Rendering and errors
 
