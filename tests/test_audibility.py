@@ -11,14 +11,15 @@ from requant.dsp.audibility import (
     MAX_FLOOR_RISE_DB,
     REFERENCE_PLAYBACK_DB_SPL,
     above_threshold_db,
+    advice_paragraph,
     advise,
     floor_rise_db,
     predicted_noise_dbfs,
     threshold_at_1khz_db_spl,
+    threshold_comparison,
     tpdf_noise_dbfs,
 )
 from requant.dsp.shaping import design_hearing, gerzon_craven_bound_db
-from requant.dsp.audibility import advice_paragraph, threshold_comparison
 
 
 def terhardt(f_hz):
