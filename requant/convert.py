@@ -320,7 +320,7 @@ def _analyzer(rq, source, applied_dither, coeffs, block_frames):
 
 
 def _stream(f, rq, files, *, source, targets, analysis, block_frames, progress, prep=None,
-            read_dtype=None):
+            read_dtype=None, read_rate=None):
     """Run every block through the requantizer and the writers; return the frames done.
 
     ``analysis`` is ``(analyzer, consumer)`` or None. One-block files are done
@@ -346,6 +346,7 @@ def _stream(f, rq, files, *, source, targets, analysis, block_frames, progress, 
         layouts = layouts[:len(files)]
     want_err = len(files) > 1 or analysis is not None
     read_dtype = read_dtype or source.dtype
+    read_rate = read_rate or source.rate
     if source.frames <= block_frames:
         writer = SyncWriter(files, layouts, consumer=consumer)
         blocks = read_blocks(f, block_frames, read_dtype)
@@ -357,14 +358,8 @@ def _stream(f, rq, files, *, source, targets, analysis, block_frames, progress, 
     done = 0
     try:
         f.seek(0)
-        for _start, x in blocks or BlockReader(f, block_frames, read_dtype):
-            for y in _prepared(prep, x, block_frames):
-                bufs = writer.buffers()
-                codes, _ = rq.process(y, codes=bufs[0], error=want_err,
-                                      err_out=bufs[1] if want_err else None)
-                done = _hand_over(rq, writer, bufs, codes.shape[0], done, source, targets,
-                                  analysis, progress)
-        for y in _prepared(prep, None, block_frames):  # what the resampler held back
+        read = blocks or BlockReader(f, block_frames, read_dtype)
+        for y in _prepared(read, prep, block_frames, rate_in=read_rate, src=targets.src):
             bufs = writer.buffers()
             codes, _ = rq.process(y, codes=bufs[0], error=want_err,
                                   err_out=bufs[1] if want_err else None)
@@ -386,15 +381,33 @@ def _stream(f, rq, files, *, source, targets, analysis, block_frames, progress, 
     return done
 
 
-def _prepared(prep, x, block_frames):
-    """The blocks the requantizer gets for block ``x`` (None: the end of the file)."""
-    if prep is None:
-        if x is not None:
+def _prepared(read, prep, block_frames, *, rate_in, src):
+    """The blocks the requantizer gets: those read, or with ``prep`` the prepared frames
+    in pieces of at most ``block_frames``, then what the resampler held back. A NaN or
+    infinite sample stops a prepared file here, named at its place in the source (the
+    resampler would spread it over the frames around it)."""
+    for start, x in read:
+        if prep is None:
             yield x
-        return
-    y = prep.process(x) if x is not None else prep.finish()
+            continue
+        if not np.isfinite(x).all():
+            raise _nonfinite_error(src, x, start, rate_in)
+        yield from _pieces(prep.process(x), block_frames)
+    if prep is not None:
+        yield from _pieces(prep.finish(), block_frames)
+
+
+def _pieces(y, block_frames):
     for start in range(0, y.shape[0], block_frames):
         yield y[start:start + block_frames]
+
+
+def _nonfinite_error(src, x, start, rate):
+    """The one-line error for the first NaN or infinite sample of block ``x`` (frame ``start``
+    of a file at ``rate``)."""
+    frame, ch, kind = first_nonfinite(x, start)
+    return InputError(f"{src!r} has a {kind} sample at {frame / rate:.6f} s (frame {frame}, "
+                      f"channel {ch + 1}); repair the source and run again")
 
 
 def _hand_over(rq, writer, bufs, n, done, source, targets, analysis, progress):
@@ -408,11 +421,7 @@ def _hand_over(rq, writer, bufs, n, done, source, targets, analysis, progress):
     if rq.acc[:, _MAX_ABS_E].max() > _ABSURD_FULL_SCALE * rq.scale:
         _refuse_absurd(rq.last_input(), done, source, targets)
     if rq.acc[:, _NONFINITE].any():
-        frame, ch, kind = first_nonfinite(rq.last_input(), done)
-        at = frame / source.rate
-        raise InputError(f"{targets.src!r} has a {kind} sample at {at:.6f} "
-                         f"s (frame {frame}, channel {ch + 1}); repair the source and run "
-                         "again")
+        raise _nonfinite_error(targets.src, rq.last_input(), done, source.rate)
     writer.submit(bufs, n)
     done += n
     if progress is not None:
@@ -536,7 +545,7 @@ def convert_file(src, dst, recipe: Recipe | None = None, *, outputs: Outputs | N
             _stage(progress, "requantizing")
             done = _stream(f, rq, files, source=work, targets=targets, analysis=analysis,
                            block_frames=block_frames, progress=progress, prep=prep,
-                           read_dtype=source.dtype)
+                           read_dtype=source.dtype, read_rate=source.rate)
             if analysis is not None or targets.reports:
                 _stage(progress, "measuring and writing the report")
                 if progress is not None:

@@ -136,3 +136,14 @@ def test_the_report_page_states_the_filter_and_the_gain(tmp_path):
     assert re.search(r"rejection 14\d\.\d dB", text)
     assert "true-peak ceiling -6 dBTP" in text
     assert rep.sample_rate == 44100
+
+
+def test_a_nan_in_a_resampled_file_is_named_at_its_place_in_the_source(tmp_path):
+    x = np.full((48000, 2), 0.1, np.float32)
+    x[30000, 1] = np.nan
+    sf.write(tmp_path / "nan.wav", x, 48000, subtype="FLOAT")
+    code, out, err = run_cli("convert", tmp_path / "nan.wav", tmp_path / "o.wav",
+                             "--rate", "44100", "--block-frames", "4096")
+    assert code != 0 and "Traceback" not in err
+    assert "NaN sample at 0.625000 s (frame 30000, channel 2)" in err
+    assert not (tmp_path / "o.wav").exists()
