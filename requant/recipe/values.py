@@ -184,12 +184,7 @@ def check_shaping_order(order):
 
 def check_shaping_limit(limit_db):
     """The ``hearing`` design's total-gain limit as a float in (0, 30] dB."""
-    if not _is_number(limit_db):
-        raise _typed("shaping_limit_db", limit_db)
-    if not (math.isfinite(limit_db) and 0.0 < float(limit_db) <= MAX_LIMIT_DB):
-        raise RecipeError("shaping_limit_db", limit_db,
-                          f"is out of range; it must be {RECIPE_KEYS['shaping_limit_db']}")
-    return float(limit_db)
+    return _check_number("shaping_limit_db", limit_db, 0.0, MAX_LIMIT_DB, above_lo=True)
 
 
 def check_dither_in_loop(dither, shaped):
@@ -221,33 +216,30 @@ def silence_min_frames(ms, sample_rate):
     return max(1, math.ceil(float(ms) * float(sample_rate) / 1000.0 - 1e-9))
 
 
+def _check_number(field, value, lo, hi, *, above_lo=False, optional=False):
+    """A finite number in [lo, hi] (or (lo, hi] with ``above_lo``) as a float; None when
+    ``optional`` and not given; :class:`RecipeError` naming ``field`` otherwise."""
+    if value is None and optional:
+        return None
+    if not _is_number(value):
+        raise _typed(field, value)
+    v = float(value) if math.isfinite(value) else math.nan
+    if not ((lo < v if above_lo else lo <= v) and v <= hi):
+        raise RecipeError(field, value, f"is out of range; it must be {RECIPE_KEYS[field]}")
+    return v
+
+
 def _check_silence_min(ms):
-    if not _is_number(ms):
-        raise _typed("silence_min_ms", ms)
-    if not (math.isfinite(ms) and 0.0 < float(ms) <= MAX_SILENCE_MIN_MS):
-        raise RecipeError("silence_min_ms", ms,
-                          f"is out of range; it must be {RECIPE_KEYS['silence_min_ms']}")
-    return float(ms)
+    return _check_number("silence_min_ms", ms, 0.0, MAX_SILENCE_MIN_MS, above_lo=True)
 
 
 def _check_gain(gain_db):
-    if not _is_number(gain_db):
-        raise _typed("gain_db", gain_db)
-    if not (math.isfinite(gain_db) and abs(float(gain_db)) <= MAX_GAIN_DB):
-        raise RecipeError("gain_db", gain_db,
-                          f"is out of range; it must be {RECIPE_KEYS['gain_db']}")
-    return float(gain_db)
+    return _check_number("gain_db", gain_db, -MAX_GAIN_DB, MAX_GAIN_DB)
 
 
 def _check_ceiling(ceiling):
-    if ceiling is None:
-        return None
-    if not _is_number(ceiling):
-        raise _typed("peak_ceiling_dbtp", ceiling)
-    if not (math.isfinite(ceiling) and MIN_CEILING_DBTP <= float(ceiling) <= MAX_CEILING_DBTP):
-        raise RecipeError("peak_ceiling_dbtp", ceiling,
-                          f"is out of range; it must be {RECIPE_KEYS['peak_ceiling_dbtp']}")
-    return float(ceiling)
+    return _check_number("peak_ceiling_dbtp", ceiling, MIN_CEILING_DBTP, MAX_CEILING_DBTP,
+                         optional=True)
 
 
 def _check_channels(channels):
