@@ -320,14 +320,14 @@ def _analyzer(rq, source, applied_dither, coeffs, block_frames):
 
 
 def _stream(f, rq, files, *, source, targets, analysis, block_frames, progress, prep=None,
-            read_dtype=None, read_rate=None):
+            read=None):
     """Run every block through the requantizer and the writers; return the frames done.
 
     ``analysis`` is ``(analyzer, consumer)`` or None. One-block files are done
     inline (threads would cost more than they save); longer ones overlap
     reading, requantizing and writing on three threads. ``source`` holds the
     facts of what the requantizer sees; with ``prep``
-    (:class:`requant.dsp.prepare.Preparer`) the blocks read (``read_dtype``)
+    (:class:`requant.dsp.prepare.Preparer`) the blocks read (``read``: the input's facts)
     are prepared first, in pieces of at most ``block_frames``.
     """
     import soundfile as sf
@@ -345,8 +345,8 @@ def _stream(f, rq, files, *, source, targets, analysis, block_frames, progress, 
     else:
         layouts = layouts[:len(files)]
     want_err = len(files) > 1 or analysis is not None
-    read_dtype = read_dtype or source.dtype
-    read_rate = read_rate or source.rate
+    read = read or source  # the input's facts; ``source`` is what the requantizer sees
+    read_dtype, read_rate = read.dtype, read.rate
     if source.frames <= block_frames:
         writer = SyncWriter(files, layouts, consumer=consumer)
         blocks = read_blocks(f, block_frames, read_dtype)
@@ -358,8 +358,8 @@ def _stream(f, rq, files, *, source, targets, analysis, block_frames, progress, 
     done = 0
     try:
         f.seek(0)
-        read = blocks or BlockReader(f, block_frames, read_dtype)
-        for y in _prepared(read, prep, block_frames, rate_in=read_rate, src=targets.src):
+        blocks = blocks or BlockReader(f, block_frames, read_dtype)
+        for y in _prepared(blocks, prep, block_frames, rate_in=read_rate, src=targets.src):
             bufs = writer.buffers()
             codes, _ = rq.process(y, codes=bufs[0], error=want_err,
                                   err_out=bufs[1] if want_err else None)
@@ -545,7 +545,7 @@ def convert_file(src, dst, recipe: Recipe | None = None, *, outputs: Outputs | N
             _stage(progress, "requantizing")
             done = _stream(f, rq, files, source=work, targets=targets, analysis=analysis,
                            block_frames=block_frames, progress=progress, prep=prep,
-                           read_dtype=source.dtype, read_rate=source.rate)
+                           read=source)
             if analysis is not None or targets.reports:
                 _stage(progress, "measuring and writing the report")
                 if progress is not None:
