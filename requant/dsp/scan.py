@@ -179,6 +179,8 @@ def _fast_helper(wrap):
         o1 = orb[1]
         o2 = orb[2]
         o3 = orb[3]
+        # float samples off every grid (the usual end of the search): no grid test at all
+        searching = grid_cap > 0 and not (d0 & d1 & d2 & d3)
         while e + 4 <= end:
             v0 = scale * np.float64(x[e])
             v1 = scale * np.float64(x[e + 1])
@@ -188,14 +190,14 @@ def _fast_helper(wrap):
             # compare) and on each lane's grid (or its search over)
             ok = ((abs(v0) < clip_level) & (abs(v1) < clip_level) & (abs(v2) < clip_level)
                   & (abs(v3) < clip_level))
-            if grid_cap > 0:
+            if searching:
                 r0 = v0 * g0
                 r1 = v1 * g1
                 r2 = v2 * g2
                 r3 = v3 * g3
                 ok = ok & (d0 | (n0 & (r0 == np.floor(r0)))) & (d1 | (n1 & (r1 == np.floor(r1))))
                 ok = ok & (d2 | (n2 & (r2 == np.floor(r2)))) & (d3 | (n3 & (r3 == np.floor(r3))))
-            else:
+            elif grid_cap == 0:
                 o0 |= np.uint64(np.int64(x[e]) & 0xFFFFFFFF)
                 o1 |= np.uint64(np.int64(x[e + 1]) & 0xFFFFFFFF)
                 o2 |= np.uint64(np.int64(x[e + 2]) & 0xFFFFFFFF)
