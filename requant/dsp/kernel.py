@@ -56,7 +56,11 @@ summed while the chain runs. The running sums and generator states stay in
 registers for the whole block, past errors sit in a doubled ring (no
 wrap-around test, two stores per sample), channels go two at a time so that
 two independent chains overlap in the core, and callers build one kernel per
-tap count so that the compiler unrolls the sum.
+tap count so that the compiler unrolls the sum. The family is compiled with
+LLVM's SLP vectorizer (:data:`requant.dsp.native.KERNELS`), which pairs some of
+the two channels' operations: the same bits, 8 % less time for the 9-tap kernel
+on 20 minutes of stereo (0.87 s against 0.95 s, 2-core VM). Holding the past
+errors in registers instead of the ring was tried and gained nothing (0.94 s).
 """
 
 import numpy as np

@@ -130,7 +130,7 @@ class Family(NamedTuple):
 
 #: Every family of kernels requant loads through this module.
 KERNELS = {
-    "quantize": Family("requant.dsp.kernel", "build", "SIGNATURE", {"taps": (0, 9)}),
+    "quantize": Family("requant.dsp.kernel", "build", "SIGNATURE", {"taps": (0, 9)}, True),
     "truepeak-dual": Family("requant.dsp.peakkernel", "build_dual", "DUAL_SIGNATURE", {},
                             True),
     "truepeak": Family("requant.dsp.peakkernel", "build_peak", "PEAK_SIGNATURE", {}, True),
