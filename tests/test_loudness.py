@@ -294,6 +294,23 @@ def test_compiled_kernel_equals_plain_twin(signals, channels):
     assert np.array_equal(a._z, b._z) and np.array_equal(a._part, b._part)
 
 
+@pytest.mark.parametrize("channels", [1, 2, 3])
+def test_two_signals_meter_the_block_as_one_signal_does(channels):
+    # With the output beside it, the block's recursions share a loop with the output's; they
+    # must still do exactly what the one-signal pass does (the same state, the same sums).
+    rate = 8000
+    x = _programme(rate, channels, 10)[:9000]
+    e = (np.random.default_rng(12).uniform(-1, 1, x.shape) * 1e-3).astype(np.float32)
+    one = LoudnessMeter(channels, rate)
+    two = LoudnessMeter(channels, rate, with_output=True, gain=0.8)
+    for i in range(0, x.shape[0], 2500):
+        one.process(x[i:i + 2500])
+        two.process(x[i:i + 2500], e[i:i + 2500])
+    assert two.readings()[0] == one.readings()[0]
+    pairs = (channels + 1) // 2
+    assert np.array_equal(two._z.reshape(pairs, 2, 12)[:, 0], one._z.reshape(pairs, 12))
+
+
 def test_integer_codes_read_as_their_full_scale_values():
     # int32 blocks are left-justified codes: code / 2^31 is the sample (as for libsndfile).
     x = sine(1000.0, 5.0, 48000, -23.0, channels=2)
